@@ -1,0 +1,63 @@
+"""The ``schedule`` command group. Thin: each verb lives in its own module.
+
+Any :class:`schedule.errors.ScheduleError` becomes ``error: <message>`` on
+stderr and exit code 2, never a traceback.
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+
+import click
+
+from .. import __version__
+from ..errors import ScheduleError
+
+# (module under schedule.cli, attribute holding the click command)
+_VERBS = [
+    ("design", "design_command"),
+    ("inspect", "inspect_command"),
+    ("check", "check_command"),
+    ("refine", "refine_command"),
+    ("export", "export_command"),
+    ("simulate", "simulate_command"),
+    ("demo", "demo_command"),
+]
+
+
+class _Group(click.Group):
+    """A click group that turns ScheduleError into a one-line error and exit code 2."""
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except ScheduleError as exc:
+            click.echo(f"error: {exc}", err=True)
+            sys.exit(2)
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, "--version", prog_name="schedule",
+                      message="%(prog)s %(version)s")
+def main() -> None:
+    """Build a gain-scheduled H-infinity controller over an operating envelope.
+
+    Typical run: `schedule design SPEC.toml --out family.h5`, then
+    `schedule check family.h5 --report report/`, then
+    `schedule export family.h5 --format c --out table/`.
+    `schedule demo` runs all of it on the bundled crane envelope.
+
+    Results are design aids: validate in simulation and hardware tests and
+    follow the applicable codes and licensed practice.
+    """
+
+
+for _module, _attr in _VERBS:
+    try:
+        _mod = importlib.import_module(f".{_module}", __package__)
+    except ModuleNotFoundError as _exc:  # verb not written yet (development only)
+        if _exc.name != f"{__package__}.{_module}":
+            raise
+        continue
+    main.add_command(getattr(_mod, _attr))

@@ -1,0 +1,187 @@
+"""The operating-point file: linearized plants over an envelope (HDF5).
+
+Layout (format "schedule-operating-points", version 1; see docs/format.md)::
+
+    /                      attrs: format, format_version, description
+    /variables/names       (d,) UTF-8 strings
+    /variables/units       (d,) UTF-8 strings
+    /variables/lower       (d,) float64
+    /variables/upper       (d,) float64
+    /variables/breakpoints/<name>   (only for rectangular grids) float64
+    /points/values         (N, d) float64 scheduling values
+    /points/A  (N, n, n)   /points/B (N, n, m)   /points/C (N, p, n)   /points/D (N, p, m)
+    /names/states (n,)  /names/inputs (m,)  /names/outputs (p,)   UTF-8 strings
+
+All plants share one state coordinate system, named by /names/states.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from .errors import InputError
+from .types import LinearPlant, SchedulingVariable
+
+FORMAT_NAME = "schedule-operating-points"
+FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class OperatingPoints:
+    """Linearized plants at N operating points, stacked, with names."""
+
+    variables: tuple[SchedulingVariable, ...]
+    values: np.ndarray  # (N, d)
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: np.ndarray
+    state_names: tuple[str, ...]
+    input_names: tuple[str, ...]
+    output_names: tuple[str, ...]
+    breakpoints: tuple[np.ndarray, ...] | None = None
+    description: str = ""
+
+    def __len__(self) -> int:
+        return int(self.values.shape[0])
+
+    def plant(self, k: int) -> LinearPlant:
+        """The linear plant at point ``k``."""
+        return LinearPlant(self.A[k], self.B[k], self.C[k], self.D[k],
+                           self.state_names, self.input_names, self.output_names)
+
+
+def _strings(values) -> np.ndarray:
+    return np.array([str(v) for v in values], dtype=h5py.string_dtype("utf-8"))
+
+
+def _decode(ds) -> tuple[str, ...]:
+    return tuple(v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in ds[()])
+
+
+def write_operating_points(path: str | os.PathLike, points: OperatingPoints) -> None:
+    """Write ``points`` to ``path`` atomically (temporary file, then rename)."""
+    path = Path(path)
+    _validate(points, str(path))
+    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent or ".")
+    os.close(fd)
+    try:
+        # Fixed creation attributes keep the file bit-for-bit reproducible.
+        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
+            f.attrs["format"] = FORMAT_NAME
+            f.attrs["format_version"] = FORMAT_VERSION
+            f.attrs["description"] = points.description
+            g = f.create_group("variables", track_order=True)
+            g["names"] = _strings(v.name for v in points.variables)
+            g["units"] = _strings(v.unit for v in points.variables)
+            g["lower"] = np.array([v.lower for v in points.variables], dtype=float)
+            g["upper"] = np.array([v.upper for v in points.variables], dtype=float)
+            if points.breakpoints is not None:
+                b = g.create_group("breakpoints", track_order=True)
+                for v, bp in zip(points.variables, points.breakpoints):
+                    b[v.name] = np.asarray(bp, dtype=float)
+            p = f.create_group("points", track_order=True)
+            p["values"] = np.asarray(points.values, dtype=float)
+            for key in ("A", "B", "C", "D"):
+                p[key] = np.asarray(getattr(points, key), dtype=float)
+            n = f.create_group("names", track_order=True)
+            n["states"] = _strings(points.state_names)
+            n["inputs"] = _strings(points.input_names)
+            n["outputs"] = _strings(points.output_names)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def read_operating_points(path: str | os.PathLike) -> OperatingPoints:
+    """Read and validate an operating-point file; raise InputError naming the problem."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"operating-point file {path} does not exist; check the path")
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != FORMAT_NAME:
+                raise InputError(f"{path} is not an operating-point file (attribute 'format' "
+                                 f"should be '{FORMAT_NAME}')")
+            version = int(f.attrs.get("format_version", -1))
+            if version != FORMAT_VERSION:
+                raise InputError(f"{path} has operating-point format version {version}; this "
+                                 f"tool reads version {FORMAT_VERSION}")
+            names = _decode(f["variables/names"])
+            units = _decode(f["variables/units"])
+            lower = f["variables/lower"][()]
+            upper = f["variables/upper"][()]
+            variables = tuple(SchedulingVariable(n, u, float(lo), float(hi))
+                              for n, u, lo, hi in zip(names, units, lower, upper))
+            breakpoints = None
+            if "variables/breakpoints" in f:
+                breakpoints = tuple(np.asarray(f["variables/breakpoints"][n][()], dtype=float)
+                                    for n in names)
+            pts = OperatingPoints(
+                variables=variables,
+                values=np.asarray(f["points/values"][()], dtype=float),
+                A=f["points/A"][()], B=f["points/B"][()], C=f["points/C"][()],
+                D=f["points/D"][()],
+                state_names=_decode(f["names/states"]), input_names=_decode(f["names/inputs"]),
+                output_names=_decode(f["names/outputs"]), breakpoints=breakpoints,
+                description=str(f.attrs.get("description", "")))
+    except InputError:
+        raise
+    except (OSError, KeyError) as exc:
+        raise InputError(f"{path} is corrupt or truncated ({exc}); regenerate or re-export "
+                         "the operating-point file") from None
+    _validate(pts, str(path))
+    return pts
+
+
+def _validate(pts: OperatingPoints, where: str) -> None:
+    values = np.asarray(pts.values)
+    d = len(pts.variables)
+    if values.ndim != 2 or values.shape[1] != d:
+        raise InputError(f"{where}: points/values has shape {values.shape}, expected (N, {d})")
+    N = values.shape[0]
+    if N == 0:
+        raise InputError(f"{where}: the file holds no operating points")
+    A, B, C, D = (np.asarray(x) for x in (pts.A, pts.B, pts.C, pts.D))
+    if A.ndim != 3 or A.shape[0] != N or A.shape[1] != A.shape[2]:
+        raise InputError(f"{where}: points/A has shape {A.shape}, expected ({N}, n, n)")
+    n = A.shape[1]
+    m = B.shape[2] if B.ndim == 3 else -1
+    p = C.shape[1] if C.ndim == 3 else -1
+    for name, arr, shape in (("B", B, (N, n, m)), ("C", C, (N, p, n)), ("D", D, (N, p, m))):
+        if arr.shape != shape or min(shape) < 1:
+            raise InputError(f"{where}: points/{name} has shape {arr.shape}, expected {shape}")
+    for name, arr in (("values", values), ("A", A), ("B", B), ("C", C), ("D", D)):
+        bad = ~np.isfinite(arr.reshape(N, -1)).all(axis=1)
+        if bad.any():
+            k = int(np.argmax(bad))
+            raise InputError(f"{where}: points/{name} holds NaN or inf at point {k} "
+                             f"({_point_text(pts.variables, values[k])}); fix the linearization")
+    for label, names, size in (("states", pts.state_names, n), ("inputs", pts.input_names, m),
+                               ("outputs", pts.output_names, p)):
+        if len(names) != size:
+            raise InputError(f"{where}: names/{label} has {len(names)} names for {size} "
+                             f"{label}; give one name per {label[:-1]}")
+        if len(set(names)) != len(names):
+            raise InputError(f"{where}: names/{label} has duplicate names; make them unique")
+    for j, v in enumerate(pts.variables):
+        if not (np.isfinite(v.lower) and np.isfinite(v.upper) and v.lower < v.upper):
+            raise InputError(f"{where}: scheduling variable '{v.name}' has bounds "
+                             f"[{v.lower}, {v.upper}]; need finite lower < upper")
+        col = values[:, j]
+        out = (col < v.lower) | (col > v.upper)
+        if out.any():
+            k = int(np.argmax(out))
+            raise InputError(f"{where}: point {k} has {v.name} = {col[k]:g} outside its bounds "
+                             f"[{v.lower:g}, {v.upper:g}]; widen the bounds or drop the point")
+
+
+def _point_text(variables, row) -> str:
+    return ", ".join(f"{v.name}={x:g}" for v, x in zip(variables, row))

@@ -1,0 +1,96 @@
+"""Small frozen dataclasses that give names to the arrays crossing module boundaries."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class SchedulingVariable:
+    """One scheduling variable: a name, a unit and closed bounds ``lower <= p <= upper``."""
+
+    name: str
+    unit: str
+    lower: float
+    upper: float
+
+
+@dataclass(frozen=True)
+class LinearPlant:
+    """A linearized plant ``xdot = A x + B u``, ``y = C x + D u`` with signal names.
+
+    ``input_names`` names the columns of B and D, ``output_names`` the rows of C
+    and D, ``state_names`` the states. Every plant of one envelope must use the
+    same state coordinates (same names, same meaning, same order).
+    """
+
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: np.ndarray
+    state_names: tuple[str, ...] = ()
+    input_names: tuple[str, ...] = ()
+    output_names: tuple[str, ...] = ()
+
+
+@dataclass
+class Family:
+    """The controller family: everything the family file holds, as arrays.
+
+    N is the number of operating points that were attempted (grid holes are
+    not points). Stacked arrays have the point index first.
+
+    Attributes
+    ----------
+    variables : scheduling variables (names, units, bounds), length d.
+    points : (N, d) scheduling values of the operating points.
+    breakpoints : per-variable breakpoints for a rectangular grid, else None.
+    grid_index : (N, d) integer grid indices for a rectangular grid, else None.
+    status : (N,) strings, "ok" or "failed".
+    reasons : (N,) strings, empty for "ok", one line for "failed".
+    gamma_opt : (N,) per-point optimal gamma (nan where failed).
+    gamma : the common design gamma.
+    plant : stacked generalized-plant matrices "A","B1","B2","C1","C2","D11",
+        "D12","D21","D22", each (N, rows, cols) (zeros where failed).
+    controller : stacked controller matrices "A","B","C","D" (u = K y).
+    pieces : stacked observer-form pieces, name -> (N, ...) array.
+    measured_names, control_names : controller inputs (y) and outputs (u).
+    exogenous_names, performance_names : generalized plant w and z names.
+    state_names : generalized-plant (and controller) state names.
+    design_text : the design file's text; tool_version, created : provenance.
+    interpolant : plain arrays and attributes of the fitted interpolant, or None.
+    extra : anything else a stage stores (for example leave-one-out tables).
+    """
+
+    variables: tuple[SchedulingVariable, ...]
+    points: np.ndarray
+    status: np.ndarray
+    reasons: tuple[str, ...]
+    gamma_opt: np.ndarray
+    gamma: float
+    plant: dict[str, np.ndarray]
+    controller: dict[str, np.ndarray]
+    pieces: dict[str, np.ndarray]
+    measured_names: tuple[str, ...] = ()
+    control_names: tuple[str, ...] = ()
+    exogenous_names: tuple[str, ...] = ()
+    performance_names: tuple[str, ...] = ()
+    state_names: tuple[str, ...] = ()
+    breakpoints: tuple[np.ndarray, ...] | None = None
+    grid_index: np.ndarray | None = None
+    design_text: str = ""
+    tool_version: str = ""
+    created: str = ""
+    interpolant: dict | None = None
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def ok(self) -> np.ndarray:
+        """Boolean mask of points whose synthesis succeeded."""
+        return np.asarray(self.status) == "ok"
+
+    @property
+    def variable_names(self) -> tuple[str, ...]:
+        return tuple(v.name for v in self.variables)
