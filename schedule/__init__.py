@@ -26,6 +26,7 @@ _PUBLIC = {
     "Controller": "hinf", "ObserverPieces": "hinf", "assemble_controller": "hinf",
     "closed_loop": "norms", "h_infinity_norm": "norms", "h2_norm": "norms",
     "singular_values": "norms", "spectral_abscissa": "norms",
+    "h_infinity_norm_many": "norms", "frequency_response": "norms", "is_stable": "norms",
     # linearization helper
     "trim": "linearize", "linearize": "linearize", "trim_and_linearize": "linearize",
     # files

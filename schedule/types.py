@@ -60,6 +60,7 @@ class Family:
     exogenous_names, performance_names : generalized plant w and z names.
     state_names : generalized-plant (and controller) state names.
     design_text : the design file's text; tool_version, created : provenance.
+    design_base_dir : folder the design file's relative paths refer to.
     interpolant : plain arrays and attributes of the fitted interpolant, or None.
     extra : anything else a stage stores (for example leave-one-out tables).
     """
@@ -83,6 +84,7 @@ class Family:
     design_text: str = ""
     tool_version: str = ""
     created: str = ""
+    design_base_dir: str = ""
     interpolant: dict | None = None
     extra: dict = field(default_factory=dict)
 

@@ -61,3 +61,7 @@ for _module, _attr in _VERBS:
             raise
         continue
     main.add_command(getattr(_mod, _attr))
+
+
+if __name__ == "__main__":  # python -m schedule.cli.main
+    main()

@@ -1,0 +1,120 @@
+"""``schedule design SPEC.toml --out family.h5``: synthesize the controller family."""
+
+from __future__ import annotations
+
+import json
+import sys
+
+import click
+import numpy as np
+
+from ..errors import InputError
+from ..family import CHUNK_SIZE
+
+
+def _summary(run, out: str) -> dict:
+    f = run.family
+    ok = f.ok
+    names = f.variable_names
+    opt = np.asarray(f.gamma_opt, dtype=float)
+    finite = np.isfinite(opt)
+    info: dict = {
+        "out": out, "points": int(len(f.points)), "ok": int(ok.sum()),
+        "failed": int((~ok).sum()), "gamma": float(f.gamma),
+        "computed": {"gamma_opt": run.computed_gamma, "controllers": run.computed_controllers},
+        "resumed": {"gamma_opt": run.resumed_gamma, "controllers": run.resumed_controllers},
+        "seconds": round(run.seconds, 3),
+        "interpolant": None if f.interpolant is None else dict(f.interpolant.get("attrs", {})),
+        "interpolant_error": run.interpolant_error or None,
+        "notes": list(run.notes),
+        "failures": [{"index": int(i), "point": dict(zip(names, map(float, f.points[i]),
+                                                          strict=True)),
+                      "reason": f.reasons[i]} for i in np.flatnonzero(~ok)],
+    }
+    if finite.any():
+        lo, hi = int(np.nanargmin(opt)), int(np.nanargmax(opt))
+        info["gamma_opt_min"] = {"value": float(opt[lo]), "index": lo,
+                                 "point": dict(zip(names, map(float, f.points[lo]), strict=True))}
+        info["gamma_opt_max"] = {"value": float(opt[hi]), "index": hi,
+                                 "point": dict(zip(names, map(float, f.points[hi]), strict=True))}
+    return info
+
+
+def _point_text(point: dict) -> str:
+    return ", ".join(f"{k}={v:g}" for k, v in point.items())
+
+
+def _print_table(info: dict) -> None:
+    rows = [("family file", info["out"]),
+            ("points", f"{info['points']} ({info['ok']} ok, {info['failed']} failed)")]
+    if "gamma_opt_min" in info:
+        lo, hi = info["gamma_opt_min"], info["gamma_opt_max"]
+        rows.append(("gamma_opt min", f"{lo['value']:.5g} at {_point_text(lo['point'])}"))
+        rows.append(("gamma_opt max", f"{hi['value']:.5g} at {_point_text(hi['point'])}"))
+    rows.append(("common gamma", f"{info['gamma']:.5g}"))
+    rows.append(("computed", f"{info['computed']['gamma_opt']} gamma_opt, "
+                             f"{info['computed']['controllers']} controllers in "
+                             f"{info['seconds']:.1f} s"))
+    if info["resumed"]["gamma_opt"] or info["resumed"]["controllers"]:
+        rows.append(("resumed", f"{info['resumed']['gamma_opt']} gamma_opt, "
+                                f"{info['resumed']['controllers']} controllers"))
+    if info["interpolant"]:
+        attrs = info["interpolant"]
+        rows.append(("interpolant", ", ".join(f"{k}={v}" for k, v in attrs.items()
+                                              if isinstance(v, (str, int, float)))[:90]))
+    elif info["interpolant_error"]:
+        rows.append(("interpolant", f"not fitted: {info['interpolant_error']}"))
+    width = max(len(r[0]) for r in rows)
+    for key, value in rows:
+        click.echo(f"{key:<{width}}  {value}")
+    for note in info["notes"]:
+        click.echo(f"note: {note}")
+    if info["failures"]:
+        click.echo("failed points:")
+        for item in info["failures"]:
+            click.echo(f"  [{item['index']}] {_point_text(item['point'])}: {item['reason']}")
+
+
+@click.command("design")
+@click.argument("spec", type=click.Path(dir_okay=False))
+@click.option("--out", "-o", required=True, type=click.Path(dir_okay=False),
+              help="Family file to write (HDF5), replaced atomically at the end.")
+@click.option("--jobs", "-j", default=1, show_default=True, type=click.IntRange(min=1),
+              help="Worker processes on this machine.")
+@click.option("--cluster", default=None, metavar="ADDRESS",
+              help="dask.distributed scheduler address (needs the 'cluster' extra).")
+@click.option("--resume", is_flag=True,
+              help="Continue an interrupted run from its <out stem>.partial.h5 file.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress bar and no summary table.")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON on stdout.")
+@click.option("--no-fit", is_flag=True,
+              help="Store the controllers only; fit the interpolant later.")
+@click.option("--chunk-size", default=CHUNK_SIZE, type=click.IntRange(min=1), hidden=True,
+              help="Points per work chunk (results are reproducible for a given size).")
+def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: bool,
+                   quiet: bool, as_json: bool, no_fit: bool, chunk_size: int) -> None:
+    """Synthesize H-infinity controllers over the envelope of SPEC at one common gamma.
+
+    Computes the optimal gamma at every operating point, the common gamma of
+    the design file's policy, the central controller at every point, fits the
+    interpolant and writes the family file.
+    """
+    from ..design_file import load_design
+    from ..family import run_design
+    from ..progress import ProgressBar
+
+    try:
+        design = load_design(spec)
+    except FileNotFoundError:
+        raise InputError(f"design file {spec} does not exist; check the path") from None
+    bar = ProgressBar(enabled=False if quiet else None, stream=sys.stderr)
+    try:
+        run = run_design(design, out, jobs=jobs, cluster=cluster, resume=resume, progress=bar,
+                         fit=not no_fit, chunk_size=chunk_size)
+    finally:
+        bar.close()
+    info = _summary(run, out)
+    if as_json:
+        click.echo(json.dumps(info, indent=2))
+    elif not quiet:
+        _print_table(info)

@@ -1,0 +1,141 @@
+"""``schedule export FAMILY --format csv|json|hdf5|c --out PATH``: write a scheduled table."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import click
+
+from ..errors import InputError
+
+_SUFFIX = {"csv": ".csv", "json": ".json", "hdf5": ".h5"}
+
+
+def export_settings(family) -> dict:
+    """The [export] settings of the family's design text (defaults when absent).
+
+    Parsed with :func:`schedule.design_file.parse_design`; if the full design no longer
+    parses on this machine (for example its operating-point file is elsewhere), only the
+    [export] table is read.
+    """
+    defaults = {"sample_time": 0.0, "method": "tustin", "prewarp": 0.0, "formats": None}
+    text = family.design_text or ""
+    if not text.strip():
+        return defaults
+    base = family.design_base_dir or "."
+    try:
+        from ..design_file import parse_design
+        ex = parse_design(text, base, name="family design text").export
+        return {"sample_time": float(ex.sample_time), "method": str(ex.method),
+                "prewarp": float(ex.prewarp), "formats": tuple(ex.formats)}
+    except (ImportError, ValueError):
+        pass
+    try:
+        import tomllib
+    except ImportError:  # pragma: no cover - Python 3.10
+        import tomli as tomllib
+    try:
+        t = tomllib.loads(text).get("export", {})
+    except tomllib.TOMLDecodeError:
+        return defaults
+    out = dict(defaults)
+    for key in ("sample_time", "prewarp"):
+        if isinstance(t.get(key), (int, float)):
+            out[key] = float(t[key])
+    if isinstance(t.get("method"), str):
+        out["method"] = t["method"]
+    if isinstance(t.get("formats"), list):
+        out["formats"] = tuple(str(f) for f in t["formats"])
+    return out
+
+
+@click.command("export")
+@click.argument("family_file", type=click.Path(dir_okay=False))
+@click.option("--format", "-f", "formats", multiple=True,
+              type=click.Choice(["csv", "json", "hdf5", "c"]),
+              help="Table format; repeat for several (then --out is a folder). Default: the "
+                   "design file's [export] formats.")
+@click.option("--out", "-o", required=True, type=click.Path(),
+              help="Output file (csv/json/hdf5), folder (c: <prefix>_table.h and .c), or, "
+                   "for several formats, a folder receiving table.csv, table.json, table.h5, c/.")
+@click.option("--sample-time", type=float, default=None,
+              help="Sample time in s; 0 = continuous table. Default: design [export].")
+@click.option("--method", type=click.Choice(["tustin", "zoh"]), default=None,
+              help="Discretization: Tustin (bilinear) or zero-order hold. Default: design "
+                   "[export], else tustin.")
+@click.option("--prewarp", type=float, default=None,
+              help="Tustin pre-warp frequency in rad/s (0 = none). Default: design [export].")
+@click.option("--breakpoints", "breakpoints", default=None,
+              help='Table breakpoints, e.g. "rope_length=3:30:28,payload_mass=2000,5000,20000" '
+                   "(start:stop:count or a list; unnamed variables keep the design grid), or "
+                   "a file in that syntax.")
+@click.option("--prefix", default="sched", show_default=True,
+              help="Prefix of all C names (format c).")
+@click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
+def export_command(family_file, formats, out, sample_time, method, prewarp, breakpoints,
+                   prefix, as_json):
+    """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md)."""
+    from ..export import build_table, file_sha256, write_table
+    from ..export.c_source import check_prefix
+    from ..store import read_family
+
+    family = read_family(family_file)
+    settings = export_settings(family)
+    if not formats:
+        formats = settings["formats"] or ("json",)
+    formats = tuple(dict.fromkeys(formats))
+    sample_time = settings["sample_time"] if sample_time is None else sample_time
+    method = method or settings["method"]
+    prewarp = (settings["prewarp"] if method == "tustin" else 0.0) if prewarp is None \
+        else prewarp
+    if sample_time < 0 or sample_time != sample_time:
+        raise InputError(f"--sample-time {sample_time:g} must be > 0 s (or 0 for a continuous "
+                         "table)")
+    if "c" in formats:
+        check_prefix(prefix)
+        if sample_time == 0:
+            raise InputError("format c needs a discrete table; give --sample-time (seconds)")
+    table = build_table(family, breakpoints=breakpoints, sample_time=sample_time,
+                        method=method, prewarp=prewarp, source_sha256=file_sha256(family_file))
+    out = Path(out)
+    written = []
+    if len(formats) == 1:
+        written += write_table(table, formats[0], out, prefix=prefix)
+    else:
+        if out.exists() and not out.is_dir():
+            raise InputError(f"--out {out} is a file; several formats need a folder")
+        if not out.exists():
+            if not out.parent.is_dir() and str(out.parent):
+                raise InputError(f"cannot write folder {out}: folder {out.parent} does not "
+                                 "exist; create it or choose another --out")
+            try:
+                os.mkdir(out)
+            except OSError as exc:
+                raise InputError(f"cannot create folder {out}: {exc.strerror}; choose another "
+                                 "--out") from None
+        for fmt in formats:
+            target = out / "c" if fmt == "c" else out / f"table{_SUFFIX[fmt]}"
+            written += write_table(table, fmt, target, prefix=prefix)
+    info = {"family": str(family_file), "formats": list(formats),
+            "paths": [str(p) for p in written], "nodes": int(table.A.shape[0]),
+            "shape": dict(zip([v.name for v in table.variables], table.shape, strict=True)),
+            "inside": int(table.inside.sum()), "sample_time": table.sample_time,
+            "method": table.method, "prewarp": table.prewarp, "gamma": table.gamma,
+            "states": table.n_states, "inputs": list(table.measured_names),
+            "outputs": list(table.control_names), "source_sha256": table.source_sha256}
+    if as_json:
+        click.echo(json.dumps(info, indent=1))
+        return
+    shape = " x ".join(f"{n} {k}" for k, n in info["shape"].items())
+    timing = "continuous time" if not table.discrete else \
+        f"T = {table.sample_time:g} s, {table.method}" + \
+        (f", pre-warp {table.prewarp:g} rad/s" if table.prewarp else "")
+    click.echo(f"table: {info['nodes']} nodes ({shape}), {timing}, {table.n_states} states, "
+               f"gamma {table.gamma:.5g}")
+    if info["inside"] < info["nodes"]:
+        click.echo(f"note: {info['nodes'] - info['inside']} nodes lie outside the design "
+                   "points' hull (inside = 0); they hold the nearest inside controller")
+    for p in written:
+        click.echo(f"wrote {p}")

@@ -1,0 +1,202 @@
+"""The whole job on the bundled crane envelope, in one call.
+
+:func:`run_demo` designs the crane family at a common gamma (with the
+interpolant chosen by leave-one-out evidence), checks it at in-between points
+against the crane model, writes the report, exports the scheduled tables
+(CSV, JSON, C99), simulates the nonlinear crane under the exported discrete
+controller while hoisting and travelling, and returns a short summary.
+
+The crane is an invented scenario (see ``operating_points/README.md``). A
+crane controller is safety critical: the demo is illustrative; real designs
+need validation on the machine and compliance with the applicable codes and
+licensed practice.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+CAUTION = ("Results are design aids: validate in simulation and hardware tests and follow the "
+           "applicable codes and licensed practice.")
+
+#: file and folder names inside the demo output folder
+FAMILY_FILE = "crane-family.h5"
+REPORT_DIR = "report"
+TABLE_DIR = "tables"
+SIMULATION_DIR = "simulation"
+SUMMARY_FILE = "summary.json"
+
+
+@dataclass
+class DemoOutcome:
+    """What the demo produced: the summary lines, a JSON-ready dict and the files."""
+
+    lines: list[str]
+    summary: dict
+    files: dict[str, Path] = field(default_factory=dict)
+    checks_passed: bool = True
+
+
+def bundled_design_path() -> Path:
+    """Path of the demo design file shipped with the package."""
+    return Path(str(resources.files("schedule.demo_crane").joinpath("crane_design.toml")))
+
+
+def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
+             progress: Callable[[str, int, int], None] | None = None,
+             stage: Callable[[str], None] | None = None) -> DemoOutcome:
+    """Run design, check, report, export and simulation on the bundled crane envelope.
+
+    Parameters
+    ----------
+    out_dir : folder for every output (created; files in it are replaced).
+    jobs : local worker processes for synthesis and checks.
+    progress : callback ``(stage, done, total)`` for the progress bars.
+    stage : callback announcing each stage by name.
+
+    Returns
+    -------
+    DemoOutcome
+    """
+    from .check import CheckSettings, check_family
+    from .design_file import load_design
+    from .export import build_table, file_sha256, write_table
+    from .export.atomic import write_dir_atomic
+    from .family import design_family
+    from .report import write_report
+    from .simulate import crane_trajectory, result_csv, result_plots, simulate
+    from .sources import load_nonlinear_model
+
+    announce = stage or (lambda name: None)
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"demo output {out} is a file; give a folder path with --out")
+    out.mkdir(parents=True, exist_ok=True)
+    spec = load_design(bundled_design_path())
+    names = [v.name for v in spec.variables]
+    units = [v.unit for v in spec.variables]
+    files: dict[str, Path] = {}
+    t0 = time.perf_counter()
+
+    announce("design")
+    family_path = out / FAMILY_FILE
+    family = design_family(spec, out=family_path, jobs=jobs, progress=progress)
+    files["family"] = family_path
+
+    announce("check")
+    settings = CheckSettings.from_spec(spec)
+    result = check_family(family, settings, spec=spec, jobs=jobs, progress=progress)
+    report = write_report(result, family, out / REPORT_DIR)
+    files["report"] = Path(report["markdown"])
+
+    announce("export")
+    table = build_table(family, sample_time=spec.export.sample_time, method=spec.export.method,
+                        prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path))
+    tables = out / TABLE_DIR
+    tables.mkdir(exist_ok=True)
+    files["csv"] = write_table(table, "csv", tables / "crane-table.csv")[0]
+    files["json"] = write_table(table, "json", tables / "crane-table.json")[0]
+    c_files = write_table(table, "c", tables / "c", prefix="crane")
+    files["c_header"], files["c_source"] = sorted(c_files, key=lambda p: p.suffix != ".h")
+
+    announce("simulate")
+    from .export import TableController
+
+    model = load_nonlinear_model(spec)
+    controller = TableController(table)
+    sim = simulate(model, controller, crane_trajectory(sample_time=controller.sample_time))
+    sim_files = {"simulation.csv": result_csv(sim)}
+    sim_files.update(result_plots(sim, title="Crane under the scheduled table (hoisting while "
+                                             "travelling, then a gust)"))
+    write_dir_atomic(out / SIMULATION_DIR, sim_files, "simulation folder")
+    files["simulation"] = out / SIMULATION_DIR
+
+    summary = _summary(family, result, sim.summary(), names, units, files, out,
+                       time.perf_counter() - t0)
+    summary_path = out / SUMMARY_FILE
+    summary_path.write_text(json.dumps(summary, indent=1, default=str) + "\n")
+    files["summary"] = summary_path
+    return DemoOutcome(_lines(summary), summary, files, bool(result.all_passed))
+
+
+def _summary(family, result, sim: dict, names, units, files, out: Path, seconds: float) -> dict:
+    ok = family.ok
+    opt = np.where(ok, np.asarray(family.gamma_opt, dtype=float), np.nan)
+    worst_opt = int(np.nanargmax(opt))
+    ratio = np.nan_to_num(np.asarray(result.values["ratio"], dtype=float), nan=np.inf)
+    worst = int(np.argmax(ratio))
+    s = result.summary()
+    rate = None
+    if result.rate is not None:
+        rate = {n: float(v) for n, v in zip(result.rate.names, result.rate.single)}
+    interp = (family.interpolant or {}).get("attrs", {})
+    return {
+        "points": int(len(ok)), "points_ok": int(ok.sum()),
+        "gamma_opt_worst": float(opt[worst_opt]),
+        "gamma_opt_worst_at": dict(zip(names, map(float, family.points[worst_opt]))),
+        "gamma": float(family.gamma),
+        "interpolant": {k: (v if isinstance(v, (str, int, float)) else str(v))
+                        for k, v in interp.items() if k in ("form", "kind")},
+        "check_points": int(s["points"]), "check_failed": int(s["failed"]),
+        "check_passed": bool(s["passed"]), "weaker_check": bool(s["weaker_check"]),
+        "worst_ratio": float(ratio[worst]),
+        "worst_at": dict(zip(names, map(float, result.points[worst]))),
+        "worst_kind": str(result.kind[worst]),
+        "min_input_gain_margin_db": s["min_input_gain_db"],
+        "min_input_phase_margin_deg": s["min_input_phase_deg"],
+        "rate_bound": rate, "units": dict(zip(names, units)),
+        "simulation": {k: v for k, v in sim.items() if isinstance(v, (int, float))},
+        "files": {k: str(v) for k, v in files.items()}, "out": str(out),
+        "seconds": round(seconds, 1), "caution": CAUTION,
+    }
+
+
+def _lines(s: dict) -> list[str]:
+    names = list(s["gamma_opt_worst_at"])
+    units = s["units"]
+
+    def where(d: dict) -> str:
+        return ", ".join(f"{k} = {d[k]:.4g} {units.get(k, '')}".rstrip() for k in names)
+
+    verdict = "all passed" if s["check_passed"] else f"{s['check_failed']} FAILED"
+    lines = [
+        f"operating points      {s['points_ok']} of {s['points']} synthesized",
+        f"worst gamma_opt       {s['gamma_opt_worst']:.4g} at {where(s['gamma_opt_worst_at'])}",
+        f"common gamma          {s['gamma']:.4g}",
+        "interpolant           " + (", ".join(f"{k} {v}" for k, v in s["interpolant"].items())
+                                    or "none"),
+        f"in-between checks     {s['check_points']} points, {verdict}"
+        + (" (weaker check: interpolated plant)" if s["weaker_check"] else ""),
+        f"worst norm / gamma    {s['worst_ratio']:.4g} at {where(s['worst_at'])} "
+        f"({s['worst_kind']})",
+        f"input disk margins    >= {_num(s['min_input_gain_margin_db'])} dB, "
+        f">= {_num(s['min_input_phase_margin_deg'])} deg",
+    ]
+    if s["rate_bound"]:
+        lines.append("rate bound            " + ", ".join(
+            f"|d {k}/dt| < {v:.3g} {units.get(k, '')}/s" for k, v in s["rate_bound"].items()))
+    lines += [
+        f"family file           {s['files']['family']}",
+        f"report                {s['files']['report']}",
+        f"tables                {Path(s['files']['csv']).parent} (CSV, JSON, c/)",
+        f"simulation            {s['files']['simulation']}",
+        f"done in {s['seconds']:.0f} s. {CAUTION}",
+    ]
+    return lines
+
+
+def _num(x) -> str:
+    try:
+        return f"{float(x):.3g}"
+    except (TypeError, ValueError):
+        return str(x)

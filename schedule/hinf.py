@@ -1,0 +1,837 @@
+"""H-infinity sub-optimal output feedback by the Riccati route.
+
+Problem: for the generalized plant ``P`` (see :mod:`schedule.plant`) find a
+controller ``u = K y`` that stabilizes the lower LFT ``F_l(P, K)`` and keeps
+``||F_l(P, K)||_inf < gamma``.
+
+Method (Glover and Doyle 1988; Doyle, Glover, Khargonekar and Francis 1989;
+Zhou, Doyle and Glover 1996, ch. 14 and section 17.1 "general case"):
+
+1. Normalization. Orthogonal rotations of ``z`` and ``w`` and invertible
+   scalings of ``u`` and ``y`` (from SVDs) give ``D12 = [0; I]`` and
+   ``D21 = [0, I]``; they do not change the H-infinity norm and are undone
+   in the controller (``K = Tu K~ Ty``).
+2. D22 is removed by loop shifting: design ``K0`` for ``D22 = 0`` and use
+   ``K = K0 (I + D22 K0)^-1`` (well-posed when ``I + D22 D_K0`` is
+   invertible).
+3. With ``D1. = [D11 D12]``, ``D.1 = [D11; D21]``,
+   ``R = D1.'D1. - diag(gamma^2 I, 0)`` and ``Rt = D.1 D.1' - diag(gamma^2 I, 0)``,
+   the X and Y Riccati equations (with all cross terms) are::
+
+       X = Ric([A 0; -C1'C1 -A'] - [B; -C1'D1.] R^-1 [D1.'C1, B'])
+       Y = Ric([A' 0; -B1B1' -A] - [C'; -B1D.1'] Rt^-1 [D.1B1', C])
+
+   ``F = -R^-1 (D1.'C1 + B'X) = [F1; F2]`` (F1 = [F11; F12] the worst
+   disturbance, F2 the state feedback) and
+   ``L = -(B1 D.1' + Y C') Rt^-1 = [L1, L2]`` (L1 = [L11, L12], L2 the
+   observer gain).
+   A controller exists iff ``gamma > max(sigma_max[D1111, D1112],
+   sigma_max[D1111', D1121'])`` (Parrott-type bound), the stabilizing
+   X >= 0 and Y >= 0 exist, and ``rho(XY) < gamma^2``.
+4. Central controller with ``Z = (I - gamma^-2 Y X)^-1``::
+
+       Dk = -D1121 D1111' (gamma^2 I - D1111 D1111')^-1 D1112 - D1122
+       Bk = -Z L2 + Z (B2 + L12) Dk
+       Ck = F2 - Dk (C2 + F12)
+       Ak = A + B F - Bk (C2 + F12)
+
+   In the familiar case D11 = 0, D12'C1 = 0, B1 D21' = 0 this is
+   ``Ak = A + gamma^-2 B1 B1'X - B2 B2'X - Z Y C2' C2``, ``Bk = Z Y C2'``,
+   ``Ck = -B2'X``: the controller state is an estimate of the plant state.
+
+Sign convention: ``u = K y``, closed loop = lower LFT (see
+:func:`schedule.norms.closed_loop`).
+
+References
+----------
+K. Glover and J. C. Doyle, "State-space formulae for all stabilizing
+controllers that satisfy an H-infinity norm bound and relations to risk
+sensitivity", Systems & Control Letters 11(3), 167-172, 1988.
+doi:10.1016/0167-6911(88)90055-2
+
+J. C. Doyle, K. Glover, P. P. Khargonekar and B. A. Francis, "State-space
+solutions to standard H2 and H-infinity control problems", IEEE Trans.
+Automatic Control 34(8), 831-847, 1989. doi:10.1109/9.29425
+
+K. Zhou, J. C. Doyle and K. Glover, Robust and Optimal Control, Prentice
+Hall, 1996, ch. 14-17.
+
+M. G. Safonov, D. J. N. Limebeer and R. Y. Chiang, "Simplifying the
+H-infinity theory via loop-shifting, matrix-pencil and descriptor concepts",
+Int. J. Control 50(6), 2467-2488, 1989. doi:10.1080/00207178908953510
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from .errors import (
+    InfeasibleGammaError,
+    InputError,
+    NumericalError,
+    PlantError,
+    ScheduleError,
+)
+from .plant import GeneralizedPlant
+from .riccati import RESIDUAL_RTOL, solve_riccati
+
+__all__ = [
+    "Controller",
+    "ObserverPieces",
+    "Normalized",
+    "normalize",
+    "parrott_bound",
+    "gamma_lower_bound",
+    "optimal_gamma",
+    "central_controller",
+    "assemble_controller",
+    "feasibility",
+    "synthesize_many",
+]
+
+PSD_RTOL = 1e-8  # min eig(X) >= -PSD_RTOL * max(1, ||X||) counts as X >= 0
+COUPLING_RTOL = 1e-9  # rho(XY) must be below gamma^2 (1 - COUPLING_RTOL)
+Z_COND_WARN = 1e10  # warn above this condition number of Z
+GAMMA_MAX = 1e12  # doubling stops here: no upper bound means infeasible
+SHIFT_COND_MAX = 1e10  # condition number of I + Dk D22 above this: loop shift ill-posed
+
+PIECE_KEYS = (
+    "state_feedback",
+    "worst_disturbance",
+    "observer_gain",
+    "performance_injection",
+    "Z",
+    "z_rotation",
+    "w_rotation",
+    "u_scaling",
+    "y_scaling",
+)
+
+
+# ============================================================== data classes
+@dataclass(frozen=True)
+class ObserverPieces:
+    """Observer-form pieces of the central controller (normalized coordinates).
+
+    With the normalized plant (``Sz``, ``Sw`` orthogonal, ``Tu``, ``Ty``
+    invertible; ``B1~ = B1 Sw'``, ``B2~ = B2 Tu``, ``C1~ = Sz C1``,
+    ``C2~ = Ty C2``, ``D11~ = Sz D11 Sw'``) the pieces are:
+
+    Attributes
+    ----------
+    state_feedback : (nu, n) F2, ``u~ = F2 x`` of the full-information law.
+    worst_disturbance : (nw, n) F1, the worst disturbance ``w~ = F1 x``
+        (``gamma^-2 B1'X`` in the normalized case).
+    observer_gain : (n, ny) L2 (``-Y C2'`` in the normalized case); the
+        controller uses ``Z L2``.
+    performance_injection : (n, nz) L1.
+    Z : (n, n) ``(I - gamma^-2 Y X)^-1``.
+    z_rotation : (nz, nz) orthogonal Sz; w_rotation : (nw, nw) orthogonal Sw.
+    u_scaling : (nu, nu) Tu (``u = Tu u~``); y_scaling : (ny, ny) Ty (``y~ = Ty y``).
+
+    :func:`assemble_controller` rebuilds the controller from these pieces, the
+    plant matrices and gamma (no Riccati solve), so interpolating the plant
+    and the pieces separately gives an observer-form scheduled controller
+    (Stilwell and Rugh 1999).
+    """
+
+    state_feedback: np.ndarray
+    worst_disturbance: np.ndarray
+    observer_gain: np.ndarray
+    performance_injection: np.ndarray
+    Z: np.ndarray
+    z_rotation: np.ndarray
+    w_rotation: np.ndarray
+    u_scaling: np.ndarray
+    y_scaling: np.ndarray
+
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        """Fixed key set (``PIECE_KEYS``), fixed shapes for a given plant size."""
+        return {k: np.array(getattr(self, k), dtype=np.float64) for k in PIECE_KEYS}
+
+    @classmethod
+    def from_arrays(cls, d: dict[str, np.ndarray]) -> ObserverPieces:
+        """Inverse of :meth:`to_arrays`."""
+        missing = [k for k in PIECE_KEYS if k not in d]
+        if missing:
+            raise PlantError(f"observer pieces lack {', '.join(missing)}; give all of {PIECE_KEYS}")
+        return cls(**{k: np.array(d[k], dtype=np.float64) for k in PIECE_KEYS})
+
+
+@dataclass(frozen=True)
+class Controller:
+    """A controller ``xk' = A xk + B y``, ``u = C xk + D y`` (``u = K y``).
+
+    ``gamma`` is the bound it was designed for; ``pieces`` the observer-form
+    pieces; ``z_condition`` the condition number of ``I - gamma^-2 Y X``
+    (large near the optimal gamma: the controller becomes ill-conditioned).
+    """
+
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: np.ndarray
+    gamma: float
+    pieces: ObserverPieces
+    z_condition: float = float("nan")
+
+    def as_tuple(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        return self.A, self.B, self.C, self.D
+
+
+@dataclass(frozen=True)
+class Normalized:
+    """Plant with D12 = [0; I], D21 = [0, I] (up to rounding) and the transforms."""
+
+    A: np.ndarray
+    B1: np.ndarray
+    B2: np.ndarray
+    C1: np.ndarray
+    C2: np.ndarray
+    D11: np.ndarray
+    D12: np.ndarray
+    D21: np.ndarray
+    Sz: np.ndarray
+    Sw: np.ndarray
+    Tu: np.ndarray
+    Ty: np.ndarray
+    dims: tuple[int, int, int, int, int] = field(default=(0, 0, 0, 0, 0))
+    d11_bound: float = float("nan")
+
+
+# ============================================================ normalization
+def normalize(plant: GeneralizedPlant) -> Normalized:
+    """Rotate z, w and scale u, y so that ``D12 = [0; I]`` and ``D21 = [0, I]``.
+
+    From the SVDs ``D12 = U S V'`` and ``D21 = U2 [S2 0] V2'``:
+    ``Sz = [U(:, nu:)'; U(:, :nu)']``, ``Tu = V S^-1``,
+    ``Sw = [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2'``.
+    """
+    nw, nu, nz, ny = plant.nw, plant.nu, plant.nz, plant.ny
+    u, s, vt = np.linalg.svd(plant.D12)
+    if s[-1] <= 1e-12 * max(s[0], 1e-300):
+        raise PlantError(
+            f"D12 ({nz}x{nu}) is rank deficient (smallest singular value {s[-1]:.2e}); "
+            "add a weight on the control effort"
+        )
+    Sz = np.vstack([u[:, nu:].T, u[:, :nu].T])
+    Tu = vt.T / s[None, :]
+    u2, s2, vt2 = np.linalg.svd(plant.D21)
+    if s2[-1] <= 1e-12 * max(s2[0], 1e-300):
+        raise PlantError(
+            f"D21 ({ny}x{nw}) is rank deficient (smallest singular value {s2[-1]:.2e}); "
+            "add a measurement-noise weight"
+        )
+    Sw = np.vstack([vt2[ny:], vt2[:ny]])
+    Ty = u2.T / s2[:, None]
+    return _apply_transforms(plant, Sz, Sw, Tu, Ty)
+
+
+def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
+    P = Normalized(
+        A=plant.A,
+        B1=plant.B1 @ Sw.T,
+        B2=plant.B2 @ Tu,
+        C1=Sz @ plant.C1,
+        C2=Ty @ plant.C2,
+        D11=Sz @ plant.D11 @ Sw.T,
+        D12=Sz @ plant.D12 @ Tu,
+        D21=Ty @ plant.D21 @ Sw.T,
+        Sz=Sz,
+        Sw=Sw,
+        Tu=Tu,
+        Ty=Ty,
+        dims=(plant.n, plant.nw, plant.nu, plant.nz, plant.ny),
+    )
+    return replace(P, d11_bound=_parrott(P))
+
+
+def _d11_blocks(P: Normalized):
+    _, nw, nu, nz, ny = P.dims
+    D = P.D11
+    r, c = nz - nu, nw - ny
+    return D[:r, :c], D[:r, c:], D[r:, :c], D[r:, c:]
+
+
+def parrott_bound(plant: GeneralizedPlant | Normalized) -> float:
+    """``max(sigma_max[D1111, D1112], sigma_max[D1111', D1121'])`` of the normalized D11.
+
+    Every achievable gamma is strictly larger (Glover and Doyle 1988; Zhou,
+    Doyle and Glover 1996, Theorem 17.1). Zero when D11 = 0.
+    """
+    P = plant if isinstance(plant, Normalized) else normalize(plant)
+    return P.d11_bound
+
+
+def _parrott(P: Normalized) -> float:
+    d1111, d1112, d1121, _ = _d11_blocks(P)
+    top = np.hstack([d1111, d1112])
+    left = np.vstack([d1111, d1121])
+    a = np.linalg.norm(top, 2) if top.size else 0.0
+    b = np.linalg.norm(left, 2) if left.size else 0.0
+    return float(max(a, b))
+
+
+# ============================================================= Riccati data
+def _x_data(A, B1, B2, C1, D11, D12, gamma):
+    """Riccati data (Ah, Rh, Qh) of the X equation and the pieces needed for F.
+
+    ``A'X + XA + XRX + Q = 0`` form with ``Ah = A - B Rm^-1 D1.'C1``,
+    ``Rh = -B Rm^-1 B'``, ``Qh = C1'C1 - C1'D1. Rm^-1 D1.'C1``.
+    """
+    nw = B1.shape[1]
+    B = np.hstack([B1, B2])
+    D1 = np.hstack([D11, D12])
+    Rm = D1.T @ D1
+    Rm[:nw, :nw] -= gamma * gamma * np.eye(nw)
+    S = D1.T @ C1  # (nw+nu, n)
+    Rinv_S = np.linalg.solve(Rm, S)
+    Rinv_Bt = np.linalg.solve(Rm, B.T)
+    Ah = A - B @ Rinv_S
+    Rh = -B @ Rinv_Bt
+    Qh = C1.T @ C1 - S.T @ Rinv_S
+    Rh = 0.5 * (Rh + Rh.T)
+    Qh = 0.5 * (Qh + Qh.T)
+    return Ah, Rh, Qh, Rm, S, B
+
+
+def _dual(P: Normalized):
+    """Data of the Y equation written as an X equation of the dual problem."""
+    return P.A.T, P.C1.T, P.C2.T, P.B1.T, P.D11.T, P.D21.T
+
+
+def _primal(P: Normalized):
+    return P.A, P.B1, P.B2, P.C1, P.D11, P.D12
+
+
+def _psd_defect(X: np.ndarray) -> float:
+    """Smallest eigenvalue of X relative to max(1, ||X||) (negative = not PSD)."""
+    ev = np.linalg.eigvalsh(X)
+    return float(ev[0] / max(1.0, abs(ev[-1])))
+
+
+def _solve_side(data, gamma: float, name: str, gain: bool = True):
+    """Solve one Riccati side; returns (X, gain or None, reason)."""
+    try:
+        Ah, Rh, Qh, Rm, S, B = _x_data(*data, gamma)
+    except np.linalg.LinAlgError:
+        return None, None, (
+            f"{name} Riccati data singular at gamma={gamma:.6g} (gamma at the D11 bound)"
+        )
+    res = solve_riccati(Ah, Rh, Qh)
+    if not res.ok:
+        return None, None, (
+            f"{name} Riccati has no stabilizing solution at gamma={gamma:.6g} ({res.reason})"
+        )
+    X = res.X
+    m = _psd_defect(X)
+    if m < -PSD_RTOL:
+        return None, None, (
+            f"{name} not positive semidefinite at gamma={gamma:.6g} "
+            f"(min eigenvalue {m:.3e} relative to ||{name}||)"
+        )
+    F = -np.linalg.solve(Rm, S + B.T @ X) if gain else None
+    return X, F, ""
+
+
+def feasibility(plant: GeneralizedPlant | Normalized, gamma: float) -> str:
+    """Empty string when gamma is achievable, else the one-line reason it is not.
+
+    Tests, in order: the Parrott-type D11 bound, the X Riccati (stabilizing,
+    X >= 0), the Y Riccati (stabilizing, Y >= 0) and ``rho(XY) < gamma^2``.
+    """
+    P = plant if isinstance(plant, Normalized) else normalize(plant)
+    return _solve_all(P, gamma, gains=False)[-1]
+
+
+def _solve_all(P: Normalized, gamma: float, gains: bool = True):
+    pb = P.d11_bound
+    if not gamma > pb * (1 + 1e-12):
+        return None, None, None, None, (
+            f"gamma={gamma:.6g} is not above the D11 bound {pb:.6g} "
+            "(max sigma_max of [D1111 D1112] and [D1111; D1121])"
+        )
+    X, F, reason = _solve_side(_primal(P), gamma, "X", gains)
+    if reason:
+        return None, None, None, None, reason
+    Y, Ft, reason = _solve_side(_dual(P), gamma, "Y", gains)
+    if reason:
+        return None, None, None, None, reason
+    rho = float(np.max(np.abs(np.linalg.eigvals(X @ Y))))
+    if rho >= gamma * gamma * (1 - COUPLING_RTOL):
+        return None, None, None, None, (
+            f"coupling condition rho(XY)={rho:.6g} >= gamma^2={gamma * gamma:.6g} "
+            f"at gamma={gamma:.6g}"
+        )
+    return X, Y, F, (Ft.T if gains else None), ""
+
+
+# ============================================================= gamma bounds
+def _check_gamma(gamma: float) -> float:
+    try:
+        g = float(gamma)
+    except (TypeError, ValueError):
+        raise InputError(f"gamma={gamma!r} is not a number; give a positive float") from None
+    if not math.isfinite(g) or g <= 0:
+        raise InputError(f"gamma={g} must be a finite positive number; give gamma > 0")
+    return g
+
+
+def _bisect(test, lo: float, hi: float, rtol: float) -> tuple[float, float]:
+    """Bisect in log(gamma): test(lo) fails, test(hi) passes; returns the final bracket."""
+    while hi > lo * (1 + rtol):
+        mid = math.sqrt(lo * hi) if lo > 0 else hi / 2
+        if test(mid):
+            hi = mid
+        else:
+            lo = mid
+    return lo, hi
+
+
+def _bracket(test, start: float, floor: float, what: str) -> tuple[float, float, str]:
+    """Find lo < hi with test(lo) False (or lo = floor), test(hi) True, by doubling/halving."""
+    g = start
+    if test(g):
+        hi = g
+        lo = g / 2
+        for _ in range(60):
+            if lo <= floor * (1 + 1e-9) or not test(lo):
+                break
+            hi = lo
+            lo = lo / 2
+        return max(lo, floor), hi, ""
+    lo = g
+    while g < GAMMA_MAX:
+        g *= 2
+        if test(g):
+            return lo, g, ""
+        lo = g
+    return lo, g, f"no feasible gamma up to {GAMMA_MAX:.0e} ({what})"
+
+
+def _side_ok(P: Normalized, side: str):
+    data = _primal(P) if side == "X" else _dual(P)
+
+    def test(g: float) -> bool:
+        return not _solve_side(data, g, side)[2]
+
+    return test
+
+
+def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
+    """A lower bound of the optimal output-feedback gamma.
+
+    The largest of the Parrott-type D11 bound and the optimal gammas of the
+    full-information (X Riccati only) and full-control (Y Riccati only)
+    sub-problems, each located by bisection to ``rtol`` and reported at the
+    lower end of its bracket, so the value never exceeds the true optimum
+    (Doyle, Glover, Khargonekar and Francis 1989, section IV: the X and Y
+    conditions are necessary for the output-feedback problem).
+
+    Raises
+    ------
+    PlantError
+        when a partition or rank condition fails (from normalization).
+    """
+    P = normalize(plant)
+    pb = parrott_bound(P)
+    bound = pb
+    start = max(2 * pb, 1.0)
+    for side in ("X", "Y"):
+        test = _side_ok(P, side)
+        lo, hi, _ = _bracket(test, max(start, bound * 1.01), pb, side)
+        if not test(hi):
+            continue
+        lo, hi = _bisect(test, lo, hi, rtol)
+        bound = max(bound, lo)
+    return float(bound)
+
+
+def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4) -> float:
+    """The optimal gamma to relative accuracy ``rtol``, returned at the feasible end.
+
+    Bisection in log(gamma) between the Parrott-type D11 bound (a lower
+    bound) and an upper bound found by repeated multiplication; feasibility at
+    gamma is the existence test of
+    Glover and Doyle (1988): stabilizing X >= 0 and Y >= 0 and
+    ``rho(XY) < gamma^2`` (plus the Parrott-type D11 bound). The returned
+    gamma is achievable: :func:`central_controller` succeeds at it (though the
+    controller is ill-conditioned so close to the optimum; design a few
+    percent above it).
+
+    Raises
+    ------
+    PlantError
+        when :meth:`GeneralizedPlant.check_conditions` fails.
+    InfeasibleGammaError
+        when no feasible gamma exists up to 1e12 (names the failing condition).
+    """
+    plant.check_conditions()
+    if not (0 < rtol < 1):
+        raise InputError(f"rtol={rtol} must lie in (0, 1); give e.g. 1e-4")
+    P = normalize(plant)
+
+    def test(_idx, g):
+        return [not _solve_all(P, float(gk), gains=False)[-1] for gk in g]
+
+    g = float(_search(test, np.array([parrott_bound(P)]), rtol)[0])
+    if not np.isfinite(g):
+        raise InfeasibleGammaError(
+            f"no feasible gamma up to {GAMMA_MAX:.0e}; at that gamma: "
+            f"{_solve_all(P, GAMMA_MAX)[-1]}"
+        )
+    return g
+
+
+# ====================================================== controller assembly
+def _controller_normalized(P: Normalized, pieces: ObserverPieces, gamma: float):
+    """Central controller for the normalized plant with D22 = 0 (Zhou et al. 1996, Thm 17.1)."""
+    _, nw, nu, nz, ny = P.dims
+    F2 = pieces.state_feedback
+    F1 = pieces.worst_disturbance
+    L1 = pieces.performance_injection
+    L2 = pieces.observer_gain
+    Z = pieces.Z
+    d1111, d1112, d1121, d1122 = _d11_blocks(P)
+    r = nz - nu
+    if r > 0:
+        M = gamma * gamma * np.eye(r) - d1111 @ d1111.T
+        Dk = -d1121 @ d1111.T @ np.linalg.solve(M, d1112) - d1122
+    else:
+        Dk = -d1122
+    F12 = F1[nw - ny :]
+    L12 = L1[:, nz - nu :]
+    C2F = P.C2 + F12
+    Bk = -Z @ L2 + Z @ (P.B2 + L12) @ Dk
+    Ck = F2 - Dk @ C2F
+    Ak = P.A + P.B1 @ F1 + P.B2 @ F2 - Bk @ C2F
+    return Ak, Bk, Ck, Dk
+
+
+def assemble_controller(
+    plant: GeneralizedPlant, pieces: ObserverPieces, gamma: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Rebuild the central controller ``(A, B, C, D)`` from the plant, the pieces and gamma.
+
+    No Riccati equation is solved: the plant is normalized with the stored
+    transforms, the normalized central controller formed (Glover and Doyle
+    1988), the transforms undone (``K0 = Tu K~ Ty``) and D22 put back by the
+    loop shift ``K = K0 (I + D22 K0)^-1``.
+
+    Raises
+    ------
+    NumericalError
+        when ``I + D_K0 D22`` is singular (the loop with D22 is ill-posed).
+    """
+    gamma = _check_gamma(gamma)
+    P = _apply_transforms(
+        plant, pieces.z_rotation, pieces.w_rotation, pieces.u_scaling, pieces.y_scaling
+    )
+    Ak, Bk, Ck, Dk = _controller_normalized(P, pieces, gamma)
+    Tu, Ty = pieces.u_scaling, pieces.y_scaling
+    Bk = Bk @ Ty
+    Ck = Tu @ Ck
+    Dk = Tu @ Dk @ Ty
+    D22 = plant.D22
+    if not np.any(D22):
+        return Ak, Bk, Ck, Dk
+    E = np.eye(plant.nu) + Dk @ D22
+    cond = np.linalg.cond(E)
+    if not np.isfinite(cond) or cond > SHIFT_COND_MAX:
+        raise NumericalError(
+            f"loop shift for D22 ill-posed: I + Dk D22 has condition number {cond:.2e}; "
+            "reduce D22 or pick another gamma"
+        )
+    M = np.linalg.inv(E)
+    MC = M @ Ck
+    MD = M @ Dk
+    A = Ak - Bk @ D22 @ MC
+    B = Bk - Bk @ D22 @ MD
+    return A, B, MC, MD
+
+
+def _pieces_at(P: Normalized, gamma: float):
+    """Solve the Riccati equations at gamma; (pieces, z_condition) or raise."""
+    X, Y, F, L, reason = _solve_all(P, gamma)
+    if reason:
+        raise InfeasibleGammaError(f"{reason}; choose a larger gamma (see optimal_gamma)")
+    _, nw, nu, nz, ny = P.dims
+    n = X.shape[0]
+    Zinv = np.eye(n) - (Y @ X) / (gamma * gamma)
+    zc = float(np.linalg.cond(Zinv))
+    if not np.isfinite(zc) or zc > 1e14:
+        raise NumericalError(
+            f"I - gamma^-2 Y X is singular at gamma={gamma:.6g} (condition number {zc:.2e}); "
+            "design a few percent above the optimal gamma"
+        )
+    if zc > Z_COND_WARN:
+        warnings.warn(
+            f"central controller ill-conditioned at gamma={gamma:.6g}: cond(I - Y X/gamma^2)="
+            f"{zc:.2e}; design a few percent above the optimal gamma",
+            RuntimeWarning,
+            stacklevel=3,
+        )
+    Z = np.linalg.inv(Zinv)
+    pieces = ObserverPieces(
+        state_feedback=F[nw:],
+        worst_disturbance=F[:nw],
+        observer_gain=L[:, nz:],
+        performance_injection=L[:, :nz],
+        Z=Z,
+        z_rotation=P.Sz,
+        w_rotation=P.Sw,
+        u_scaling=P.Tu,
+        y_scaling=P.Ty,
+    )
+    return pieces, zc
+
+
+def central_controller(plant: GeneralizedPlant, gamma: float) -> Controller:
+    """The central H-infinity controller at ``gamma`` (``u = K y``, lower LFT).
+
+    The closed loop ``F_l(P, K)`` is internally stable with
+    ``||F_l(P, K)||_inf < gamma`` whenever gamma is above the optimum
+    (Glover and Doyle 1988; Zhou, Doyle and Glover 1996, Theorem 17.1).
+
+    Raises
+    ------
+    PlantError
+        a plant condition fails (:meth:`GeneralizedPlant.check_conditions`).
+    InfeasibleGammaError
+        gamma below the optimum; the message names the failed condition (X or Y
+        Riccati without stabilizing solution, X or Y not positive semidefinite,
+        coupling condition rho(XY) >= gamma^2, or the D11 bound).
+    NumericalError
+        Z singular (gamma at the optimum) or the D22 loop shift ill-posed.
+    """
+    gamma = _check_gamma(gamma)
+    plant.check_conditions()
+    P = normalize(plant)
+    pieces, zc = _pieces_at(P, gamma)
+    A, B, C, D = assemble_controller(plant, pieces, gamma)
+    return Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+
+
+# ================================================== many plants in lockstep
+def _stack(Ps: list[Normalized], key: str) -> np.ndarray:
+    return np.stack([getattr(P, key) for P in Ps])
+
+
+def _batched_side(A, B1, B2, C1, D11, D12, gamma) -> tuple[np.ndarray, np.ndarray]:
+    """Batched X test: returns (ok (K,), X (K, n, n)).
+
+    Eigen-decomposition of the stacked Hamiltonians (one LAPACK call per stack
+    through numpy's gufuncs); the stable invariant subspace is spanned by the
+    eigenvectors of the n eigenvalues with negative real part.
+    """
+    K, n = A.shape[0], A.shape[1]
+    nw = B1.shape[2]
+    B = np.concatenate([B1, B2], axis=2)
+    D1 = np.concatenate([D11, D12], axis=2)
+    D1t = np.swapaxes(D1, 1, 2)
+    Rm = D1t @ D1
+    Rm[:, np.arange(nw), np.arange(nw)] -= (gamma * gamma)[:, None]
+    S = D1t @ C1
+    Bt = np.swapaxes(B, 1, 2)
+    ok = np.ones(K, dtype=bool)
+    try:
+        sol = np.linalg.solve(Rm, np.concatenate([S, Bt], axis=2))
+    except np.linalg.LinAlgError:
+        sol = np.zeros(Rm.shape[:2] + (S.shape[2] + Bt.shape[2],))
+        for k in range(K):
+            try:
+                sol[k] = np.linalg.solve(Rm[k], np.concatenate([S[k], Bt[k]], axis=1))
+            except np.linalg.LinAlgError:
+                ok[k] = False
+    RS, RB = sol[:, :, :n], sol[:, :, n:]
+    Ah = A - B @ RS
+    Rh = -B @ RB
+    Qh = np.swapaxes(C1, 1, 2) @ C1 - np.swapaxes(S, 1, 2) @ RS
+    Rh = 0.5 * (Rh + np.swapaxes(Rh, 1, 2))
+    Qh = 0.5 * (Qh + np.swapaxes(Qh, 1, 2))
+    H = np.concatenate(
+        [np.concatenate([Ah, Rh], axis=2), np.concatenate([-Qh, -np.swapaxes(Ah, 1, 2)], axis=2)],
+        axis=1,
+    )
+    H[~ok] = np.eye(2 * n)  # placeholders; already failed
+    w, V = np.linalg.eig(H)
+    order = np.argsort(w.real, axis=1)
+    wr = np.take_along_axis(w.real, order, axis=1)
+    hnorm = np.abs(H).sum(axis=1).max(axis=1) + 1e-300
+    margin = np.minimum(-wr[:, n - 1], wr[:, n]) / hnorm
+    ok &= margin > AXIS_RTOL_BATCH
+    U = np.take_along_axis(V, order[:, None, :n], axis=2)
+    U1, U2 = U[:, :n], U[:, n:]
+    X = np.zeros((K, n, n))
+    try:
+        Xc = np.swapaxes(np.linalg.solve(np.swapaxes(U1, 1, 2), np.swapaxes(U2, 1, 2)), 1, 2)
+    except np.linalg.LinAlgError:
+        Xc = np.zeros((K, n, n), dtype=complex)
+        for k in np.flatnonzero(ok):
+            try:
+                Xc[k] = np.linalg.solve(U1[k].T, U2[k].T).T
+            except np.linalg.LinAlgError:
+                ok[k] = False
+    X = Xc.real
+    X = 0.5 * (X + np.swapaxes(X, 1, 2))
+    xn = np.sqrt((X * X).sum(axis=(1, 2)))
+    ok &= np.sqrt((Xc.imag**2).sum(axis=(1, 2))) <= 1e-6 * (xn + 1e-300)
+    # relative residual (same measure as schedule.riccati.relative_residual)
+    AX = np.swapaxes(Ah, 1, 2) @ X
+    res = AX + np.swapaxes(AX, 1, 2) + X @ Rh @ X + Qh
+    na, nr, nq = (np.sqrt((M * M).sum(axis=(1, 2))) for M in (Ah, Rh, Qh))
+    denom = nq + 2 * na * xn + nr * xn * xn + 1e-8 * (2 * na + nr + nq) + 1e-300
+    ok &= np.sqrt((res * res).sum(axis=(1, 2))) / denom <= RESIDUAL_RTOL
+    ev = np.linalg.eigvalsh(X)
+    ok &= ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
+    return ok, X
+
+
+def _batched_feasible(Ps: list[Normalized], gamma: np.ndarray) -> np.ndarray:
+    """Batched existence test at per-plant gammas (Parrott bound, X, Y, coupling)."""
+    st = {k: _stack(Ps, k) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21")}
+    okx, X = _batched_side(
+        st["A"], st["B1"], st["B2"], st["C1"], st["D11"], st["D12"], gamma
+    )
+    T = lambda M: np.swapaxes(M, 1, 2)  # noqa: E731
+    oky, Y = _batched_side(
+        T(st["A"]), T(st["C1"]), T(st["C2"]), T(st["B1"]), T(st["D11"]), T(st["D21"]), gamma
+    )
+    ok = okx & oky
+    rho = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1)
+    ok &= rho < gamma * gamma * (1 - COUPLING_RTOL)
+    return ok
+
+
+AXIS_RTOL_BATCH = 1e-7
+
+
+def _search(test, pbs: np.ndarray, rtol: float) -> np.ndarray:
+    """Bracket and bisect in log(gamma) many problems in lockstep.
+
+    ``test(indices, gammas) -> bool array`` says which gammas are feasible.
+    Start at ``2 * D11 bound`` (or 1 when the bound is 0), multiply by 4
+    (up) or divide by 8 (down, when the bound is 0) until bracketed, then
+    bisect geometrically until ``hi <= lo (1 + rtol)``. Returns the feasible
+    ends, nan where no gamma up to GAMMA_MAX is feasible.
+    """
+    K = len(pbs)
+    lo = np.asarray(pbs, dtype=float).copy()  # known infeasible (gamma must exceed the bound)
+    hi = np.full(K, np.inf)  # known feasible
+    start = np.where(lo > 0, 2.0 * lo, 1.0)
+    failed = np.zeros(K, dtype=bool)
+    for _ in range(400):
+        done = failed | (np.isfinite(hi) & (hi <= lo * (1 + rtol)))
+        done |= np.isfinite(hi) & (lo == 0) & (hi < 1e-10)
+        active = np.flatnonzero(~done)
+        if active.size == 0:
+            break
+        l, h, s0 = lo[active], hi[active], start[active]
+        up = np.where(l >= s0, 4.0 * l, s0)  # no feasible point yet
+        finite_h = np.where(np.isinf(h), 1.0, h)
+        g = np.where(np.isinf(h), up, np.where(l > 0, np.sqrt(l * finite_h), finite_h / 8.0))
+        feas = np.asarray(test(active, g), dtype=bool)
+        hi[active[feas]] = g[feas]
+        lo[active[~feas]] = g[~feas]
+        failed[active[~feas & (g > GAMMA_MAX)]] = True
+    out = hi.copy()
+    out[failed | ~np.isfinite(hi)] = np.nan
+    return out
+
+
+def synthesize_many(
+    plants,
+    gamma: float | None = None,
+    rtol: float = 1e-4,
+    gamma_opt=None,
+) -> list[tuple[float, Controller | None, str]]:
+    """Optimal gammas (and controllers at a common gamma) of many plants in lockstep.
+
+    Parameters
+    ----------
+    plants : sequence of GeneralizedPlant (any sizes; plants of equal sizes are
+        iterated together).
+    gamma : common design gamma; when given, the central controller of every
+        plant is computed at it (ordered-Schur Riccati route, full checks).
+    rtol : relative accuracy of the optimal gammas.
+    gamma_opt : optional per-plant optimal gammas already known (skips the
+        iteration; nan marks a plant to skip).
+
+    Returns
+    -------
+    list of ``(gamma_opt, controller or None, reason)``; ``reason`` is "" on
+    success, else one line (never raised per plant). ``gamma_opt`` is nan where
+    the plant failed.
+
+    Notes
+    -----
+    The bisection of :func:`optimal_gamma` is run for all plants at once: each
+    step stacks the Hamiltonians of the active plants into ``(K, 2n, 2n)``
+    arrays and calls one batched eigen-decomposition, so the per-call Python
+    overhead is paid once per step, not once per plant. The stable invariant
+    subspace comes from the eigenvectors; every gamma found this way is
+    re-checked with the ordered-Schur solver of :func:`feasibility`, and the
+    scalar :func:`optimal_gamma` is used where the two disagree.
+    """
+    plants = list(plants)
+    if gamma is not None:
+        gamma = _check_gamma(gamma)
+    if not (0 < rtol < 1):
+        raise InputError(f"rtol={rtol} must lie in (0, 1); give e.g. 1e-4")
+    N = len(plants)
+    gopt = np.full(N, np.nan)
+    reasons = [""] * N
+    normalized: list[Normalized | None] = [None] * N
+    for i, p in enumerate(plants):
+        try:
+            p.check_conditions()
+            normalized[i] = normalize(p)
+        except ScheduleError as exc:
+            reasons[i] = str(exc)
+    if gamma_opt is not None:
+        known = np.asarray(gamma_opt, dtype=float)
+        if known.shape != (N,):
+            raise InputError(f"gamma_opt has shape {known.shape}, expected ({N},); fix gamma_opt")
+        gopt = known.copy()
+        for i in range(N):
+            if not reasons[i] and not np.isfinite(gopt[i]):
+                reasons[i] = "no optimal gamma given for this plant"
+    else:
+        groups: dict[tuple, list[int]] = {}
+        for i, P in enumerate(normalized):
+            if P is not None:
+                groups.setdefault(P.dims, []).append(i)
+        for idx in groups.values():
+            Ps = [normalized[i] for i in idx]
+            pbs = np.array([parrott_bound(P) for P in Ps])
+            found = _search(
+                lambda act, g, Ps=Ps: _batched_feasible([Ps[k] for k in act], g), pbs, rtol
+            )
+            for i, g in zip(idx, found, strict=True):
+                P = normalized[i]
+                if np.isfinite(g) and not _solve_all(P, float(g), gains=False)[-1]:
+                    gopt[i] = g
+                    continue
+                try:  # disagreement or failure: the scalar path decides and explains
+                    gopt[i] = optimal_gamma(plants[i], rtol=rtol)
+                except ScheduleError as exc:
+                    reasons[i] = str(exc)
+    results: list[tuple[float, Controller | None, str]] = []
+    for i, p in enumerate(plants):
+        if reasons[i] or gamma is None:
+            results.append((float(gopt[i]) if not reasons[i] else float("nan"), None, reasons[i]))
+            continue
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                pieces, zc = _pieces_at(normalized[i], gamma)
+            A, B, C, D = assemble_controller(p, pieces, gamma)
+            K = Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+            results.append((float(gopt[i]), K, ""))
+        except ScheduleError as exc:
+            results.append((float(gopt[i]), None, str(exc)))
+    return results

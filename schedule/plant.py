@@ -1,0 +1,316 @@
+"""The generalized plant of the H-infinity output-feedback problem.
+
+The plant maps the exogenous inputs ``w`` (disturbances, references, noise) and
+the controls ``u`` to the performance outputs ``z`` and the measurements ``y``::
+
+    xdot = A  x + B1  w + B2  u
+    z    = C1 x + D11 w + D12 u
+    y    = C2 x + D21 w + D22 u
+
+The controller closes ``u = K y`` (lower linear fractional transformation).
+
+This module validates the matrices (shapes, finiteness, empty partitions) and
+checks the standard existence assumptions of the Riccati route (Glover and
+Doyle 1988; Zhou, Doyle and Glover 1996, section 14.1 / 17.1):
+
+(A1) (A, B2) stabilizable and (C2, A) detectable;
+(A2) D12 has full column rank and D21 has full row rank;
+(A3) [A - jwI, B2; C1, D12] has full column rank for every real w;
+(A4) [A - jwI, B1; C2, D21] has full row rank for every real w.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields
+
+import numpy as np
+
+from .errors import PlantError
+
+__all__ = ["GeneralizedPlant", "PLANT_KEYS"]
+
+PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
+
+# Relative tolerances of the condition checks.
+_RANK_RTOL = 1e-10  # singular value / largest singular value below this = rank deficient
+_PBH_RTOL = 1e-9  # PBH test: smallest singular value relative to the matrix scale
+_AXIS_RTOL = 1e-7  # a zero or mode within this (relative to ||A||) of the axis is "on" it
+
+
+def _fmt(x: complex | float) -> str:
+    """Short form of a (possibly complex) number: real when the imaginary part is rounding."""
+    z = complex(x)
+    re = z.real + 0.0  # turn -0.0 into 0.0
+    if abs(z.imag) <= 1e-12 * max(1.0, abs(z)):
+        return f"{re:.4g}" if abs(re) > 1e-300 else "0"
+    return f"{re:.4g}{'+' if z.imag >= 0 else '-'}{abs(z.imag):.4g}j"
+
+
+@dataclass(frozen=True)
+class GeneralizedPlant:
+    """Generalized plant ``P = [A B1 B2; C1 D11 D12; C2 D21 D22]``.
+
+    Parameters
+    ----------
+    A : (n, n) state matrix.
+    B1, B2 : (n, nw) exogenous-input and (n, nu) control-input matrices.
+    C1, C2 : (nz, n) performance-output and (ny, n) measurement matrices.
+    D11, D12, D21, D22 : the feed-through blocks, (nz, nw), (nz, nu), (ny, nw), (ny, nu).
+
+    All matrices must be 2-D and finite; every partition must be non-empty
+    (n >= 1, nw, nu, nz, ny >= 1). Construction converts to float64 and
+    raises :class:`~schedule.errors.PlantError` with a one-line message on bad
+    input. The synthesis conditions are checked separately by
+    :meth:`check_conditions`.
+    """
+
+    A: np.ndarray
+    B1: np.ndarray
+    B2: np.ndarray
+    C1: np.ndarray
+    C2: np.ndarray
+    D11: np.ndarray
+    D12: np.ndarray
+    D21: np.ndarray
+    D22: np.ndarray
+
+    def __post_init__(self) -> None:
+        arrays = _validated(
+            {f.name: getattr(self, f.name) for f in fields(self)}
+        )
+        for key, value in arrays.items():
+            object.__setattr__(self, key, value)
+
+    # ----------------------------------------------------------------- sizes
+    @property
+    def n(self) -> int:
+        """Number of states."""
+        return self.A.shape[0]
+
+    @property
+    def nw(self) -> int:
+        """Number of exogenous inputs w."""
+        return self.B1.shape[1]
+
+    @property
+    def nu(self) -> int:
+        """Number of controls u."""
+        return self.B2.shape[1]
+
+    @property
+    def nz(self) -> int:
+        """Number of performance outputs z."""
+        return self.C1.shape[0]
+
+    @property
+    def ny(self) -> int:
+        """Number of measurements y."""
+        return self.C2.shape[0]
+
+    # ----------------------------------------------------------- conversions
+    @classmethod
+    def from_abcd(
+        cls,
+        A: np.ndarray,
+        B: np.ndarray,
+        C: np.ndarray,
+        D: np.ndarray,
+        n_controls: int,
+        n_measurements: int,
+    ) -> GeneralizedPlant:
+        """Split an ``(A, B, C, D)`` realization into the generalized plant.
+
+        The controls are the LAST ``n_controls`` columns of B and D, the
+        measurements the LAST ``n_measurements`` rows of C and D.
+        """
+        B = _as_2d("B", B)
+        C = _as_2d("C", C)
+        D = _as_2d("D", D)
+        nu, ny = int(n_controls), int(n_measurements)
+        if nu < 1 or nu >= B.shape[1]:
+            raise PlantError(
+                f"n_controls={nu} must be between 1 and {B.shape[1] - 1} (B has "
+                f"{B.shape[1]} columns and w needs at least one); fix n_controls"
+            )
+        if ny < 1 or ny >= C.shape[0]:
+            raise PlantError(
+                f"n_measurements={ny} must be between 1 and {C.shape[0] - 1} (C has "
+                f"{C.shape[0]} rows and z needs at least one); fix n_measurements"
+            )
+        if D.shape != (C.shape[0], B.shape[1]):
+            raise PlantError(
+                f"D has shape {D.shape}, expected {(C.shape[0], B.shape[1])} "
+                "(rows of C, columns of B); fix D"
+            )
+        nw, nz = B.shape[1] - nu, C.shape[0] - ny
+        return cls(
+            A=A, B1=B[:, :nw], B2=B[:, nw:], C1=C[:nz], C2=C[nz:],
+            D11=D[:nz, :nw], D12=D[:nz, nw:], D21=D[nz:, :nw], D22=D[nz:, nw:],
+        )
+
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        """The nine matrices by name (copies)."""
+        return {k: getattr(self, k).copy() for k in PLANT_KEYS}
+
+    @classmethod
+    def from_arrays(cls, d: dict[str, np.ndarray]) -> GeneralizedPlant:
+        """Build from a dict with exactly the nine keys of :meth:`to_arrays`."""
+        missing = [k for k in PLANT_KEYS if k not in d]
+        if missing:
+            raise PlantError(f"plant arrays lack {', '.join(missing)}; give all of {PLANT_KEYS}")
+        extra = sorted(set(d) - set(PLANT_KEYS))
+        if extra:
+            raise PlantError(f"unknown plant arrays {', '.join(extra)}; use only {PLANT_KEYS}")
+        return cls(**{k: d[k] for k in PLANT_KEYS})
+
+    # ------------------------------------------------------------ conditions
+    def check_conditions(self) -> None:
+        """Check the existence assumptions (A1)-(A4) of the Riccati route.
+
+        Raises
+        ------
+        PlantError
+            naming the failing condition: the uncontrollable / unobservable
+            unstable mode, the rank of D12 or D21, or the frequency of an
+            invariant zero on the imaginary axis (with the usual remedy).
+
+        Notes
+        -----
+        Stabilizability and detectability use the PBH test on the eigenvalues
+        with non-negative real part. For (A3), with D12 of full column rank,
+        ``[A - sI, B2; C1, D12]`` loses column rank exactly at the unobservable
+        eigenvalues of ``(U' C1, A - B2 D12^+ C1)`` where the columns of U span
+        the orthogonal complement of range(D12); (A4) is the dual statement.
+        """
+        A, B1, B2, C1, C2 = self.A, self.B1, self.B2, self.C1, self.C2
+        scale = max(1.0, float(np.linalg.norm(A, 2)))
+        eigs = np.linalg.eigvals(A)
+        tol_axis = _AXIS_RTOL * scale
+        for lam in eigs[eigs.real >= -tol_axis]:
+            if _pbh_defect(A, B2, lam, scale, columns=True):
+                raise PlantError(
+                    f"(A, B2) is not stabilizable: mode {_fmt(lam)} cannot be moved by the "
+                    "controls; add an actuator acting on it or remove it from the model"
+                )
+            if _pbh_defect(A, C2, lam, scale, columns=False):
+                raise PlantError(
+                    f"(C2, A) is not detectable: mode {_fmt(lam)} is not seen by the "
+                    "measurements; add a sensor seeing it or remove it from the model"
+                )
+        _check_rank("D12", self.D12, full="column")
+        _check_rank("D21", self.D21, full="row")
+        # (A3): zeros of [A - sI, B2; C1, D12] on the imaginary axis.
+        u_, s_, vt = np.linalg.svd(self.D12)
+        pinv = vt.T @ (u_[:, : self.nu].T / s_[:, None])
+        Az = A - B2 @ pinv @ C1
+        Cz = u_[:, self.nu :].T @ C1
+        w = _axis_zero(Az, Cz, scale)
+        if w is not None:
+            raise PlantError(
+                f"[A - jwI, B2; C1, D12] loses rank at w={_fmt(w)} rad/s (invariant zero of the "
+                "control-to-performance path on the imaginary axis); add a small weight on "
+                "the control effort or move the pure integrator/oscillator slightly into the "
+                "left half-plane (e.g. s -> s + 1e-4)"
+            )
+        # (A4): zeros of [A - sI, B1; C2, D21] on the imaginary axis (dual).
+        u_, s_, vt = np.linalg.svd(self.D21)
+        pinv = vt[: self.ny].T @ (u_.T / s_[:, None])
+        Ay = A - B1 @ pinv @ C2
+        By = B1 @ vt[self.ny :].T
+        w = _axis_zero(Ay.T, By.T, scale)
+        if w is not None:
+            raise PlantError(
+                f"[A - jwI, B1; C2, D21] loses rank at w={_fmt(w)} rad/s (invariant zero of the "
+                "disturbance-to-measurement path on the imaginary axis); add a small "
+                "measurement-noise weight or move the pure integrator/oscillator slightly into "
+                "the left half-plane (e.g. s -> s + 1e-4)"
+            )
+
+
+# ---------------------------------------------------------------- helpers
+def _as_2d(name: str, value: object) -> np.ndarray:
+    try:
+        arr = np.array(value, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise PlantError(f"{name} is not a numeric array ({exc}); give a real 2-D array") from None
+    if arr.ndim != 2:
+        raise PlantError(
+            f"{name} must be a 2-D array, got {arr.ndim}-D with shape {arr.shape}; "
+            "reshape it (use np.zeros((k, 0)) for an empty block)"
+        )
+    return arr
+
+
+def _validated(raw: dict[str, object]) -> dict[str, np.ndarray]:
+    """Convert to float64 2-D, check shapes against A, finiteness and partitions."""
+    arrays = {k: _as_2d(k, raw[k]) for k in PLANT_KEYS}
+    A = arrays["A"]
+    if A.shape[0] != A.shape[1]:
+        raise PlantError(f"A must be square, got shape {A.shape}; fix A")
+    n = A.shape[0]
+    if n == 0:
+        raise PlantError("A is empty (no states); a static plant is not supported, give n >= 1")
+    nw, nu = arrays["B1"].shape[1], arrays["B2"].shape[1]
+    nz, ny = arrays["C1"].shape[0], arrays["C2"].shape[0]
+    expected = {
+        "B1": (n, nw), "B2": (n, nu), "C1": (nz, n), "C2": (ny, n),
+        "D11": (nz, nw), "D12": (nz, nu), "D21": (ny, nw), "D22": (ny, nu),
+    }
+    for key, shape in expected.items():
+        if arrays[key].shape != shape:
+            raise PlantError(
+                f"{key} has shape {arrays[key].shape}, expected {shape} "
+                f"(n={n} from A, nw={nw} from B1, nu={nu} from B2, nz={nz} from C1, "
+                f"ny={ny} from C2); fix {key}"
+            )
+    for key in PLANT_KEYS:
+        if not np.all(np.isfinite(arrays[key])):
+            bad = np.argwhere(~np.isfinite(arrays[key]))[0]
+            raise PlantError(
+                f"{key} contains NaN or inf (first at index {tuple(int(i) for i in bad)}); "
+                "fix the model data"
+            )
+    for name, size, what in (
+        ("nw", nw, "no exogenous input w (B1 has 0 columns)"),
+        ("nu", nu, "no control u (B2 has 0 columns)"),
+        ("nz", nz, "no performance output z (C1 has 0 rows)"),
+        ("ny", ny, "no measurement y (C2 has 0 rows)"),
+    ):
+        if size == 0:
+            raise PlantError(f"empty partition {name}=0: {what}; the problem needs at least one")
+    return arrays
+
+
+def _check_rank(name: str, D: np.ndarray, full: str) -> None:
+    rows, cols = D.shape
+    s = np.linalg.svd(D, compute_uv=False)
+    need = cols if full == "column" else rows
+    top = s[0] if s.size else 0.0
+    rank = int(np.sum(s > _RANK_RTOL * top)) if top > 0 else 0
+    if rank < need:
+        what = "control effort" if name == "D12" else "measurement noise"
+        raise PlantError(
+            f"{name} ({rows}x{cols}) has rank {rank}, needs full {full} rank {need}; "
+            f"add a weight on the {what} so every {'control' if name == 'D12' else 'measurement'} "
+            "enters directly"
+        )
+
+
+def _pbh_defect(A: np.ndarray, M: np.ndarray, lam: complex, scale: float, columns: bool) -> bool:
+    """PBH test: True when [A - lam I, M] (columns) / [A - lam I; M] (rows) loses rank."""
+    n = A.shape[0]
+    shifted = A - lam * np.eye(n)
+    block = np.hstack([shifted, M]) if columns else np.vstack([shifted, M])
+    s = np.linalg.svd(block, compute_uv=False)
+    mscale = max(scale, float(np.linalg.norm(M, 2)) if M.size else 0.0)
+    return bool(s[n - 1] < _PBH_RTOL * 1e2 * mscale)
+
+
+def _axis_zero(A: np.ndarray, C: np.ndarray, scale: float) -> float | None:
+    """Frequency of an unobservable eigenvalue of (C, A) on the imaginary axis, else None."""
+    eigs = np.linalg.eigvals(A)
+    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * max(scale, float(np.linalg.norm(A, 2)))]
+    for lam in near:
+        if C.shape[0] == 0 or _pbh_defect(A, C, lam, scale, columns=False):
+            return abs(float(lam.imag))
+    return None

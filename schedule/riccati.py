@@ -1,0 +1,191 @@
+"""Stabilizing solutions of (possibly indefinite) algebraic Riccati equations.
+
+Sign convention used throughout the package::
+
+    A' X + X A + X R X + Q = 0,        R = R', Q = Q' (both may be indefinite),
+
+with Hamiltonian ``H = [A, R; -Q, -A']``. The stabilizing solution X makes
+``A + R X`` Hurwitz; it exists iff H has no imaginary-axis eigenvalues and the
+stable invariant subspace ``range [U1; U2]`` is complementary to
+``range [0; I]`` (U1 invertible), and then ``X = U2 U1^-1`` (Laub 1979;
+Zhou, Doyle and Glover 1996, section 13.1). For the H-infinity X Riccati,
+``R = gamma^-2 B1 B1' - B2 B2'`` in the normalized case.
+
+The solver computes an ordered real Schur form of H (stable eigenvalues first)
+and never raises in the hot path: failure comes back as a reason string.
+
+References
+----------
+A. J. Laub, "A Schur method for solving algebraic Riccati equations",
+IEEE Trans. Automatic Control 24(6), 913-921, 1979. doi:10.1109/TAC.1979.1102178
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg as sla
+
+__all__ = ["RiccatiResult", "solve_riccati", "hamiltonian", "AXIS_RTOL", "RESIDUAL_RTOL"]
+
+AXIS_RTOL = 1e-7  # |Re(eig)| / ||H|| below this: eigenvalue treated as on the imaginary axis
+COND_MAX = 1e12  # condition number of U1 above this: no usable solution
+RESIDUAL_RTOL = 1e-6  # relative residual above this: solution rejected
+
+
+@dataclass(frozen=True)
+class RiccatiResult:
+    """Outcome of :func:`solve_riccati`.
+
+    Attributes
+    ----------
+    X : (n, n) symmetric stabilizing solution, or None when it failed.
+    reason : "" on success, else one line saying why (with the number).
+    residual : relative residual ``||A'X + XA + XRX + Q|| / (||A'X|| + ||XRX|| + ||Q|| + 1)``.
+    axis_margin : smallest ``|Re(eig(H))| / ||H||``.
+    cond_u1 : condition number of U1.
+    """
+
+    X: np.ndarray | None
+    reason: str
+    residual: float = np.nan
+    axis_margin: float = np.nan
+    cond_u1: float = np.nan
+
+    @property
+    def ok(self) -> bool:
+        return self.X is not None
+
+
+def hamiltonian(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray:
+    """The Hamiltonian ``[A, R; -Q, -A']`` of ``A'X + XA + XRX + Q = 0``."""
+    n = A.shape[0]
+    H = np.empty((2 * n, 2 * n))
+    H[:n, :n] = A
+    H[:n, n:] = R
+    H[n:, :n] = -Q
+    H[n:, n:] = -A.T
+    return H
+
+
+def _fro(M: np.ndarray) -> float:
+    return float(np.sqrt(np.vdot(M, M).real))
+
+
+def relative_residual(A: np.ndarray, R: np.ndarray, Q: np.ndarray, X: np.ndarray) -> float:
+    """Relative residual of ``A'X + XA + XRX + Q = 0`` (Frobenius norms).
+
+    ``||A'X + XA + XRX + Q|| / (||Q|| + 2||A|| ||X|| + ||R|| ||X||^2 + f)`` with the floor
+    ``f = 1e-8 (2||A|| + ||R|| + ||Q||)``; the floor keeps the measure meaningful when X
+    and Q are both (near) zero.
+    """
+    AX = A.T @ X
+    res = AX + AX.T + X @ R @ X + Q
+    na, nr, nq, nx = _fro(A), _fro(R), _fro(Q), _fro(X)
+    denom = nq + 2 * na * nx + nr * nx * nx + 1e-8 * (2 * na + nr + nq) + 1e-300
+    return _fro(res) / denom
+
+
+def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
+    """Stabilizing solution of ``A'X + XA + XRX + Q = 0`` by ordered real Schur.
+
+    Parameters
+    ----------
+    A : (n, n) real matrix.
+    R, Q : (n, n) real symmetric matrices (either may be indefinite).
+
+    Returns
+    -------
+    RiccatiResult
+        with ``X`` (symmetric, ``A + R X`` Hurwitz) or ``X=None`` and a reason:
+        Hamiltonian eigenvalue on the imaginary axis (smallest ``|Re|``
+        relative to ``||H||``), ill-conditioned U1 (its condition number) or a
+        residual too large (the relative residual).
+
+    Notes
+    -----
+    The Hamiltonian is first balanced by a symplectic diagonal similarity
+    ``diag(D, D^-1)`` (it keeps the Hamiltonian structure and the solution
+    maps back as ``X = D^-1 Xs D^-1``), which reduces the spread of ``X``'s
+    entries when the states have very different scales.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> A = np.array([[0.0, 1.0], [-2.0, -0.5]]); R = -np.eye(2); Q = np.eye(2)
+    >>> X = solve_riccati(A, R, Q).X
+    >>> bool(np.allclose(A.T @ X + X @ A + X @ R @ X + Q, 0))
+    True
+    """
+    n = A.shape[0]
+    d = _symplectic_scaling(A, R, Q)
+    if np.all(d == 1.0):
+        H = hamiltonian(A, R, Q)
+    else:
+        dd = d[:, None] * d[None, :]
+        H = hamiltonian(A * (d[None, :] / d[:, None]), R / dd, Q * dd)  # D^-1 A D, .., D Q D
+    hnorm = max(float(np.abs(H).sum(axis=0).max()), 1e-300)
+    try:
+        T, Z, sdim = sla.schur(H, output="real", sort="lhp", check_finite=False)
+    except (ValueError, np.linalg.LinAlgError):
+        # LAPACK reports that reordering broke the sort (eigenvalues at the axis)
+        return RiccatiResult(
+            None, "Hamiltonian eigenvalues on the imaginary axis (ordering failed)"
+        )
+    ev = np.diag(T).copy()
+    # the real parts of 2x2 blocks are on the diagonal of the quasi-triangular T
+    margin = float(np.min(np.abs(ev))) / hnorm
+    if margin < AXIS_RTOL or sdim != n:
+        return RiccatiResult(
+            None,
+            f"Hamiltonian eigenvalue on the imaginary axis (smallest |Re|/||H|| = {margin:.2e})",
+            axis_margin=margin,
+        )
+    U1, U2 = Z[:n, :n], Z[n:, :n]
+    sv = np.linalg.svd(U1, compute_uv=False)
+    cond = float(sv[0] / sv[-1]) if sv[-1] > 0 else np.inf
+    if not np.isfinite(cond) or cond > COND_MAX:
+        return RiccatiResult(
+            None,
+            f"U1 ill-conditioned (condition number {cond:.2e}), no usable stabilizing solution",
+            axis_margin=margin,
+            cond_u1=cond,
+        )
+    Xs = np.linalg.solve(U1.T, U2.T).T  # U2 U1^-1
+    Xs = 0.5 * (Xs + Xs.T)
+    X = Xs if np.all(d == 1.0) else Xs / (d[:, None] * d[None, :])  # D^-1 Xs D^-1
+    res = relative_residual(A, R, Q, X)
+    if not np.isfinite(res) or res > RESIDUAL_RTOL:
+        return RiccatiResult(
+            None,
+            f"Riccati residual too large (relative residual {res:.2e})",
+            residual=res,
+            axis_margin=margin,
+            cond_u1=cond,
+        )
+    return RiccatiResult(X, "", residual=res, axis_margin=margin, cond_u1=cond)
+
+
+def _symplectic_scaling(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray:
+    """Diagonal D (powers of 2) balancing the Hamiltonian's row/column norms.
+
+    Returns the vector d of ``D = diag(d)``. Uses the structure-preserving
+    similarity ``diag(D, D^-1)``: ``A -> D^-1 A D``, ``R -> D^-1 R D^-1``,
+    ``Q -> D Q D``; d_i is chosen so the i-th rows of ``[A R]`` and ``[Q A']``
+    blocks have comparable norms (one sweep, rounded to powers of two so the
+    scaling adds no rounding error).
+    """
+    qn = np.abs(Q).sum(axis=1)
+    rn = np.abs(R).sum(axis=1)
+    aa = np.abs(A)
+    tiny = 1e-8 * max(float(aa.sum(axis=1).max() + aa.sum(axis=0).max()), float(qn.max()),
+                      float(rn.max()), 1e-300)
+    ok = (qn > tiny) & (rn > tiny)
+    d = np.ones(A.shape[0])
+    if np.any(ok):
+        # Q entries scale with d^2, R entries with d^-2: balance (||R_i|| / ||Q_i||)^(1/4),
+        # limited to [2^-8, 2^8] so a nearly-zero row never dominates
+        d[ok] = np.clip(np.sqrt(np.sqrt(rn[ok] / qn[ok])), 2.0**-8, 2.0**8)
+        d = np.exp2(np.round(np.log2(d)))
+    return d

@@ -1,0 +1,133 @@
+"""Benchmark of the family synthesis: points per second, 1 vs 2 workers, dask vs local.
+
+Run: python tests/benchmarks/bench_family.py [--points 2000]
+Prints the measured rates and ratios side by side from one run (the machine
+has 2 cores and is shared, so the numbers are noisy).
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+from pathlib import Path
+
+import numpy as np
+
+from schedule.design_file import load_design
+from schedule.family import run_design
+from schedule.types import LinearPlant
+
+ORDER = 7  # plant order; the first-order performance weight adds one state
+
+
+def _model(order: int, seed: int = 3):
+    rng = np.random.default_rng(seed)
+    A0 = rng.normal(size=(order, order)) / np.sqrt(order)
+    A0 -= (np.max(np.linalg.eigvals(A0).real) + 1.0) * np.eye(order)
+    Ai = [0.1 * rng.normal(size=(order, order)) / np.sqrt(order) for _ in range(4)]
+    return A0, Ai, rng.normal(size=(order, 2)), rng.normal(size=(2, order))
+
+
+_CACHE: dict = {}
+
+
+def synthetic_plant(point):
+    """A stable invented plant whose A moves affinely with four scheduling variables."""
+    order = int(point.get("order", ORDER)) if "order" in point else _CACHE.get("order", ORDER)
+    if order not in _CACHE:
+        _CACHE[order] = _model(order)
+    A0, Ai, B, C = _CACHE[order]
+    A = A0 + sum(point[f"p{i + 1}"] * a for i, a in enumerate(Ai))
+    return LinearPlant(A, B, C, np.zeros((2, 2)), tuple(f"x{i}" for i in range(order)),
+                       ("u", "d"), ("y1", "y2"))
+
+
+def synthetic_plant_7(point):
+    _CACHE["order"] = 7
+    return synthetic_plant(point)
+
+
+def synthetic_plant_19(point):
+    _CACHE["order"] = 19
+    return synthetic_plant(point)
+
+
+def design_text(function: str, per_axis: int) -> str:
+    axis = [float(x) for x in np.linspace(0.0, 1.0, per_axis)]
+    variables = "".join(f'[[variable]]\nname = "p{i}"\nunit = "-"\nlower = 0.0\nupper = 1.0\n'
+                        for i in range(1, 5))
+    grid = "".join(f"p{i} = {axis}\n" for i in range(1, 5))
+    return f"""{variables}
+[source]
+model_file = "{Path(__file__).resolve()}"
+function = "{function}"
+[grid]
+{grid}
+[channels]
+controls = ["u"]
+disturbances = ["d"]
+measured = ["y1", "y2"]
+performance = ["y1"]
+[[weights.performance]]
+output = "y1"
+low_frequency_gain = 10.0
+crossover = 0.5
+high_frequency_gain = 0.5
+[[weights.effort]]
+input = "u"
+gain = 0.1
+[[weights.noise]]
+output = "y1"
+gain = 0.01
+[[weights.noise]]
+output = "y2"
+gain = 0.01
+[[weights.disturbance]]
+input = "d"
+gain = 1.0
+"""
+
+
+def timed(spec, **kw) -> tuple[float, int]:
+    t0 = time.perf_counter()
+    run = run_design(spec, None, fit=False, **kw)
+    return time.perf_counter() - t0, len(run.family.points)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--points", type=int, default=2000, help="about this many points")
+    parser.add_argument("--no-dask", action="store_true")
+    args = parser.parse_args()
+    per_axis = max(2, int(round(args.points ** 0.25)))
+    import tempfile
+
+    from schedule.design_file import parse_design
+
+    crane = Path(__file__).resolve().parents[2] / "operating_points" / "crane_design.toml"
+    if crane.exists():
+        try:
+            t, n = timed(load_design(crane))
+            print(f"crane envelope: {n} points in {t:.2f} s = {n / t:.1f} points/s (1 worker)")
+        except Exception as exc:  # report and go on
+            print(f"crane envelope: failed ({exc})")
+    with tempfile.TemporaryDirectory() as tmp:
+        for function, order in (("synthetic_plant_7", 8), ("synthetic_plant_19", 20)):
+            spec = parse_design(design_text(function, per_axis), tmp)
+            t1, n = timed(spec, jobs=1)
+            t2, _ = timed(spec, jobs=2)
+            line = (f"order {order}: {n} points; 1 worker {n / t1:.1f} points/s, 2 workers "
+                    f"{n / t2:.1f} points/s, speed-up {t1 / t2:.2f}x (target >= 1.7x)")
+            if not args.no_dask:
+                import distributed
+
+                with distributed.LocalCluster(n_workers=2, threads_per_worker=1,
+                                              dashboard_address=None) as cluster, \
+                        distributed.Client(cluster) as client:
+                    td, _ = timed(spec, cluster=client)
+                line += f"; dask 2 workers {n / td:.1f} points/s, dask/local time {td / t2:.2f}"
+            print(line)
+
+
+if __name__ == "__main__":
+    main()

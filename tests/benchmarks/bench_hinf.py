@@ -1,0 +1,158 @@
+"""Benchmark of the H-infinity gamma-iteration (prints ratios; not a test).
+
+Run: python tests/benchmarks/bench_hinf.py [--quick]
+
+For state orders 4, 8, 16, 32 it measures, side by side in one run:
+- ours: optimal_gamma + central_controller per operating point (ordered-Schur Riccati);
+- floor: the LAPACK work that iteration performs (the same number of sorted real Schur
+  factorizations of the 2n Hamiltonian plus the n x n solves for X);
+- care: the same bisection with each Riccati equation solved by
+  scipy.linalg.solve_continuous_are (indefinite R, cross term S), plus the same checks;
+and, at order 8, synthesize_many points per second against the per-point loop.
+Timings are noisy on a shared 2-core machine; each figure is the best of a few repeats.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+
+import numpy as np
+import scipy.linalg as sla
+
+from schedule import hinf
+from schedule.plant import GeneralizedPlant
+from schedule.riccati import hamiltonian
+
+
+def make_plants(n: int, count: int, seed: int = 0) -> list[GeneralizedPlant]:
+    """A family of nearby random plants (3 w, 2 u, 3 z, 2 y), all D blocks nonzero."""
+    rng = np.random.default_rng(seed + n)
+    r = rng.standard_normal
+    base = dict(
+        A=r((n, n)) / np.sqrt(n), B1=r((n, 3)), B2=r((n, 2)), C1=r((3, n)), C2=r((2, n)),
+        D11=0.1 * r((3, 3)), D12=r((3, 2)), D21=r((2, 3)), D22=0.1 * r((2, 2)),
+    )
+    plants = []
+    for _ in range(count):
+        d = {k: v + 0.02 * r(v.shape) for k, v in base.items()}
+        plants.append(GeneralizedPlant(**d))
+    return plants
+
+
+def best_of(fn, repeats=3):
+    best = np.inf
+    for _ in range(repeats):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+class Counter:
+    """Wraps hinf.solve_riccati to count the Riccati solves of one run."""
+
+    def __init__(self):
+        self.calls = 0
+        self.inner = hinf.solve_riccati
+
+    def __call__(self, A, R, Q):
+        self.calls += 1
+        return self.inner(A, R, Q)
+
+
+def ours(plants):
+    for p in plants:
+        g = hinf.optimal_gamma(p)
+        hinf.central_controller(p, 1.05 * g)
+
+
+def care_feasible(P: hinf.Normalized, gamma: float) -> bool:
+    """Existence test at gamma with scipy.linalg.solve_continuous_are for X and Y."""
+    sols = []
+    for A, B1, B2, C1, D11, D12 in (hinf._primal(P), hinf._dual(P)):
+        nw = B1.shape[1]
+        B = np.hstack([B1, B2])
+        D1 = np.hstack([D11, D12])
+        Rm = D1.T @ D1
+        Rm[:nw, :nw] -= gamma**2 * np.eye(nw)
+        try:
+            X = sla.solve_continuous_are(A, B, C1.T @ C1, Rm, s=C1.T @ D1)
+        except (np.linalg.LinAlgError, ValueError):
+            return False
+        F = -np.linalg.solve(Rm, D1.T @ C1 + B.T @ X)
+        if np.max(np.linalg.eigvals(A + B @ F).real) >= 0:
+            return False
+        if np.linalg.eigvalsh(X)[0] < -1e-8 * max(1.0, np.abs(X).max()):
+            return False
+        sols.append(X)
+    return float(np.abs(np.linalg.eigvals(sols[0] @ sols[1])).max()) < gamma**2
+
+
+def care_loop(plants):
+    for p in plants:
+        p.check_conditions()
+        P = hinf.normalize(p)
+        g = hinf._search(
+            lambda _i, gs, P=P: [care_feasible(P, float(x)) for x in gs],
+            np.array([P.d11_bound]), 1e-4,
+        )[0]
+        hinf.central_controller(p, 1.05 * g)
+
+
+def floor_time(n: int, calls: int) -> float:
+    """Time of `calls` sorted real Schur factorizations of a 2n Hamiltonian + n x n solves."""
+    rng = np.random.default_rng(1)
+    A = rng.standard_normal((n, n))
+    B = rng.standard_normal((n, 2))
+    H = hamiltonian(A, -B @ B.T, np.eye(n))
+
+    def run():
+        for _ in range(calls):
+            T, Z, _s = sla.schur(H, output="real", sort="lhp", check_finite=False)
+            np.linalg.solve(Z[:n, :n].T, Z[n:, :n].T)
+
+    return best_of(run)
+
+
+def main() -> None:
+    quick = "--quick" in sys.argv
+    orders = (4, 8, 16) if quick else (4, 8, 16, 32)
+    print("order  ms/point(ours)  riccati/pt  floor ms/pt  ours/floor  care ms/pt  care/ours")
+    for n in orders:
+        count = {4: 20, 8: 20, 16: 10, 32: 4}[n]
+        plants = make_plants(n, count)
+        counter = Counter()
+        hinf.solve_riccati = counter
+        try:
+            ours(plants)
+        finally:
+            hinf.solve_riccati = counter.inner
+        calls = counter.calls
+        t_ours = best_of(lambda plants=plants: ours(plants)) / count
+        t_floor = floor_time(n, calls) / count
+        care_plants = plants[: max(2, count // 4)]
+        t_care = best_of(lambda cp=care_plants: care_loop(cp), repeats=1) / len(care_plants)
+        print(
+            f"{n:5d}  {1e3 * t_ours:14.2f}  {calls / count:10.1f}  {1e3 * t_floor:11.2f}  "
+            f"{t_ours / t_floor:10.2f}  {1e3 * t_care:10.2f}  {t_care / t_ours:9.2f}"
+        )
+    n = 8
+    plants = make_plants(n, 400 if not quick else 100, seed=5)
+    t_many = best_of(lambda: hinf.synthesize_many(plants), repeats=2)
+    t_loop = best_of(lambda: [hinf.optimal_gamma(p) for p in plants[:50]], repeats=2) * (
+        len(plants) / 50
+    )
+    print(
+        f"synthesize_many order {n}: {len(plants) / t_many:.0f} points/s (gamma-iteration only), "
+        f"per-point loop {len(plants) / t_loop:.0f} points/s, ratio {t_loop / t_many:.2f}"
+    )
+    g = [r[0] for r in hinf.synthesize_many(plants[:100])]
+    t_ctrl = best_of(
+        lambda: hinf.synthesize_many(plants[:100], gamma=1.05 * np.nanmax(g), gamma_opt=g)
+    )
+    print(f"synthesize_many controllers at a common gamma: {100 / t_ctrl:.0f} points/s")
+
+
+if __name__ == "__main__":
+    main()
