@@ -61,6 +61,7 @@ __all__ = [
     "check_family",
     "propose_points",
     "spec_for_family",
+    "scheduled_loop",
 ]
 
 PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
@@ -803,6 +804,30 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
                 notes.append(f"rate bound not computed: {exc}")
     result.proposals, result.proposed_breakpoints = propose_points(result, family)
     return result
+
+
+def scheduled_loop(family: Family, spec=None, controller=None):
+    """``p -> A_cl(p)``: the frozen scheduled loop at p, for :func:`schedule.rate.simulate_varying`.
+
+    The plant is the design's model linearized at p (with the design's weights)
+    when there is one, else the family's interpolated plant; the controller is
+    the scheduled controller at p. The closed-loop state is ``[x; x_K]``.
+    """
+    from .interpolate import ScheduledController
+
+    if spec is None and family.design_text:
+        spec = spec_for_family(family)
+    sc = controller or ScheduledController.from_family(family)
+    names = family.variable_names
+
+    def state_matrix(p) -> np.ndarray:
+        pts = np.asarray(p, dtype=float).reshape(1, -1)
+        P, _src, ok, reasons = _plants_at(family, sc, spec, pts, names)
+        if not ok[0]:
+            raise InputError(f"the model failed at ({_ptxt(names, pts[0])}): {reasons[0]}")
+        return closed_loop_many(P, sc.evaluate(pts))[0][0]
+
+    return state_matrix
 
 
 def _ptxt(names, row) -> str:

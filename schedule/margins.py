@@ -54,7 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import NumericalError, PlantError
+from .errors import PlantError
 
 __all__ = [
     "DiskMargins",
@@ -67,6 +67,7 @@ __all__ = [
     "disk_phase_margin",
     "mu_upper_bound",
     "default_frequencies",
+    "sigma_max",
 ]
 
 _CHUNK_ELEMENTS = 4_000_000  # complex entries per chunk of batched responses
@@ -163,7 +164,7 @@ def loop_sensitivity(G, K, at: str = "input"):
     N = max(Ag.shape[0], Ak.shape[0])
     Ag, Bg, Cg, Dg = (np.broadcast_to(M, (N,) + M.shape[1:]) for M in (Ag, Bg, Cg, Dg))
     Ak, Bk, Ck, Dk = (np.broadcast_to(M, (N,) + M.shape[1:]) for M in (Ak, Bk, Ck, Dk))
-    n, m, p, k = Ag.shape[1], Bg.shape[2], Cg.shape[1], Ak.shape[1]
+    m, p = Bg.shape[2], Cg.shape[1]
     if Dk.shape[1:] != (m, p):
         raise PlantError(f"controller D is {Dk.shape[1:]} but the plant has {m} controls and "
                          f"{p} measurements; check the channel selection")
@@ -194,7 +195,6 @@ def loop_sensitivity(G, K, at: str = "input"):
         B = np.concatenate([Bg @ Dk @ E, Bk @ E], axis=1)
         C = np.concatenate([ECg, EDgCk], axis=2)
     A = np.concatenate([top, bot], axis=1)
-    del n, k
     return A, B, C, E.copy()
 
 
@@ -668,12 +668,3 @@ def _bisect_many(fun, a: np.ndarray, b: np.ndarray, iterations: int = 100) -> np
         fa = np.where(~keep_b & (last == -1), 0.5 * fa, fa)  # a kept twice: halve f(a)
         last = np.where(keep_b, 1, -1)
     return np.where(ta <= tb, a, b)
-
-
-def check_margin_inputs(alpha) -> None:
-    """Raise NumericalError if a margin came out NaN (a failed frequency evaluation)."""
-    a = np.asarray(alpha)
-    if np.any(np.isnan(a)):
-        i = int(np.flatnonzero(np.isnan(a.reshape(a.shape[0], -1)).any(axis=1))[0])
-        raise NumericalError(f"disk margin is NaN at point {i}; the loop has a pole on the "
-                             "imaginary axis or the frequency grid hit it - check the plant")

@@ -75,9 +75,7 @@ class GeneralizedPlant:
     D22: np.ndarray
 
     def __post_init__(self) -> None:
-        arrays = _validated(
-            {f.name: getattr(self, f.name) for f in fields(self)}
-        )
+        arrays = _validated({f.name: getattr(self, f.name) for f in fields(self)})
         for key, value in arrays.items():
             object.__setattr__(self, key, value)
 
@@ -144,8 +142,15 @@ class GeneralizedPlant:
             )
         nw, nz = B.shape[1] - nu, C.shape[0] - ny
         return cls(
-            A=A, B1=B[:, :nw], B2=B[:, nw:], C1=C[:nz], C2=C[nz:],
-            D11=D[:nz, :nw], D12=D[:nz, nw:], D21=D[nz:, :nw], D22=D[nz:, nw:],
+            A=A,
+            B1=B[:, :nw],
+            B2=B[:, nw:],
+            C1=C[:nz],
+            C2=C[nz:],
+            D11=D[:nz, :nw],
+            D12=D[:nz, nw:],
+            D21=D[nz:, :nw],
+            D22=D[nz:, nw:],
         )
 
     def to_arrays(self) -> dict[str, np.ndarray]:
@@ -186,17 +191,21 @@ class GeneralizedPlant:
         scale = max(1.0, float(np.linalg.norm(A, 2)))
         eigs = np.linalg.eigvals(A)
         tol_axis = _AXIS_RTOL * scale
-        for lam in eigs[eigs.real >= -tol_axis]:
-            if _pbh_defect(A, B2, lam, scale, columns=True):
-                raise PlantError(
-                    f"(A, B2) is not stabilizable: mode {_fmt(lam)} cannot be moved by the "
-                    "controls; add an actuator acting on it or remove it from the model"
-                )
-            if _pbh_defect(A, C2, lam, scale, columns=False):
-                raise PlantError(
-                    f"(C2, A) is not detectable: mode {_fmt(lam)} is not seen by the "
-                    "measurements; add a sensor seeing it or remove it from the model"
-                )
+        suspect = eigs[eigs.real >= -tol_axis]
+        bad = _pbh_defects(A, B2, suspect, scale, columns=True)
+        if bad.any():
+            lam = suspect[np.argmax(bad)]
+            raise PlantError(
+                f"(A, B2) is not stabilizable: mode {_fmt(lam)} cannot be moved by the "
+                "controls; add an actuator acting on it or remove it from the model"
+            )
+        bad = _pbh_defects(A, C2, suspect, scale, columns=False)
+        if bad.any():
+            lam = suspect[np.argmax(bad)]
+            raise PlantError(
+                f"(C2, A) is not detectable: mode {_fmt(lam)} is not seen by the "
+                "measurements; add a sensor seeing it or remove it from the model"
+            )
         _check_rank("D12", self.D12, full="column")
         _check_rank("D21", self.D21, full="row")
         # (A3): zeros of [A - sI, B2; C1, D12] on the imaginary axis.
@@ -253,8 +262,14 @@ def _validated(raw: dict[str, object]) -> dict[str, np.ndarray]:
     nw, nu = arrays["B1"].shape[1], arrays["B2"].shape[1]
     nz, ny = arrays["C1"].shape[0], arrays["C2"].shape[0]
     expected = {
-        "B1": (n, nw), "B2": (n, nu), "C1": (nz, n), "C2": (ny, n),
-        "D11": (nz, nw), "D12": (nz, nu), "D21": (ny, nw), "D22": (ny, nu),
+        "B1": (n, nw),
+        "B2": (n, nu),
+        "C1": (nz, n),
+        "C2": (ny, n),
+        "D11": (nz, nw),
+        "D12": (nz, nu),
+        "D21": (ny, nw),
+        "D22": (ny, nu),
     }
     for key, shape in expected.items():
         if arrays[key].shape != shape:
@@ -296,21 +311,30 @@ def _check_rank(name: str, D: np.ndarray, full: str) -> None:
         )
 
 
-def _pbh_defect(A: np.ndarray, M: np.ndarray, lam: complex, scale: float, columns: bool) -> bool:
-    """PBH test: True when [A - lam I, M] (columns) / [A - lam I; M] (rows) loses rank."""
+def _pbh_defects(
+    A: np.ndarray, M: np.ndarray, lams: np.ndarray, scale: float, columns: bool
+) -> np.ndarray:
+    """PBH test at each of ``lams``: True where [A - lam I, M] (columns=True) or
+    [A - lam I; M] (columns=False) loses rank (one stacked SVD for all lams)."""
     n = A.shape[0]
-    shifted = A - lam * np.eye(n)
-    block = np.hstack([shifted, M]) if columns else np.vstack([shifted, M])
+    if lams.size == 0:
+        return np.zeros(0, dtype=bool)
+    shifted = A[None, :, :] - lams[:, None, None] * np.eye(n)[None]
+    Ms = np.broadcast_to(M.astype(complex), (lams.size,) + M.shape)
+    block = np.concatenate([shifted, Ms], axis=2 if columns else 1)
     s = np.linalg.svd(block, compute_uv=False)
-    mscale = max(scale, float(np.linalg.norm(M, 2)) if M.size else 0.0)
-    return bool(s[n - 1] < _PBH_RTOL * 1e2 * mscale)
+    mscale = max(scale, float(np.abs(M).sum(axis=0 if columns else 1).max()) if M.size else 0.0)
+    return s[:, n - 1] < _PBH_RTOL * 1e2 * mscale
 
 
 def _axis_zero(A: np.ndarray, C: np.ndarray, scale: float) -> float | None:
     """Frequency of an unobservable eigenvalue of (C, A) on the imaginary axis, else None."""
     eigs = np.linalg.eigvals(A)
-    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * max(scale, float(np.linalg.norm(A, 2)))]
-    for lam in near:
-        if C.shape[0] == 0 or _pbh_defect(A, C, lam, scale, columns=False):
-            return abs(float(lam.imag))
-    return None
+    ascale = max(scale, float(np.abs(A).sum(axis=0).max()))
+    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * ascale]
+    if near.size == 0:
+        return None
+    if C.shape[0] == 0:
+        return abs(float(near[0].imag))
+    bad = _pbh_defects(A, C, near, ascale, columns=False)
+    return abs(float(near[np.argmax(bad)].imag)) if bad.any() else None

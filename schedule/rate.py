@@ -25,6 +25,14 @@ again a Lyapunov equation,
 
     A' dP + dP A = -(dA' P + P dA),   dA = dA/dp_j.                 (3)
 
+The bound depends on the state coordinates: any constant change of
+coordinates x = T z gives another valid Lyapunov function V = z' P~(p) z with
+P~ from (1) for T^-1 A(p) T. Badly scaled states (metres next to newtons)
+make ||dP/dp|| huge and the bound useless, so :func:`rate_bounds` first
+balances the closed loop with one constant diagonal T (Osborne/Parlett-Reinsch
+balancing of the mean |A(p)| over the sample, scipy.linalg.matrix_balance)
+and states the bound in those coordinates.
+
 The max over p is taken over the sample of points given (check points and
 grid points): it is a sampled maximum, not a proof over the whole envelope.
 The bound is sufficient, not necessary, and often conservative.
@@ -46,7 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.integrate import solve_ivp
-from scipy.linalg import solve_continuous_lyapunov
+from scipy.linalg import matrix_balance, solve_continuous_lyapunov
 
 from .errors import InputError, NumericalError
 
@@ -141,7 +149,21 @@ class RateBound:
     joint: np.ndarray
 
 
-def rate_bounds(A, dA, names: Sequence[str] | None = None) -> RateBound:
+def balancing_scaling(A) -> np.ndarray:
+    """One constant diagonal scaling t (length n) for a stack of state matrices.
+
+    ``diag(1/t) A diag(t)`` is balanced (rows and columns of similar norm) for the
+    mean of ``|A|`` over the stack (Parlett and Reinsch 1969, via
+    scipy.linalg.matrix_balance without permutation).
+    """
+    A = _stack(A, "closed-loop A")
+    if A.shape[1] == 0:
+        return np.ones(0)
+    _, (scale, _) = matrix_balance(np.mean(np.abs(A), axis=0), permute=False, separate=True)
+    return np.asarray(scale, dtype=float)
+
+
+def rate_bounds(A, dA, names: Sequence[str] | None = None, balance: bool = True) -> RateBound:
     """Rate bounds (2) from closed-loop matrices and their derivatives.
 
     Parameters
@@ -149,6 +171,9 @@ def rate_bounds(A, dA, names: Sequence[str] | None = None) -> RateBound:
     A : (N, n, n) closed-loop state matrices at N sample points, each Hurwitz.
     dA : (N, d, n, n) derivatives dA/dp_j at those points (per unit of p_j).
     names : optional variable names.
+    balance : first change to the balanced coordinates of
+        :func:`balancing_scaling` (one constant T for all points, so the bound
+        stays valid); False keeps the given coordinates.
 
     Returns
     -------
@@ -160,6 +185,10 @@ def rate_bounds(A, dA, names: Sequence[str] | None = None) -> RateBound:
         raise InputError(f"dA has shape {dA.shape}; expected (N, d, n, n) matching A "
                          f"{A.shape}")
     N, d = dA.shape[:2]
+    if balance:
+        t = balancing_scaling(A)
+        A = A * t[None, None, :] / t[None, :, None]
+        dA = dA * t[None, None, None, :] / t[None, None, :, None]
     P = lyapunov_certificates(A)
     norms = np.empty((N, d))
     for j in range(d):

@@ -61,6 +61,23 @@ ACCENT = "#c0392b"  # failing points
 DESIGN = "#1f4e79"  # design (grid) points
 
 
+class _AggFigures:
+    """The two pyplot calls we use, on bare Agg figures: no global backend switch, no GUI."""
+
+    @staticmethod
+    def subplots(*args, figsize=None, **kw):
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+
+        fig = Figure(figsize=figsize)
+        FigureCanvasAgg(fig)
+        return fig, fig.subplots(*args, **kw)
+
+    @staticmethod
+    def close(fig) -> None:
+        fig.clear()
+
+
 def _atomic_save(path: Path, write) -> None:
     fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
     os.close(fd)
@@ -365,6 +382,9 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
                  controller=None) -> dict[str, Path]:
     """Write the plots and the summary page into ``out_dir`` (created if needed).
 
+    ``controller`` (a ScheduledController) draws the controller-gain map; by
+    default the family's stored interpolant is used when it has one.
+
     Returns ``{"markdown": path, "html": path, "figures": [paths]}``.
 
     Raises
@@ -380,13 +400,19 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
     except OSError as exc:
         raise InputError(f"cannot create report folder {out} ({exc.strerror}); check the "
                          "path and permissions") from None
+    if controller is None and getattr(family, "interpolant", None):
+        from .errors import ScheduleError
+        from .interpolate import ScheduledController
+
+        try:
+            controller = ScheduledController.from_family(family)
+        except ScheduleError:
+            controller = None  # the map of controller gains is then left out
     import matplotlib
 
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
-
+    plt = _AggFigures()
     figures: list[Path] = []
-    with plt.rc_context(STYLE):
+    with matplotlib.rc_context(STYLE):
         if len(result.passed):
             figures += _ratio_plots(plt, result, out)
             g = _gamma_opt_plot(plt, result, out)

@@ -16,6 +16,8 @@ and never raises in the hot path: failure comes back as a reason string.
 
 References
 ----------
+(bibliographic details from memory)
+
 A. J. Laub, "A Schur method for solving algebraic Riccati equations",
 IEEE Trans. Automatic Control 24(6), 913-921, 1979. doi:10.1109/TAC.1979.1102178
 """
@@ -45,6 +47,7 @@ class RiccatiResult:
     residual : relative residual ``||A'X + XA + XRX + Q|| / (||A'X|| + ||XRX|| + ||Q|| + 1)``.
     axis_margin : smallest ``|Re(eig(H))| / ||H||``.
     cond_u1 : condition number of U1.
+    eigenvalues : ascending eigenvalues of X (None on failure).
     """
 
     X: np.ndarray | None
@@ -52,6 +55,7 @@ class RiccatiResult:
     residual: float = np.nan
     axis_margin: float = np.nan
     cond_u1: float = np.nan
+    eigenvalues: np.ndarray | None = None
 
     @property
     def ok(self) -> bool:
@@ -120,11 +124,12 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
     """
     n = A.shape[0]
     d = _symplectic_scaling(A, R, Q)
-    if np.all(d == 1.0):
-        H = hamiltonian(A, R, Q)
-    else:
+    scaled = d is not None
+    if scaled:
         dd = d[:, None] * d[None, :]
         H = hamiltonian(A * (d[None, :] / d[:, None]), R / dd, Q * dd)  # D^-1 A D, .., D Q D
+    else:
+        H = hamiltonian(A, R, Q)
     hnorm = max(float(np.abs(H).sum(axis=0).max()), 1e-300)
     try:
         T, Z, sdim = sla.schur(H, output="real", sort="lhp", check_finite=False)
@@ -133,9 +138,8 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
         return RiccatiResult(
             None, "Hamiltonian eigenvalues on the imaginary axis (ordering failed)"
         )
-    ev = np.diag(T).copy()
     # the real parts of 2x2 blocks are on the diagonal of the quasi-triangular T
-    margin = float(np.min(np.abs(ev))) / hnorm
+    margin = float(np.abs(np.diagonal(T)).min()) / hnorm
     if margin < AXIS_RTOL or sdim != n:
         return RiccatiResult(
             None,
@@ -143,8 +147,21 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
             axis_margin=margin,
         )
     U1, U2 = Z[:n, :n], Z[n:, :n]
-    sv = np.linalg.svd(U1, compute_uv=False)
-    cond = float(sv[0] / sv[-1]) if sv[-1] > 0 else np.inf
+    try:
+        Xs = np.linalg.solve(U1.T, U2.T).T  # U2 U1^-1
+    except np.linalg.LinAlgError:
+        return RiccatiResult(
+            None,
+            "U1 singular (condition number inf), no stabilizing solution",
+            axis_margin=margin,
+            cond_u1=np.inf,
+        )
+    Xs = 0.5 * (Xs + Xs.T)
+    # [U1; U2] has orthonormal columns and U2 = Xs U1, so U1'U1 = (I + Xs^2)^-1: the
+    # singular values of U1 are 1 / sqrt(1 + lambda_i(Xs)^2), which gives cond(U1) exactly.
+    ev = np.linalg.eigvalsh(Xs)
+    lam2 = ev * ev
+    cond = float(np.sqrt((1.0 + lam2.max()) / (1.0 + lam2.min())))
     if not np.isfinite(cond) or cond > COND_MAX:
         return RiccatiResult(
             None,
@@ -152,9 +169,11 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
             axis_margin=margin,
             cond_u1=cond,
         )
-    Xs = np.linalg.solve(U1.T, U2.T).T  # U2 U1^-1
-    Xs = 0.5 * (Xs + Xs.T)
-    X = Xs if np.all(d == 1.0) else Xs / (d[:, None] * d[None, :])  # D^-1 Xs D^-1
+    if scaled:
+        X = Xs / dd  # D^-1 Xs D^-1
+        ev = np.linalg.eigvalsh(X)
+    else:
+        X = Xs
     res = relative_residual(A, R, Q, X)
     if not np.isfinite(res) or res > RESIDUAL_RTOL:
         return RiccatiResult(
@@ -164,28 +183,26 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
             axis_margin=margin,
             cond_u1=cond,
         )
-    return RiccatiResult(X, "", residual=res, axis_margin=margin, cond_u1=cond)
+    return RiccatiResult(X, "", residual=res, axis_margin=margin, cond_u1=cond, eigenvalues=ev)
 
 
-def _symplectic_scaling(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray:
-    """Diagonal D (powers of 2) balancing the Hamiltonian's row/column norms.
+def _symplectic_scaling(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray | None:
+    """Diagonal D (powers of 2) balancing the Hamiltonian, or None when D = I.
 
-    Returns the vector d of ``D = diag(d)``. Uses the structure-preserving
-    similarity ``diag(D, D^-1)``: ``A -> D^-1 A D``, ``R -> D^-1 R D^-1``,
-    ``Q -> D Q D``; d_i is chosen so the i-th rows of ``[A R]`` and ``[Q A']``
-    blocks have comparable norms (one sweep, rounded to powers of two so the
-    scaling adds no rounding error).
+    Uses the structure-preserving similarity ``diag(D, D^-1)``: ``A -> D^-1 A D``,
+    ``R -> D^-1 R D^-1``, ``Q -> D Q D``. Row i of Q scales with d_i^2 and of R
+    with d_i^-2, so ``d_i = (||R_i|| / ||Q_i||)^(1/4)`` (1-norms) balances them;
+    rows that are (nearly) zero are left alone, d is limited to [2^-8, 2^8] and
+    rounded to powers of two so the scaling adds no rounding error.
     """
     qn = np.abs(Q).sum(axis=1)
     rn = np.abs(R).sum(axis=1)
-    aa = np.abs(A)
-    tiny = 1e-8 * max(float(aa.sum(axis=1).max() + aa.sum(axis=0).max()), float(qn.max()),
-                      float(rn.max()), 1e-300)
+    tiny = 1e-8 * max(float(np.abs(A).sum(axis=1).max()), float(qn.max()), float(rn.max()))
     ok = (qn > tiny) & (rn > tiny)
-    d = np.ones(A.shape[0])
-    if np.any(ok):
-        # Q entries scale with d^2, R entries with d^-2: balance (||R_i|| / ||Q_i||)^(1/4),
-        # limited to [2^-8, 2^8] so a nearly-zero row never dominates
-        d[ok] = np.clip(np.sqrt(np.sqrt(rn[ok] / qn[ok])), 2.0**-8, 2.0**8)
-        d = np.exp2(np.round(np.log2(d)))
-    return d
+    if not ok.any():
+        return None
+    e = np.zeros(A.shape[0])
+    e[ok] = np.clip(np.rint(0.25 * np.log2(rn[ok] / qn[ok])), -8, 8)
+    if not e.any():
+        return None
+    return np.exp2(e)

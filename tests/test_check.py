@@ -283,3 +283,73 @@ def test_cli_exit_codes_and_json(coarse, fine, tmp_path):
                                "--points", str(pts), "--json"])
     rows = [r for r in json.loads(res.output)["points"] if r["kind"] == "file"]
     assert rows and rows[0]["point"] == {"stiffness": 0.25, "gain": 0.5}
+
+
+def test_time_simulation_of_the_scheduled_loop(fine):
+    """Along a slow sweep through the envelope the frozen-stable scheduled loop decays
+    (solve_ivp with the model's linearization at each instant); a constant trajectory must
+    match the matrix exponential of the frozen loop (scipy.linalg.expm as the reference)."""
+    from scipy.linalg import expm
+
+    from schedule.check import scheduled_loop
+    from schedule.rate import simulate_varying, trajectory_function
+
+    spec, fam = fine
+    Acl = scheduled_loop(fam, spec)
+    n = Acl(np.array([0.5, 0.5])).shape[0]
+    x0 = np.zeros(n)
+    x0[0] = 1.0
+    t, x = simulate_varying(Acl, trajectory_function([0.0, 1.0], [[0.3, 0.5], [0.3, 0.5]]),
+                            x0, 2.0, samples=5)
+    np.testing.assert_allclose(x[-1], expm(2.0 * Acl(np.array([0.3, 0.5]))) @ x0,
+                               rtol=1e-5, atol=1e-8)
+    traj = trajectory_function([0.0, 20.0], [[0.0, 0.0], [1.0, 1.0]])
+    t, x = simulate_varying(Acl, traj, x0, 20.0, samples=50)
+    assert np.linalg.norm(x[-1, :2]) < 0.1 * np.linalg.norm(x0)  # the plant's own states
+
+
+def test_validation_file_points_match_the_model(fine, tmp_path):
+    """A validation file holding the model's own linearizations must give exactly the numbers
+    the model gives at the same points (two routes to the same true plant)."""
+    from schedule.oppoints import OperatingPoints, write_operating_points
+    from schedule.sources import load_model
+
+    spec, fam = fine
+    model = load_model(spec)
+    vals = np.array([[0.3, 0.2], [0.7, 0.9]])
+    plants = [model(v) for v in vals]
+    ops = OperatingPoints(fam.variables, vals, *(np.stack([getattr(p, k) for p in plants])
+                                                for k in "ABCD"),
+                          plants[0].state_names, plants[0].input_names,
+                          plants[0].output_names)
+    write_operating_points(tmp_path / "extra.h5", ops)
+    spec_v = dataclasses.replace(spec, source=dataclasses.replace(
+        spec.source, validation=tmp_path / "extra.h5"))
+    pts = tmp_path / "pts.csv"
+    pts.write_text("stiffness,gain\n0.3,0.2\n0.7,0.9\n")
+    s = CheckSettings.from_spec(spec_v, samples=0, centres=False, midpoints=False, loo=False,
+                                grid=False, points_file=str(pts), **FAST)
+    r = check_family(fam, s, spec=spec_v)
+    v, f = r.kind == "validation", r.kind == "file"
+    assert v.sum() == 2 and f.sum() == 2 and set(r.plant_source[v]) == {"validation"}
+    np.testing.assert_allclose(r.values["norm"][v], r.values["norm"][f], rtol=1e-9)
+    np.testing.assert_allclose(r.values["in_phase_deg"][v], r.values["in_phase_deg"][f],
+                               rtol=1e-9)
+
+
+def test_cli_refine(coarse, tmp_path):
+    from schedule.cli.main import main
+    from schedule.store import read_family
+
+    runner = CliRunner()
+    src = coarse[0].base_dir / "family.h5"
+    out = tmp_path / "refined.h5"
+    res = runner.invoke(main, ["refine", str(src), "--out", str(out), "--budget", "20",
+                               "--samples", "8", "--json"])
+    assert res.exit_code == 0, res.output
+    data = json.loads(res.output)
+    assert data["passed"] and len(data["added"]) >= 1
+    assert len(read_family(out).points) == 4 + len(data["added"])
+    res = runner.invoke(main, ["refine", str(src), "--out", str(tmp_path / "r2.h5"),
+                               "--budget", "0", "--samples", "8", "--quiet"])
+    assert res.exit_code == 1 and "FAIL" in res.output

@@ -41,8 +41,15 @@ def random_plant(rng, n, nw, nu, nz, ny, d11=0.3, d22=0.5):
     """Random plant with every D block nonzero and D12/D21 not normalized."""
     r = rng.standard_normal
     return GeneralizedPlant(
-        A=r((n, n)), B1=r((n, nw)), B2=r((n, nu)), C1=r((nz, n)), C2=r((ny, n)),
-        D11=d11 * r((nz, nw)), D12=r((nz, nu)), D21=r((ny, nw)), D22=d22 * r((ny, nu)),
+        A=r((n, n)),
+        B1=r((n, nw)),
+        B2=r((n, nu)),
+        C1=r((nz, n)),
+        C2=r((ny, n)),
+        D11=d11 * r((nz, nw)),
+        D12=r((nz, nu)),
+        D21=r((ny, nw)),
+        D22=d22 * r((ny, nu)),
     )
 
 
@@ -101,8 +108,15 @@ def assert_meets(plant, K, gamma):
 
 def scalar_plant(a):
     return GeneralizedPlant(
-        A=[[a]], B1=[[1.0, 0.0]], B2=[[1.0]], C1=[[1.0], [0.0]], C2=[[1.0]],
-        D11=np.zeros((2, 2)), D12=[[0.0], [1.0]], D21=[[0.0, 1.0]], D22=[[0.0]],
+        A=[[a]],
+        B1=[[1.0, 0.0]],
+        B2=[[1.0]],
+        C1=[[1.0], [0.0]],
+        C2=[[1.0]],
+        D11=np.zeros((2, 2)),
+        D12=[[0.0], [1.0]],
+        D21=[[0.0, 1.0]],
+        D22=[[0.0]],
     )
 
 
@@ -160,12 +174,20 @@ def lmi_optimal_gamma(p):
     S = cp.Variable((n, n), symmetric=True)
     g = cp.Variable()
     A, B1, C1, D11 = p.A, p.B1, p.C1, p.D11
-    M1 = cp.bmat([[A @ R + R @ A.T, R @ C1.T, B1],
-                  [C1 @ R, -g * np.eye(nz), D11],
-                  [B1.T, D11.T, -g * np.eye(nw)]])
-    M2 = cp.bmat([[A.T @ S + S @ A, S @ B1, C1.T],
-                  [B1.T @ S, -g * np.eye(nw), D11.T],
-                  [C1, D11, -g * np.eye(nz)]])
+    M1 = cp.bmat(
+        [
+            [A @ R + R @ A.T, R @ C1.T, B1],
+            [C1 @ R, -g * np.eye(nz), D11],
+            [B1.T, D11.T, -g * np.eye(nw)],
+        ]
+    )
+    M2 = cp.bmat(
+        [
+            [A.T @ S + S @ A, S @ B1, C1.T],
+            [B1.T @ S, -g * np.eye(nw), D11.T],
+            [C1, D11, -g * np.eye(nz)],
+        ]
+    )
     T1 = sla.block_diag(NR, np.eye(nw))
     T2 = sla.block_diag(NS, np.eye(nz))
     L1 = T1.T @ M1 @ T1
@@ -225,10 +247,11 @@ def test_assemble_reproduces_central_controller_and_pieces_roundtrip():
     assert tuple(d) == PIECE_KEYS
     n = p.n
     shapes = {
-        "state_feedback": (p.nu, n), "worst_disturbance": (p.nw, n),
-        "observer_gain": (n, p.ny), "performance_injection": (n, p.nz), "Z": (n, n),
-        "z_rotation": (p.nz, p.nz), "w_rotation": (p.nw, p.nw),
-        "u_scaling": (p.nu, p.nu), "y_scaling": (p.ny, p.ny),
+        "state_feedback": (p.nu, n),
+        "worst_disturbance": (p.nw, n),
+        "observer_gain": (n, p.ny),
+        "performance_injection": (n, p.nz),
+        "Z": (n, n),
     }
     assert {k: v.shape for k, v in d.items()} == shapes
     rebuilt = assemble_controller(p, ObserverPieces.from_arrays(d), gamma)
@@ -248,9 +271,14 @@ def test_h2_limit_large_gamma():
     Cz = rng.standard_normal((2, n))
     Bw = rng.standard_normal((n, 2))
     p = GeneralizedPlant(
-        A=A, B1=np.hstack([Bw, np.zeros((n, 1))]), B2=B2,
-        C1=np.vstack([Cz, np.zeros((1, n))]), C2=C2, D11=np.zeros((3, 3)),
-        D12=np.array([[0.0], [0.0], [1.0]]), D21=np.array([[0.0, 0.0, 1.0]]),
+        A=A,
+        B1=np.hstack([Bw, np.zeros((n, 1))]),
+        B2=B2,
+        C1=np.vstack([Cz, np.zeros((1, n))]),
+        C2=C2,
+        D11=np.zeros((3, 3)),
+        D12=np.array([[0.0], [0.0], [1.0]]),
+        D21=np.array([[0.0, 0.0, 1.0]]),
         D22=np.zeros((1, 1)),
     )
     X2 = sla.solve_continuous_are(A, B2, Cz.T @ Cz, np.eye(1))
@@ -330,8 +358,17 @@ def test_gamma_below_optimum_names_condition():
         central_controller(p, 0.9 * g)
     msg = str(err.value)
     assert "\n" not in msg
-    assert any(k in msg for k in ("X Riccati", "Y Riccati", "X not positive", "Y not positive",
-                                  "coupling condition", "D11 bound"))
+    assert any(
+        k in msg
+        for k in (
+            "X Riccati",
+            "Y Riccati",
+            "X not positive",
+            "Y not positive",
+            "coupling condition",
+            "D11 bound",
+        )
+    )
     assert "gamma=" in msg
 
 
@@ -339,8 +376,15 @@ def test_gamma_below_parrott_bound():
     # D11 = [[2]] with D12 = [0;1]-type structure: z1 = 2 w1 cannot be touched by u or seen
     # by y, so every closed loop has norm >= 2 (Parrott; hand argument).
     p = GeneralizedPlant(
-        A=[[-1.0]], B1=[[1.0, 0.0]], B2=[[1.0]], C1=[[1.0], [0.0]], C2=[[1.0]],
-        D11=[[2.0, 0.0], [0.0, 0.0]], D12=[[0.0], [1.0]], D21=[[0.0, 1.0]], D22=[[0.0]],
+        A=[[-1.0]],
+        B1=[[1.0, 0.0]],
+        B2=[[1.0]],
+        C1=[[1.0], [0.0]],
+        C2=[[1.0]],
+        D11=[[2.0, 0.0], [0.0, 0.0]],
+        D12=[[0.0], [1.0]],
+        D21=[[0.0, 1.0]],
+        D22=[[0.0]],
     )
     assert gamma_lower_bound(p) >= 2.0
     assert optimal_gamma(p) >= 2.0
@@ -412,3 +456,100 @@ def test_synthesize_many_below_optimum_gives_reason_not_exception():
     assert res[1][1] is None and "gamma=2" in res[1][2]
     with pytest.raises(InputError):
         synthesize_many([scalar_plant(0.0)], gamma=-1.0)
+
+
+# ------------------------------------------------------------------ coordinate invariance
+
+
+def _orthogonal(rng, k):
+    q, r = np.linalg.qr(rng.standard_normal((k, k)))
+    return q * np.sign(np.diag(r))
+
+
+def test_signal_coordinates_change_controller_as_theory_says():
+    # Same problem in other signal coordinates (z' = Qz z, w = Qw' w', u = M u'):
+    # ||z'|| = ||z||, ||w'|| = ||w||, so gamma_opt is unchanged, and the controller is
+    # K' = M^-1 K on the same (plant-state) realization; the pieces transform the same way
+    # (hand algebra on the definitions in ObserverPieces).
+    rng = np.random.default_rng(41)
+    p = random_plant(rng, 5, 3, 2, 4, 2)
+    Qz, Qw = _orthogonal(rng, 4), _orthogonal(rng, 3)
+    M = rng.standard_normal((2, 2)) + 2 * np.eye(2)
+    q = GeneralizedPlant(
+        A=p.A,
+        B1=p.B1 @ Qw.T,
+        B2=p.B2 @ M,
+        C1=Qz @ p.C1,
+        C2=p.C2,
+        D11=Qz @ p.D11 @ Qw.T,
+        D12=Qz @ p.D12 @ M,
+        D21=p.D21 @ Qw.T,
+        D22=p.D22 @ M,
+    )
+    g = optimal_gamma(p)
+    assert abs(optimal_gamma(q) / g - 1) < 2e-4
+    K = central_controller(p, 1.2 * g)
+    Kq = central_controller(q, 1.2 * g)
+    Mi = np.linalg.inv(M)
+    tol = dict(rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(Kq.A, K.A, **tol)
+    np.testing.assert_allclose(Kq.B, K.B, **tol)
+    np.testing.assert_allclose(Kq.C, Mi @ K.C, **tol)
+    np.testing.assert_allclose(Kq.D, Mi @ K.D, **tol)
+    np.testing.assert_allclose(Kq.pieces.Z, K.pieces.Z, **tol)
+    np.testing.assert_allclose(Kq.pieces.state_feedback, Mi @ K.pieces.state_feedback, **tol)
+    np.testing.assert_allclose(Kq.pieces.worst_disturbance, Qw @ K.pieces.worst_disturbance, **tol)
+    np.testing.assert_allclose(Kq.pieces.observer_gain, K.pieces.observer_gain, **tol)
+
+
+def test_interpolated_pieces_give_nearby_controller():
+    # Stilwell and Rugh (1999): interpolating the plant and the observer-form pieces
+    # separately and re-assembling gives the controller of the in-between plant up to
+    # O(h^2). Linear interpolation over a step h = 0.01 of a smooth path P0 + t P1.
+    rng = np.random.default_rng(42)
+    p0 = random_plant(rng, 4, 3, 2, 3, 2)
+    p1 = random_plant(rng, 4, 3, 2, 3, 2)
+
+    def at(t):
+        return GeneralizedPlant(
+            **{k: getattr(p0, k) + 0.3 * t * getattr(p1, k) for k in p0.to_arrays()}
+        )
+
+    gamma = 1.3 * max(optimal_gamma(at(0.0)), optimal_gamma(at(0.01)))
+    a = central_controller(at(0.0), gamma).pieces.to_arrays()
+
+    def error(h):
+        b = central_controller(at(h), gamma).pieces.to_arrays()
+        mid = ObserverPieces.from_arrays({k: 0.5 * (a[k] + b[k]) for k in a})
+        K_interp = assemble_controller(at(h / 2), mid, gamma)
+        K_true = central_controller(at(h / 2), gamma)
+        scale = max(np.abs(y).max() for y in K_true.as_tuple())
+        return (
+            max(np.abs(x - y).max() for x, y in zip(K_interp, K_true.as_tuple(), strict=True))
+            / scale
+        )
+
+    e1, e2 = error(0.01), error(0.005)
+    assert e2 < 1e-3
+    assert e2 / e1 < 0.35  # halving h divides the error by about 4: second order
+
+
+def test_agrees_with_package_norms_module():
+    # Integration with schedule.norms (another module, checked there against its own
+    # references): same closed-loop poles as the hand-written LFT above, norm below gamma.
+    norms = pytest.importorskip("schedule.norms")
+    rng = np.random.default_rng(51)
+    p = random_plant(rng, 4, 3, 2, 3, 2)
+    gamma = 1.1 * optimal_gamma(p)
+    K = central_controller(p, gamma)
+    A, B, C, D = norms.closed_loop(p, K)
+    A2 = lower_lft(p, K.as_tuple())[0]
+    np.testing.assert_allclose(
+        np.sort_complex(np.linalg.eigvals(A)),
+        np.sort_complex(np.linalg.eigvals(A2)),
+        rtol=1e-8,
+        atol=1e-10,
+    )
+    nrm, _peak = norms.h_infinity_norm(A, B, C, D)
+    assert nrm < gamma
+    assert abs(nrm / sweep_norm(A, B, C, D) - 1) < 1e-4

@@ -195,3 +195,32 @@ def test_unstable_loop_has_zero_margin_and_bad_shapes_raise():
         disk_margins(ss([1.0], [1.0, 1.0]), (np.zeros((0, 0)), np.zeros((0, 2)),
                                                np.zeros((1, 0)), np.zeros((1, 2))))
     assert disk_phase_margin(2.0) == pytest.approx(90.0)
+
+
+@settings(max_examples=20, deadline=None)
+@given(st.floats(1.2, 6.0), st.lists(st.floats(0.3, 4.0), min_size=2, max_size=3))
+def test_classical_margins_match_brentq_on_scipy_response(k, poles):
+    """Gain and phase crossovers of L = k / prod(s + p_i) against scipy.optimize.brentq run on
+    scipy.signal.freqresp values (the classical definitions: PM = 180 - |angle L| where
+    |L| = 1; GM = 1/|L| where the phase is -180 deg)."""
+    from scipy.optimize import brentq
+
+    den = np.poly(-np.asarray(poles))
+    if np.any(np.roots(np.polyadd(den, [k])).real >= -1e-6):
+        return
+    G = ss([k], den)
+
+    def L(w):
+        return signal.freqresp(([k], den), [w])[1][0]
+
+    cm = classical_margins(G, NEG1)
+    if abs(L(1e-6)) <= 1.0 + 1e-6:
+        assert np.isinf(cm.phase_deg[0, 0])  # |L| < 1 everywhere: no gain crossover
+        return
+    wc = brentq(lambda w: abs(L(w)) - 1.0, 1e-6, 1e4, xtol=1e-14)
+    assert cm.phase_deg[0, 0] == pytest.approx(180 - abs(np.degrees(np.angle(L(wc)))), abs=1e-6)
+    if len(poles) == 3:  # three lags reach -180 deg exactly once
+        assert L(1e-6).imag * L(1e4).imag < 0
+        w180 = brentq(lambda w: L(w).imag, 1e-6, 1e4, xtol=1e-14)
+        if L(w180).real < 0:
+            assert cm.gain_db[0, 0] == pytest.approx(-20 * np.log10(abs(L(w180))), abs=1e-6)

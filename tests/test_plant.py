@@ -18,10 +18,15 @@ from schedule.plant import PLANT_KEYS, GeneralizedPlant
 def _good(n=2):
     rng = np.random.default_rng(0)
     return dict(
-        A=rng.standard_normal((n, n)), B1=rng.standard_normal((n, 2)),
-        B2=rng.standard_normal((n, 1)), C1=rng.standard_normal((2, n)),
-        C2=rng.standard_normal((1, n)), D11=np.zeros((2, 2)), D12=np.array([[0.0], [1.0]]),
-        D21=np.array([[0.0, 1.0]]), D22=np.zeros((1, 1)),
+        A=rng.standard_normal((n, n)),
+        B1=rng.standard_normal((n, 2)),
+        B2=rng.standard_normal((n, 1)),
+        C1=rng.standard_normal((2, n)),
+        C2=rng.standard_normal((1, n)),
+        D11=np.zeros((2, 2)),
+        D12=np.array([[0.0], [1.0]]),
+        D21=np.array([[0.0, 1.0]]),
+        D22=np.zeros((1, 1)),
     )
 
 
@@ -131,8 +136,15 @@ def _integrator(C1, D12, B1, D21, A=None):
     A = np.zeros((1, 1)) if A is None else A
     n = A.shape[0]
     return GeneralizedPlant(
-        A=A, B1=B1, B2=np.ones((n, 1)), C1=C1, C2=np.ones((1, n)),
-        D11=np.zeros((C1.shape[0], B1.shape[1])), D12=D12, D21=D21, D22=np.zeros((1, 1)),
+        A=A,
+        B1=B1,
+        B2=np.ones((n, 1)),
+        C1=C1,
+        C2=np.ones((1, n)),
+        D11=np.zeros((C1.shape[0], B1.shape[1])),
+        D12=D12,
+        D21=D21,
+        D22=np.zeros((1, 1)),
     )
 
 
@@ -140,8 +152,10 @@ def test_imaginary_axis_zero_of_control_path_reports_frequency():
     # Pure integrator xdot = u + w1, z = [0*x; u]: [A - sI, B2; C1, D12] = [-s 1; 0 0; 0 1]
     # loses column rank at s = 0 (hand-derived), i.e. w = 0.
     p = _integrator(
-        C1=np.zeros((2, 1)), D12=np.array([[0.0], [1.0]]),
-        B1=np.array([[1.0, 0.0]]), D21=np.array([[0.0, 1.0]]),
+        C1=np.zeros((2, 1)),
+        D12=np.array([[0.0], [1.0]]),
+        B1=np.array([[1.0, 0.0]]),
+        D21=np.array([[0.0, 1.0]]),
     )
     with pytest.raises(PlantError) as err:
         p.check_conditions()
@@ -154,9 +168,15 @@ def test_imaginary_axis_zero_of_oscillator_reports_its_frequency():
     # A - B2 D12^+ C1 = A has eigenvalues +-2j unobservable from U'C1 = 0 -> w = 2.
     A = np.array([[0.0, 2.0], [-2.0, 0.0]])
     p = GeneralizedPlant(
-        A=A, B1=np.array([[1.0, 0.0], [0.0, 0.0]]), B2=np.array([[0.0], [1.0]]),
-        C1=np.zeros((2, 2)), C2=np.array([[1.0, 0.0]]), D11=np.zeros((2, 2)),
-        D12=np.array([[0.0], [1.0]]), D21=np.array([[0.0, 1.0]]), D22=np.zeros((1, 1)),
+        A=A,
+        B1=np.array([[1.0, 0.0], [0.0, 0.0]]),
+        B2=np.array([[0.0], [1.0]]),
+        C1=np.zeros((2, 2)),
+        C2=np.array([[1.0, 0.0]]),
+        D11=np.zeros((2, 2)),
+        D12=np.array([[0.0], [1.0]]),
+        D21=np.array([[0.0, 1.0]]),
+        D22=np.zeros((1, 1)),
     )
     with pytest.raises(PlantError, match=r"w=2 rad/s"):
         p.check_conditions()
@@ -166,8 +186,10 @@ def test_imaginary_axis_zero_of_disturbance_path():
     # Integrator whose state the disturbance does not drive (B1 = 0):
     # [A - sI, B1; C2, D21] = [-s 0 0; 1 0 1] loses row rank at s = 0.
     p = _integrator(
-        C1=np.array([[1.0], [0.0]]), D12=np.array([[0.0], [1.0]]),
-        B1=np.zeros((1, 2)), D21=np.array([[0.0, 1.0]]),
+        C1=np.array([[1.0], [0.0]]),
+        D12=np.array([[0.0], [1.0]]),
+        B1=np.zeros((1, 2)),
+        D21=np.array([[0.0, 1.0]]),
     )
     with pytest.raises(PlantError) as err:
         p.check_conditions()
@@ -177,7 +199,10 @@ def test_imaginary_axis_zero_of_disturbance_path():
 def test_integrator_moved_into_left_half_plane_passes():
     # The remedy the message suggests (s -> s + 1e-4) must be accepted.
     p = _integrator(
-        C1=np.zeros((2, 1)), D12=np.array([[0.0], [1.0]]),
-        B1=np.array([[1.0, 0.0]]), D21=np.array([[0.0, 1.0]]), A=np.array([[-1e-4]]),
+        C1=np.zeros((2, 1)),
+        D12=np.array([[0.0], [1.0]]),
+        B1=np.array([[1.0, 0.0]]),
+        D21=np.array([[0.0, 1.0]]),
+        A=np.array([[-1e-4]]),
     )
     p.check_conditions()

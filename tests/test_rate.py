@@ -94,3 +94,28 @@ def test_unstable_frozen_loop_and_bad_trajectory_raise():
         trajectory_function([0.0, 0.0], [[1.0], [2.0]])
     p = trajectory_function([0.0, 1.0, 2.0], [[0.0], [2.0], [2.0]])
     assert p(0.5)[0] == pytest.approx(1.0) and p(5.0)[0] == 2.0
+
+
+def test_balancing_removes_the_effect_of_badly_scaled_states():
+    """A constant change of state units must not wreck the bound.
+
+    Outside reference: a similarity transform x = S z leaves every frozen loop
+    and every trajectory's stability unchanged (basic linear algebra), so a
+    sensible bound should not shrink by the 1e8 that S = diag(1, 1e4)
+    inflicts on the raw Lyapunov sensitivity. Balancing (Parlett and Reinsch
+    1969) recovers the well-scaled bound up to the powers of two it uses.
+    """
+    from schedule.rate import rate_bounds
+
+    p = np.linspace(0.0, 1.0, 7)
+    A = np.stack([np.array([[-1.0, 2.0 + p_], [-(2.0 + p_), -1.5]]) for p_ in p])
+    dA = np.stack([np.array([[0.0, 1.0], [-1.0, 0.0]])[None] for _ in p])
+    S = np.diag([1.0, 1e4])
+    Si = np.diag([1.0, 1e-4])
+    A_bad = Si @ A @ S
+    dA_bad = Si @ dA @ S
+    good = rate_bounds(A, dA, balance=False).single[0]
+    raw = rate_bounds(A_bad, dA_bad, balance=False).single[0]
+    balanced = rate_bounds(A_bad, dA_bad).single[0]
+    assert raw < 1e-3 * good          # the raw bound collapses with the units
+    assert 0.25 * good < balanced < 4.0 * good

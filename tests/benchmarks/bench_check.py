@@ -141,8 +141,11 @@ def main(n: int = 10000) -> None:
     try:
         from distributed import Client, LocalCluster
 
+        # one BLAS thread per worker process, as joblib/loky does by itself
+        one = {k: "1" for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}
         with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                          dashboard_address=None) as lc, Client(lc) as client:
+                          dashboard_address=None, env=one) as lc, Client(lc) as client:
+            client.run(lambda: __import__("schedule.check"))  # warm the workers' imports
             v3 = run("dask LocalCluster, 2 workers", lambda: check_points(
                 P, K, fam.gamma, s, cluster=client))
         assert np.array_equal(v1["norm_ok"], v3["norm_ok"])
