@@ -83,7 +83,7 @@ from .errors import (
     ScheduleError,
 )
 from .plant import GeneralizedPlant
-from .riccati import RESIDUAL_RTOL, solve_riccati
+from .riccati import RESIDUAL_RTOL, axis_distance, solve_riccati
 
 __all__ = [
     "Controller",
@@ -702,8 +702,8 @@ def _batched_side(A, B1, B2, C1, D11, D12, gamma) -> tuple[np.ndarray, np.ndarra
     order = np.argsort(w.real, axis=1)
     wr = np.take_along_axis(w.real, order, axis=1)
     hnorm = np.abs(H).sum(axis=1).max(axis=1) + 1e-300
-    margin = np.minimum(-wr[:, n - 1], wr[:, n]) / hnorm
-    ok &= margin > AXIS_RTOL_BATCH
+    ok &= (wr[:, n - 1] < 0) & (wr[:, n] > 0)
+    ok &= axis_distance(w, hnorm[:, None]).min(axis=1) > 1.0
     U = np.take_along_axis(V, order[:, None, :n], axis=2)
     U1, U2 = U[:, :n], U[:, n:]
     X = np.zeros((K, n, n))
@@ -744,9 +744,6 @@ def _batched_feasible(Ps: list[Normalized], gamma: np.ndarray) -> np.ndarray:
     phi = np.where(ok, rho / (gamma * gamma) - 1.0, np.nan)
     ok &= rho < gamma * gamma * (1 - COUPLING_RTOL)
     return ok, phi
-
-
-AXIS_RTOL_BATCH = 1e-7
 
 
 def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:

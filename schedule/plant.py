@@ -34,7 +34,10 @@ PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
 # Relative tolerances of the condition checks.
 _RANK_RTOL = 1e-10  # singular value / largest singular value below this = rank deficient
 _PBH_RTOL = 1e-9  # PBH test: smallest singular value relative to the matrix scale
-_AXIS_RTOL = 1e-7  # a zero or mode within this (relative to ||A||) of the axis is "on" it
+# a zero lam with |Re lam| <= _AXIS_RTOL |lam| + _AXIS_ATOL ||A|| is "on" the imaginary axis
+# (same rule as the Riccati solver: slow but genuine poles and zeros are not on it)
+_AXIS_RTOL = 1e-6
+_AXIS_ATOL = 1e-12
 
 
 def _fmt(x: complex | float) -> str:
@@ -190,8 +193,7 @@ class GeneralizedPlant:
         A, B1, B2, C1, C2 = self.A, self.B1, self.B2, self.C1, self.C2
         scale = max(1.0, float(np.linalg.norm(A, 2)))
         eigs = np.linalg.eigvals(A)
-        tol_axis = _AXIS_RTOL * scale
-        suspect = eigs[eigs.real >= -tol_axis]
+        suspect = eigs[eigs.real >= -(_AXIS_RTOL * np.abs(eigs) + _AXIS_ATOL * scale)]
         bad = _pbh_defects(A, B2, suspect, scale, columns=True)
         if bad.any():
             lam = suspect[np.argmax(bad)]
@@ -331,7 +333,7 @@ def _axis_zero(A: np.ndarray, C: np.ndarray, scale: float) -> float | None:
     """Frequency of an unobservable eigenvalue of (C, A) on the imaginary axis, else None."""
     eigs = np.linalg.eigvals(A)
     ascale = max(scale, float(np.abs(A).sum(axis=0).max()))
-    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * ascale]
+    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * np.abs(eigs) + _AXIS_ATOL * ascale]
     if near.size == 0:
         return None
     if C.shape[0] == 0:

@@ -29,9 +29,24 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg as sla
 
-__all__ = ["RiccatiResult", "solve_riccati", "hamiltonian", "AXIS_RTOL", "RESIDUAL_RTOL"]
+__all__ = [
+    "RiccatiResult",
+    "solve_riccati",
+    "hamiltonian",
+    "axis_distance",
+    "AXIS_RTOL",
+    "AXIS_ATOL",
+    "RESIDUAL_RTOL",
+]
 
-AXIS_RTOL = 1e-7  # |Re(eig)| / ||H|| below this: eigenvalue treated as on the imaginary axis
+# An eigenvalue lam of H counts as on the imaginary axis when
+#     |Re lam| <= AXIS_RTOL |lam| + AXIS_ATOL ||H||.
+# The relative part catches axis eigenvalues moved off the axis by rounding (a defective
+# pair splits by about sqrt(eps) |lam|); the absolute part catches eigenvalues at the
+# origin. A slow but genuine pole (a weight pole at 0.004 rad/s in a plant with
+# ||H|| = 1e5, or an integrator moved to s = -1e-4) is not on the axis.
+AXIS_RTOL = 1e-6
+AXIS_ATOL = 1e-12
 COND_MAX = 1e12  # condition number of U1 above this: no usable solution
 RESIDUAL_RTOL = 1e-6  # relative residual above this: solution rejected
 
@@ -45,7 +60,8 @@ class RiccatiResult:
     X : (n, n) symmetric stabilizing solution, or None when it failed.
     reason : "" on success, else one line saying why (with the number).
     residual : relative residual ``||A'X + XA + XRX + Q|| / (||A'X|| + ||XRX|| + ||Q|| + 1)``.
-    axis_margin : smallest ``|Re(eig(H))| / ||H||``.
+    axis_margin : smallest ``|Re lam| / (AXIS_RTOL |lam| + AXIS_ATOL ||H||)`` over the
+        eigenvalues lam of H (below 1: on the imaginary axis).
     cond_u1 : condition number of U1.
     eigenvalues : ascending eigenvalues of X (None on failure).
     """
@@ -71,6 +87,30 @@ def hamiltonian(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray:
     H[n:, :n] = -Q
     H[n:, n:] = -A.T
     return H
+
+
+def _schur_eigen_parts(T: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Real parts and moduli of the eigenvalues of a standardized real Schur form T.
+
+    A 2x2 block [a b; c a] (b c < 0) holds a ± sqrt(b c): real part a, modulus
+    sqrt(a^2 - b c); 1x1 blocks hold real eigenvalues.
+    """
+    re = np.diagonal(T).copy()
+    mod = np.abs(re)
+    sub = np.diagonal(T, -1)
+    pair = np.flatnonzero(sub != 0.0)
+    if pair.size:
+        sup = np.diagonal(T, 1)[pair]
+        m = np.sqrt(np.abs(re[pair] * re[pair + 1] - sup * sub[pair]))
+        mod[pair] = m
+        mod[pair + 1] = m
+    return re, mod
+
+
+def axis_distance(eigenvalues: np.ndarray, hnorm: float) -> np.ndarray:
+    """``|Re lam| / (AXIS_RTOL |lam| + AXIS_ATOL ||H||)``; at most 1 means on the axis."""
+    lam = np.asarray(eigenvalues)
+    return np.abs(lam.real) / (AXIS_RTOL * np.abs(lam) + AXIS_ATOL * hnorm + 1e-300)
 
 
 def _fro(M: np.ndarray) -> float:
@@ -138,12 +178,15 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
         return RiccatiResult(
             None, "Hamiltonian eigenvalues on the imaginary axis (ordering failed)"
         )
-    # the real parts of 2x2 blocks are on the diagonal of the quasi-triangular T
-    margin = float(np.abs(np.diagonal(T)).min()) / hnorm
-    if margin < AXIS_RTOL or sdim != n:
+    re, mod = _schur_eigen_parts(T)
+    ratio = np.abs(re) / (AXIS_RTOL * mod + AXIS_ATOL * hnorm + 1e-300)
+    k = int(np.argmin(ratio))
+    margin = float(ratio[k])
+    if margin <= 1.0 or sdim != n:
         return RiccatiResult(
             None,
-            f"Hamiltonian eigenvalue on the imaginary axis (smallest |Re|/||H|| = {margin:.2e})",
+            "Hamiltonian eigenvalue on the imaginary axis "
+            f"(|lambda|={mod[k]:.3g}, |Re|={abs(re[k]):.2e}, ||H||={hnorm:.3g})",
             axis_margin=margin,
         )
     U1, U2 = Z[:n, :n], Z[n:, :n]

@@ -553,3 +553,21 @@ def test_agrees_with_package_norms_module():
     nrm, _peak = norms.h_infinity_norm(A, B, C, D)
     assert nrm < gamma
     assert abs(nrm / sweep_norm(A, B, C, D) - 1) < 1e-4
+
+
+def test_stiff_plant_with_slow_and_fast_modes():
+    # The scalar problem above (a = 1) plus two decoupled stable modes at -0.004 and -1e5 that
+    # neither w nor u excite and neither z nor y see: they change nothing, so gamma_opt is
+    # still 1 + sqrt(3) (hand argument). The slow mode gives Hamiltonian eigenvalues +-0.004
+    # with ||H|| ~ 1e5: a genuine slow pole, not an imaginary-axis eigenvalue.
+    p = scalar_plant(1.0).to_arrays()
+    p["A"] = np.diag([1.0, -0.004, -1e5])
+    p["B1"] = np.vstack([p["B1"], np.zeros((2, 2))])
+    p["B2"] = np.vstack([p["B2"], np.zeros((2, 1))])
+    p["C1"] = np.hstack([p["C1"], np.zeros((2, 2))])
+    p["C2"] = np.hstack([p["C2"], np.zeros((1, 2))])
+    plant = GeneralizedPlant(**p)
+    g_star = 1.0 + np.sqrt(3.0)
+    assert abs(optimal_gamma(plant) / g_star - 1) < 2e-4
+    K = central_controller(plant, 1.05 * g_star)
+    assert_meets(plant, K.as_tuple(), 1.05 * g_star)
