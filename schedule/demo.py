@@ -68,10 +68,10 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     -------
     DemoOutcome
     """
+    from .atomic import write_dir_atomic
     from .check import CheckSettings, check_family
     from .design_file import load_design
     from .export import build_table, file_sha256, write_table
-    from .export.atomic import write_dir_atomic
     from .family import design_family
     from .report import write_report
     from .simulate import crane_trajectory, result_csv, result_plots, simulate

@@ -71,7 +71,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -83,7 +83,13 @@ from .errors import (
     ScheduleError,
 )
 from .plant import GeneralizedPlant
-from .riccati import RESIDUAL_RTOL, axis_distance, solve_riccati
+from .riccati import (
+    RESIDUAL_RTOL,
+    _symplectic_scaling,
+    axis_distance,
+    solve_riccati,
+    stable_solution,
+)
 
 __all__ = [
     "Controller",
@@ -94,6 +100,7 @@ __all__ = [
     "gamma_lower_bound",
     "optimal_gamma",
     "central_controller",
+    "central_controller_checked",
     "assemble_controller",
     "feasibility",
     "synthesize_many",
@@ -234,27 +241,41 @@ def normalize(plant: GeneralizedPlant) -> Normalized:
 
 
 def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
-    P = Normalized(
-        A=plant.A,
-        B1=plant.B1 @ Sw.T,
-        B2=plant.B2 @ Tu,
-        C1=Sz @ plant.C1,
-        C2=Ty @ plant.C2,
-        D11=Sz @ plant.D11 @ Sw.T,
-        D12=Sz @ plant.D12 @ Tu,
-        D21=Ty @ plant.D21 @ Sw.T,
+    A = plant.A
+    B1 = plant.B1 @ Sw.T
+    B2 = plant.B2 @ Tu
+    C1 = Sz @ plant.C1
+    C2 = Ty @ plant.C2
+    D11 = Sz @ plant.D11 @ Sw.T
+    D12 = Sz @ plant.D12 @ Tu
+    D21 = Ty @ plant.D21 @ Sw.T
+    dims = (plant.n, plant.nw, plant.nu, plant.nz, plant.ny)
+    return Normalized(
+        A=A,
+        B1=B1,
+        B2=B2,
+        C1=C1,
+        C2=C2,
+        D11=D11,
+        D12=D12,
+        D21=D21,
         Sz=Sz,
         Sw=Sw,
         Tu=Tu,
         Ty=Ty,
-        dims=(plant.n, plant.nw, plant.nu, plant.nz, plant.ny),
+        dims=dims,
+        d11_bound=_parrott_of(D11, dims),
+        x_side=_side(A, B1, B2, C1, D11, D12),
+        y_side=_side(A.T, C1.T, C2.T, B1.T, D11.T, D21.T),
     )
-    return replace(P, d11_bound=_parrott(P), x_side=_side(*_primal(P)), y_side=_side(*_dual(P)))
 
 
 def _d11_blocks(P: Normalized):
-    _, nw, nu, nz, ny = P.dims
-    D = P.D11
+    return _d11_split(P.D11, P.dims)
+
+
+def _d11_split(D: np.ndarray, dims):
+    _, nw, nu, nz, ny = dims
     r, c = nz - nu, nw - ny
     return D[:r, :c], D[:r, c:], D[r:, :c], D[r:, c:]
 
@@ -269,13 +290,13 @@ def parrott_bound(plant: GeneralizedPlant | Normalized) -> float:
     return P.d11_bound
 
 
-def _parrott(P: Normalized) -> float:
-    d1111, d1112, d1121, _ = _d11_blocks(P)
+def _parrott_of(D11: np.ndarray, dims) -> float:
+    d1111, d1112, d1121, _ = _d11_split(D11, dims)
     top = np.hstack([d1111, d1112])
     left = np.vstack([d1111, d1121])
-    a = np.linalg.norm(top, 2) if top.size else 0.0
-    b = np.linalg.norm(left, 2) if left.size else 0.0
-    return float(max(a, b))
+    a = float(np.linalg.svd(top, compute_uv=False)[0]) if top.size else 0.0
+    b = float(np.linalg.svd(left, compute_uv=False)[0]) if left.size else 0.0
+    return max(a, b)
 
 
 # ============================================================= Riccati data
@@ -406,6 +427,180 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
     return X, Y, F, (Ft.T if gains else None), rho, ""
 
 
+# ================================================== quick feasibility tests
+_NAN3 = (np.nan, np.nan, np.nan)
+
+
+def _side_measure(ev: np.ndarray) -> float:
+    """``-1 / lambda`` for the eigenvalue of X largest in modulus (nan when X = 0).
+
+    As gamma falls to the optimum of a Riccati sub-problem, one eigenvalue of X grows
+    without bound and comes back from minus infinity below it (U1 loses rank), so
+    ``-1 / lambda`` passes smoothly through zero: negative above, positive below.
+    """
+    lam = ev[0] if -ev[0] > ev[-1] else ev[-1]
+    return -1.0 / lam if lam != 0.0 else np.nan
+
+
+class _QuickSide:
+    """gamma-independent data of one Riccati equation for the quick test.
+
+    With ``Rm = D1.'D1. - gamma^2 diag(I, 0)``, the Hamiltonian of the X equation
+    (module docstring, step 3) is ``H = H0 + W Rm^-1 [D1.'C1, B']`` where
+    ``H0 = [A, 0; -C1'C1, -A']`` and ``W = [-B; C1'D1.]``: one small solve, one
+    product and one sum per gamma. A symplectic diagonal scaling (as in
+    :func:`schedule.riccati.solve_riccati`) is chosen at the first gamma and kept.
+    """
+
+    __slots__ = ("n", "H0", "W", "SBt", "DtD", "E", "dd", "first")
+
+    def __init__(self, side: _Side):
+        A = side.A
+        n = A.shape[0]
+        m = side.DtD.shape[0]
+        self.n = n
+        H0 = np.zeros((2 * n, 2 * n))
+        H0[:n, :n] = A
+        H0[n:, :n] = -side.CtC
+        H0[n:, n:] = -A.T
+        self.H0 = H0
+        self.W = np.vstack([-side.B, side.S.T])
+        self.SBt = side.SBt
+        self.DtD = side.DtD
+        E = np.zeros((m, m))
+        E[np.arange(side.nw), np.arange(side.nw)] = 1.0
+        self.E = E
+        self.dd = None
+        self.first = True
+
+    def _scale(self, H: np.ndarray) -> np.ndarray:
+        n = self.n
+        d = _symplectic_scaling(H[:n, :n], H[:n, n:], -H[n:, :n])
+        self.first = False
+        if d is None:
+            return H
+        left = np.concatenate([1.0 / d, d])
+        right = np.concatenate([d, 1.0 / d])
+        self.H0 = self.H0 * left[:, None] * right[None, :]
+        self.W = self.W * left[:, None]
+        self.SBt = self.SBt * right[None, :]
+        self.dd = d[:, None] * d[None, :]
+        return H * left[:, None] * right[None, :]
+
+    def solve(self, gamma: float) -> tuple[np.ndarray | None, float]:
+        """(X or None, measure): X >= 0 stabilizing, else None; see :func:`_side_measure`."""
+        try:
+            sol = np.linalg.solve(self.DtD - (gamma * gamma) * self.E, self.SBt)
+        except np.linalg.LinAlgError:
+            return None, np.nan
+        H = self.H0 + self.W @ sol
+        if self.first:
+            H = self._scale(H)
+        hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
+        X, ev, code, _value, _margin = stable_solution(H, self.n, hnorm)
+        if code:
+            return None, np.nan
+        if self.dd is not None:
+            X = X / self.dd
+            ev = np.linalg.eigvalsh(X)
+        meas = _side_measure(ev)
+        if ev[0] < -PSD_RTOL * max(1.0, abs(ev[-1])):
+            return None, (meas if meas > 0 else np.nan)
+        return X, meas
+
+
+class _Quick:
+    """Quick existence test at gamma for one normalized plant (no residual, no reasons).
+
+    Same conditions as :func:`feasibility` (D11 bound, stabilizing X >= 0 and Y >= 0,
+    ``rho(XY) < gamma^2``) through :func:`schedule.riccati.stable_solution`, with all
+    gamma-independent work done once. Returns ``(feasible, (mX, mY, mC))`` where the
+    measures are continuous in gamma near the boundary of their condition (negative
+    where it holds): ``mX``, ``mY`` from :func:`_side_measure`, ``mC = rho(XY)/gamma^2 - 1``.
+    At an infeasible gamma only the failing condition's measure is given (nan when
+    the failure has no continuous measure, e.g. an imaginary-axis eigenvalue).
+    """
+
+    __slots__ = ("pb", "x", "y")
+
+    def __init__(self, P: Normalized):
+        self.pb = P.d11_bound
+        self.x = _QuickSide(P.x_side)
+        self.y = _QuickSide(P.y_side)
+
+    def __call__(self, gamma: float) -> tuple[bool, tuple[float, float, float]]:
+        if not gamma > self.pb * (1 + 1e-12):
+            return False, _NAN3
+        X, mx = quick_side_solve(self.x, gamma)
+        if X is None:
+            return False, (mx, np.nan, np.nan)
+        Y, my = quick_side_solve(self.y, gamma)
+        if Y is None:
+            return False, (np.nan, my, np.nan)
+        g2 = gamma * gamma
+        mc = float(np.abs(np.linalg.eigvals(X @ Y)).max()) / g2 - 1.0
+        if mc >= -COUPLING_RTOL:
+            return False, (np.nan, np.nan, mc)
+        return True, (mx, my, mc)
+
+
+def quick_side_solve(side: _QuickSide, gamma: float):
+    """One side of the quick test (module-level so benchmarks can count the calls)."""
+    return side.solve(gamma)
+
+
+def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> float:
+    """Scalar twin of :func:`_search` (same steps, plain floats): ``test(gamma) ->
+    (feasible, (mX, mY, mC))``. Returns the feasible end, nan when nothing up to
+    GAMMA_MAX is feasible."""
+    lo = float(pb)
+    hi = math.inf
+    m_lo = list(_NAN3)
+    m_hi = list(_NAN3)
+    last = 0
+    start, step = (2.0 * lo if lo > 0 else 1.0), 4.0
+    if hint is not None and math.isfinite(hint) and hint > lo:
+        start, step = float(hint), 1.03
+    tested = False
+    eps = 0.3 * math.log1p(rtol)
+    for _ in range(400):
+        if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < 1e-10)):
+            break
+        up = hi == math.inf
+        down = not up and lo * step < hi
+        if not tested:
+            g = start
+        elif up:
+            g = lo * step
+        elif down:
+            g = hi / step
+        else:
+            xl, xh = math.log(lo), math.log(hi)
+            x = xl + 0.5 * (xh - xl)
+            if xh - xl > 2 * eps:
+                for k in range(3):
+                    pl, ph = m_lo[k], m_hi[k]
+                    if pl > 0 and ph < 0:  # false for nan
+                        x = min(max(xl + pl / (pl - ph) * (xh - xl), xl + eps), xh - eps)
+                        break
+            g = math.exp(x)
+        if tested and (up or down):
+            step = min(step * step, 1e4)
+        tested = True
+        feas, meas = test(g)
+        if feas:
+            if last == 1:
+                m_lo = [0.5 * v for v in m_lo]
+            hi, m_hi, last = g, list(meas), 1
+        else:
+            if last == -1:
+                m_hi = [0.5 * v for v in m_hi]
+            lo, m_lo, last = max(lo, g), list(meas), -1
+            if g > GAMMA_MAX:
+                return math.nan
+    return hi if hi < math.inf else math.nan
+
+
 # ============================================================= gamma bounds
 def _check_gamma(gamma: float) -> float:
     try:
@@ -512,16 +707,25 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
     plant.check_conditions()
     if not (0 < rtol < 1):
         raise InputError(f"rtol={rtol} must lie in (0, 1); give e.g. 1e-4")
-    P = normalize(plant)
+    return _optimal_gamma(normalize(plant), rtol, hint)
 
-    def test(_idx, g):
-        out = [_solve_all(P, float(gk), gains=False) for gk in g]
+
+def _optimal_gamma(P: Normalized, rtol: float, hint: float | None = None) -> float:
+    """optimal_gamma on a normalized plant: quick search, full check at the end."""
+    g = _search_one(_Quick(P), P.d11_bound, rtol, hint)
+    if math.isfinite(g) and not _solve_all(P, g, gains=False)[-1]:
+        return g
+    # the quick test and the full check disagree (or nothing was found): search again
+    # with the full check at every step; it decides and explains
+
+    def test(_idx, gs):
+        out = [_solve_all(P, float(gk), gains=False) for gk in gs]
         ok = np.array([not r[-1] for r in out])
-        phi = np.array([r[-2] / (gk * gk) - 1.0 for r, gk in zip(out, g, strict=True)])
+        phi = np.array([r[-2] / (gk * gk) - 1.0 for r, gk in zip(out, gs, strict=True)])
         return ok, phi
 
-    hints = None if hint is None else np.array([float(hint)])
-    g = float(_search(test, np.array([parrott_bound(P)]), rtol, hints)[0])
+    hints = None if not math.isfinite(g) else np.array([g])
+    g = float(_search(test, np.array([P.d11_bound]), rtol, hints)[0])
     if not np.isfinite(g):
         raise InfeasibleGammaError(
             f"no feasible gamma up to {GAMMA_MAX:.0e}; at that gamma: "
@@ -574,16 +778,19 @@ def assemble_controller(
         when ``I + D_K0 D22`` is singular (the loop with D22 is ill-posed).
     """
     gamma = _check_gamma(gamma)
-    P = normalize(plant)
+    return _assemble(normalize(plant), plant.D22, pieces, gamma)
+
+
+def _assemble(P: Normalized, D22: np.ndarray, pieces: ObserverPieces, gamma: float):
+    """:func:`assemble_controller` on a normalized plant (``D22`` of the original one)."""
     Ak, Bk, Ck, Dk = _controller_normalized(P, pieces, gamma)
     Tu, Ty = P.Tu, P.Ty
     Bk = Bk @ Ty
     Ck = Tu @ Ck
     Dk = Tu @ Dk @ Ty
-    D22 = plant.D22
     if not np.any(D22):
         return Ak, Bk, Ck, Dk
-    E = np.eye(plant.nu) + Dk @ D22
+    E = np.eye(D22.shape[1]) + Dk @ D22
     cond = np.linalg.cond(E)
     if not np.isfinite(cond) or cond > SHIFT_COND_MAX:
         raise NumericalError(
@@ -650,122 +857,171 @@ def central_controller(plant: GeneralizedPlant, gamma: float) -> Controller:
     """
     gamma = _check_gamma(gamma)
     plant.check_conditions()
-    P = normalize(plant)
+    return _central(plant, normalize(plant), gamma)
+
+
+def _central(plant: GeneralizedPlant, P: Normalized, gamma: float) -> Controller:
+    """The central controller of a plant whose conditions were already checked."""
     pieces, zc = _pieces_at(P, gamma)
-    A, B, C, D = assemble_controller(plant, pieces, gamma)
+    A, B, C, D = _assemble(P, plant.D22, pieces, gamma)
     return Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
 
 
+def central_controller_checked(plant: GeneralizedPlant, gamma: float) -> Controller:
+    """:func:`central_controller` for a plant that already passed
+    :meth:`GeneralizedPlant.check_conditions` (e.g. in the gamma phase of a family run):
+    the same controller, without checking the conditions again."""
+    return _central(plant, normalize(plant), _check_gamma(gamma))
+
+
 # ================================================== many plants in lockstep
-def _stack(Ps: list[Normalized], key: str) -> np.ndarray:
-    return np.stack([getattr(P, key) for P in Ps])
+class _StackedSide:
+    """gamma-independent data of one Riccati equation for many plants (see :class:`_QuickSide`)."""
+
+    def __init__(self, sides: list[_Side]):
+        A = np.stack([s.A for s in sides])
+        K, n = A.shape[0], A.shape[1]
+        self.n, self.nw = n, sides[0].nw
+        H0 = np.zeros((K, 2 * n, 2 * n))
+        H0[:, :n, :n] = A
+        H0[:, n:, :n] = -np.stack([s.CtC for s in sides])
+        H0[:, n:, n:] = -np.swapaxes(A, 1, 2)
+        self.H0 = H0
+        self.W = np.concatenate(
+            [-np.stack([s.B for s in sides]), np.swapaxes(np.stack([s.S for s in sides]), 1, 2)],
+            axis=1,
+        )
+        self.SBt = np.stack([s.SBt for s in sides])
+        self.DtD = np.stack([s.DtD for s in sides])
+
+    def solve(self, idx: np.ndarray, gamma: np.ndarray):
+        """Batched side test for the plants ``idx`` at ``gamma`` (one per plant).
+
+        Returns ``(ok, X, meas)``: ok where a stabilizing X >= 0 passed the checks,
+        X (k, n, n), and the measure of :func:`_side_measure` (nan where X does not
+        exist). Eigen-decomposition of the stacked Hamiltonians (one LAPACK call per
+        stack through numpy's gufuncs); the stable invariant subspace is spanned by the
+        eigenvectors of the n eigenvalues with negative real part.
+        """
+        n, nw = self.n, self.nw
+        k = idx.size
+        Rm = self.DtD[idx]
+        j = np.arange(nw)
+        Rm[:, j, j] -= (gamma * gamma)[:, None]
+        SBt = self.SBt[idx]
+        ok = np.ones(k, dtype=bool)
+        try:
+            sol = np.linalg.solve(Rm, SBt)
+        except np.linalg.LinAlgError:
+            sol = np.zeros(SBt.shape)
+            for i in range(k):
+                try:
+                    sol[i] = np.linalg.solve(Rm[i], SBt[i])
+                except np.linalg.LinAlgError:
+                    ok[i] = False
+        H = self.H0[idx] + self.W[idx] @ sol
+        H[~ok] = np.eye(2 * n)  # placeholders; already failed
+        w, V = np.linalg.eig(H)
+        order = np.argsort(w.real, axis=1)
+        wr = np.take_along_axis(w.real, order, axis=1)
+        hnorm = np.abs(H).sum(axis=1).max(axis=1) + 1e-300
+        ok &= (wr[:, n - 1] < 0) & (wr[:, n] > 0)
+        ok &= axis_distance(w, hnorm[:, None]).min(axis=1) > 1.0
+        U = np.take_along_axis(V, order[:, None, :n], axis=2)
+        U1, U2 = U[:, :n], U[:, n:]
+        try:
+            Xc = np.swapaxes(np.linalg.solve(np.swapaxes(U1, 1, 2), np.swapaxes(U2, 1, 2)), 1, 2)
+        except np.linalg.LinAlgError:
+            Xc = np.zeros((k, n, n), dtype=complex)
+            for i in np.flatnonzero(ok):
+                try:
+                    Xc[i] = np.linalg.solve(U1[i].T, U2[i].T).T
+                except np.linalg.LinAlgError:
+                    ok[i] = False
+        X = Xc.real
+        X = 0.5 * (X + np.swapaxes(X, 1, 2))
+        xn = np.sqrt((X * X).sum(axis=(1, 2)))
+        ok &= np.sqrt((Xc.imag**2).sum(axis=(1, 2))) <= 1e-6 * (xn + 1e-300)
+        # relative residual (same measure as schedule.riccati.relative_residual)
+        Ah, Rh, Qh = H[:, :n, :n], H[:, :n, n:], -H[:, n:, :n]
+        AX = np.swapaxes(Ah, 1, 2) @ X
+        res = AX + np.swapaxes(AX, 1, 2) + X @ Rh @ X + Qh
+        na, nr, nq = (np.sqrt((M * M).sum(axis=(1, 2))) for M in (Ah, Rh, Qh))
+        denom = nq + 2 * na * xn + nr * xn * xn + 1e-8 * (2 * na + nr + nq) + 1e-300
+        with np.errstate(invalid="ignore"):
+            ok &= np.sqrt((res * res).sum(axis=(1, 2))) / denom <= RESIDUAL_RTOL
+        X[~ok] = 0.0
+        ev = np.linalg.eigvalsh(X)
+        big = np.where(-ev[:, 0] > ev[:, -1], ev[:, 0], ev[:, -1])
+        with np.errstate(divide="ignore"):
+            meas = np.where(ok & (big != 0), -1.0 / np.where(big != 0, big, 1.0), np.nan)
+        psd = ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
+        meas = np.where(psd | (meas > 0), meas, np.nan)
+        return ok & psd, X, meas
 
 
-def _batched_side(A, B1, B2, C1, D11, D12, gamma) -> tuple[np.ndarray, np.ndarray]:
-    """Batched X test: returns (ok (K,), X (K, n, n)).
+class _Stacked:
+    """Quick batched existence test for plants of equal sizes (see :class:`_Quick`)."""
 
-    Eigen-decomposition of the stacked Hamiltonians (one LAPACK call per stack
-    through numpy's gufuncs); the stable invariant subspace is spanned by the
-    eigenvectors of the n eigenvalues with negative real part.
-    """
-    K, n = A.shape[0], A.shape[1]
-    nw = B1.shape[2]
-    B = np.concatenate([B1, B2], axis=2)
-    D1 = np.concatenate([D11, D12], axis=2)
-    D1t = np.swapaxes(D1, 1, 2)
-    Rm = D1t @ D1
-    Rm[:, np.arange(nw), np.arange(nw)] -= (gamma * gamma)[:, None]
-    S = D1t @ C1
-    Bt = np.swapaxes(B, 1, 2)
-    ok = np.ones(K, dtype=bool)
-    try:
-        sol = np.linalg.solve(Rm, np.concatenate([S, Bt], axis=2))
-    except np.linalg.LinAlgError:
-        sol = np.zeros(Rm.shape[:2] + (S.shape[2] + Bt.shape[2],))
-        for k in range(K):
-            try:
-                sol[k] = np.linalg.solve(Rm[k], np.concatenate([S[k], Bt[k]], axis=1))
-            except np.linalg.LinAlgError:
-                ok[k] = False
-    RS, RB = sol[:, :, :n], sol[:, :, n:]
-    Ah = A - B @ RS
-    Rh = -B @ RB
-    Qh = np.swapaxes(C1, 1, 2) @ C1 - np.swapaxes(S, 1, 2) @ RS
-    Rh = 0.5 * (Rh + np.swapaxes(Rh, 1, 2))
-    Qh = 0.5 * (Qh + np.swapaxes(Qh, 1, 2))
-    H = np.concatenate(
-        [np.concatenate([Ah, Rh], axis=2), np.concatenate([-Qh, -np.swapaxes(Ah, 1, 2)], axis=2)],
-        axis=1,
-    )
-    H[~ok] = np.eye(2 * n)  # placeholders; already failed
-    w, V = np.linalg.eig(H)
-    order = np.argsort(w.real, axis=1)
-    wr = np.take_along_axis(w.real, order, axis=1)
-    hnorm = np.abs(H).sum(axis=1).max(axis=1) + 1e-300
-    ok &= (wr[:, n - 1] < 0) & (wr[:, n] > 0)
-    ok &= axis_distance(w, hnorm[:, None]).min(axis=1) > 1.0
-    U = np.take_along_axis(V, order[:, None, :n], axis=2)
-    U1, U2 = U[:, :n], U[:, n:]
-    X = np.zeros((K, n, n))
-    try:
-        Xc = np.swapaxes(np.linalg.solve(np.swapaxes(U1, 1, 2), np.swapaxes(U2, 1, 2)), 1, 2)
-    except np.linalg.LinAlgError:
-        Xc = np.zeros((K, n, n), dtype=complex)
-        for k in np.flatnonzero(ok):
-            try:
-                Xc[k] = np.linalg.solve(U1[k].T, U2[k].T).T
-            except np.linalg.LinAlgError:
-                ok[k] = False
-    X = Xc.real
-    X = 0.5 * (X + np.swapaxes(X, 1, 2))
-    xn = np.sqrt((X * X).sum(axis=(1, 2)))
-    ok &= np.sqrt((Xc.imag**2).sum(axis=(1, 2))) <= 1e-6 * (xn + 1e-300)
-    # relative residual (same measure as schedule.riccati.relative_residual)
-    AX = np.swapaxes(Ah, 1, 2) @ X
-    res = AX + np.swapaxes(AX, 1, 2) + X @ Rh @ X + Qh
-    na, nr, nq = (np.sqrt((M * M).sum(axis=(1, 2))) for M in (Ah, Rh, Qh))
-    denom = nq + 2 * na * xn + nr * xn * xn + 1e-8 * (2 * na + nr + nq) + 1e-300
-    ok &= np.sqrt((res * res).sum(axis=(1, 2))) / denom <= RESIDUAL_RTOL
-    ev = np.linalg.eigvalsh(X)
-    ok &= ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
-    return ok, X
+    def __init__(self, Ps: list[Normalized]):
+        self.pb = np.array([P.d11_bound for P in Ps])
+        self.x = _StackedSide([P.x_side for P in Ps])
+        self.y = _StackedSide([P.y_side for P in Ps])
 
-
-def _batched_feasible(Ps: list[Normalized], gamma: np.ndarray) -> np.ndarray:
-    """Batched existence test at per-plant gammas (Parrott bound, X, Y, coupling)."""
-    st = {k: _stack(Ps, k) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21")}
-    okx, X = _batched_side(st["A"], st["B1"], st["B2"], st["C1"], st["D11"], st["D12"], gamma)
-    T = lambda M: np.swapaxes(M, 1, 2)  # noqa: E731
-    oky, Y = _batched_side(
-        T(st["A"]), T(st["C1"]), T(st["C2"]), T(st["B1"]), T(st["D11"]), T(st["D21"]), gamma
-    )
-    ok = okx & oky
-    rho = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1)
-    phi = np.where(ok, rho / (gamma * gamma) - 1.0, np.nan)
-    ok &= rho < gamma * gamma * (1 - COUPLING_RTOL)
-    return ok, phi
+    def __call__(self, idx: np.ndarray, gamma: np.ndarray):
+        """``(feasible (k,), measures (k, 3))`` for the plants ``idx`` at ``gamma``."""
+        idx = np.asarray(idx)
+        gamma = np.asarray(gamma, dtype=float)
+        k = idx.size
+        meas = np.full((k, 3), np.nan)
+        feas = gamma > self.pb[idx] * (1 + 1e-12)
+        a = np.flatnonzero(feas)
+        if a.size == 0:
+            return feas, meas
+        okx, X, mx = self.x.solve(idx[a], gamma[a])
+        meas[a, 0] = mx
+        feas[a[~okx]] = False
+        a, X = a[okx], X[okx]
+        if a.size == 0:
+            return feas, meas
+        oky, Y, my = self.y.solve(idx[a], gamma[a])
+        meas[a, 1] = my
+        feas[a[~oky]] = False
+        meas[a[~oky], 0] = np.nan
+        a, X, Y = a[oky], X[oky], Y[oky]
+        if a.size == 0:
+            return feas, meas
+        g2 = gamma[a] ** 2
+        mc = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1) / g2 - 1.0
+        meas[a, 2] = mc
+        feas[a[mc >= -COUPLING_RTOL]] = False
+        # at an infeasible gamma keep only the failing condition's measure
+        bad_c = a[mc >= -COUPLING_RTOL]
+        meas[bad_c, :2] = np.nan
+        return feas, meas
 
 
 def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     """Bracket and shrink in log(gamma) many problems in lockstep.
 
-    ``test(indices, gammas) -> (feasible, phi)`` with ``phi = rho(XY)/gamma^2 - 1``
-    where both Riccati solutions exist (nan elsewhere). Each problem starts at
+    ``test(indices, gammas) -> (feasible, measures)`` with ``measures`` of shape
+    ``(k, 3)``: the continuous measures ``(mX, mY, mC)`` of :class:`_Quick` (a 1-D
+    array is taken as ``mC = rho(XY)/gamma^2 - 1`` alone). Each problem starts at
     its hint (a neighbour's optimal gamma) with a first step of 3 %, or at
     ``2 * D11 bound`` (1 when the bound is 0) with a first step of 4; the step
     is squared after every move (capped at 1e4) until the optimum is
-    bracketed. The bracket then shrinks by regula falsi on phi in log(gamma)
-    with the Illinois modification (Dowell and Jarratt 1971) where phi is
-    known at both ends (the coupling condition is the active one), by
-    bisection elsewhere, until ``hi <= lo (1 + rtol)``. Every accepted point
-    is a feasibility test, so the answer is as safe as plain bisection.
-    Returns the feasible ends, nan where no gamma up to GAMMA_MAX is feasible.
+    bracketed. The bracket then shrinks by regula falsi in log(gamma) with the
+    Illinois modification (Dowell and Jarratt 1971) on the measure of the
+    condition that failed at the lower end, where it is known at both ends, and by
+    bisection elsewhere, until ``hi <= lo (1 + rtol)``. Every accepted point is a
+    feasibility test, so the answer is as safe as plain bisection. Returns the
+    feasible ends, nan where no gamma up to GAMMA_MAX is feasible.
     """
     K = len(pbs)
     lo = np.asarray(pbs, dtype=float).copy()  # known infeasible (gamma must exceed the bound)
     hi = np.full(K, np.inf)  # known feasible
-    phi_lo = np.full(K, np.nan)
-    phi_hi = np.full(K, np.nan)
+    m_lo = np.full((K, 3), np.nan)
+    m_hi = np.full((K, 3), np.nan)
     last = np.zeros(K, dtype=int)  # +1: hi moved last, -1: lo moved last
     start = np.where(lo > 0, 2.0 * lo, 1.0)
     step = np.full(K, 4.0)
@@ -792,11 +1048,15 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
         if shrink.any():
             xl = np.log(np.where(shrink, l, 1.0))
             xh = np.log(np.where(shrink, h, 1.0))
-            pl, ph = phi_lo[active], phi_hi[active]
-            secant = shrink & np.isfinite(pl) & np.isfinite(ph) & (pl > 0) & (ph < 0)
-            secant &= (xh - xl) > 2 * eps
+            pl, ph = m_lo[active], m_hi[active]
+            with np.errstate(invalid="ignore"):
+                usable = (pl > 0) & (ph < 0)  # false where either is nan
+            kk = usable.argmax(axis=1)
+            secant = shrink & usable.any(axis=1) & ((xh - xl) > 2 * eps)
+            rows = np.arange(active.size)
+            pk, hk = pl[rows, kk], ph[rows, kk]
             with np.errstate(invalid="ignore", divide="ignore"):
-                frac = np.where(secant, pl / (pl - ph), 0.5)
+                frac = np.where(secant, pk / (pk - hk), 0.5)
             x = xl + frac * (xh - xl)
             x = np.where(secant, np.clip(x, xl + eps, xh - eps), x)
             g = np.where(shrink, np.exp(x), g)
@@ -805,17 +1065,20 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
         tested[active] = True
         result = test(active, g)
         if isinstance(result, tuple):
-            feas, phi = np.asarray(result[0], dtype=bool), np.asarray(result[1], dtype=float)
+            feas = np.asarray(result[0], dtype=bool)
+            meas = np.asarray(result[1], dtype=float)
+            if meas.ndim == 1:
+                meas = np.stack([np.full(active.size, np.nan)] * 2 + [meas], axis=1)
         else:
-            feas, phi = np.asarray(result, dtype=bool), np.full(active.size, np.nan)
+            feas, meas = np.asarray(result, dtype=bool), np.full((active.size, 3), np.nan)
         a_f, a_i = active[feas], active[~feas]
-        # Illinois: the end that stays put twice in a row has its phi halved
-        phi_lo[a_f[last[a_f] == 1]] *= 0.5
-        phi_hi[a_i[last[a_i] == -1]] *= 0.5
+        # Illinois: the end that stays put twice in a row has its measures halved
+        m_lo[a_f[last[a_f] == 1]] *= 0.5
+        m_hi[a_i[last[a_i] == -1]] *= 0.5
         hi[a_f] = g[feas]
-        phi_hi[a_f] = phi[feas]
+        m_hi[a_f] = meas[feas]
         lo[a_i] = np.maximum(lo[a_i], g[~feas])
-        phi_lo[a_i] = phi[~feas]
+        m_lo[a_i] = meas[~feas]
         last[a_f], last[a_i] = 1, -1
         failed[a_i[g[~feas] > GAMMA_MAX]] = True
     out = hi.copy()
@@ -830,17 +1093,18 @@ def _two_pass(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
     """Lockstep search in two passes: every WARM_STRIDE-th plant cold, then the others
     warm-started from the nearest (by list position) plant of the first pass."""
     K = len(Ps)
+    test = _Stacked(Ps)
 
-    def test(sub):
-        return lambda act, g: _batched_feasible([Ps[sub[k]] for k in act], g)
+    def sub_test(sub):
+        return lambda act, g: test(sub[act], g)
 
     first = np.arange(0, K, WARM_STRIDE)
     out = np.full(K, np.nan)
-    out[first] = _search(test(first), pbs[first], rtol)
+    out[first] = _search(sub_test(first), pbs[first], rtol)
     rest = np.setdiff1d(np.arange(K), first)
     if rest.size:
         anchor = first[np.clip(np.rint(rest / WARM_STRIDE).astype(int), 0, first.size - 1)]
-        out[rest] = _search(test(rest), pbs[rest], rtol, hints=out[anchor])
+        out[rest] = _search(sub_test(rest), pbs[rest], rtol, hints=out[anchor])
     return out
 
 
@@ -918,7 +1182,7 @@ def synthesize_many(
                     gopt[i] = g
                     continue
                 try:  # disagreement or failure: the scalar path decides and explains
-                    gopt[i] = optimal_gamma(plants[i], rtol=rtol)
+                    gopt[i] = _optimal_gamma(P, rtol)
                 except ScheduleError as exc:
                     reasons[i] = str(exc)
     results: list[tuple[float, Controller | None, str]] = []
@@ -929,9 +1193,7 @@ def synthesize_many(
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)
-                pieces, zc = _pieces_at(normalized[i], gamma)
-            A, B, C, D = assemble_controller(p, pieces, gamma)
-            K = Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+                K = _central(p, normalized[i], gamma)
             results.append((float(gopt[i]), K, ""))
         except ScheduleError as exc:
             results.append((float(gopt[i]), None, str(exc)))

@@ -324,6 +324,11 @@ def _chunks(m: int, k: int, budget: int = 4_000_000):
         yield slice(start, min(m, start + step))
 
 
+def _constant_axis(xj: np.ndarray, deriv: bool):
+    """Stencil of an axis with a single breakpoint: the value is constant along it."""
+    return np.zeros(xj.shape[0], dtype=np.intp), np.full((xj.shape[0], 1), 0.0 if deriv else 1.0)
+
+
 class _GridInterpolant(Interpolant):
     """Common part of the rectangular-grid kinds (grid detection, hole filling)."""
 
@@ -377,6 +382,36 @@ class _GridInterpolant(Interpolant):
         arrays["filled"] = self.filled_.astype(np.int8)
         return arrays, attrs
 
+    def _coefficients(self) -> np.ndarray:
+        """The (n_0, ..., n_{d-1}, k) tensor the stencil weights multiply."""
+        raise NotImplementedError
+
+    def _axis_stencil(self, j: int, xj: np.ndarray, deriv: bool):
+        """First coefficient index (M,) and local basis values (M, m_j) along axis j."""
+        raise NotImplementedError
+
+    def _stencil(self, x: np.ndarray, deriv: int | None = None):
+        """Per axis: first coefficient index (M,) and local weights (M, m_j); ``deriv`` = d/dx_j."""
+        pairs = [self._axis_stencil(j, x[:, j], deriv == j) for j in range(x.shape[1])]
+        return [p[0] for p in pairs], [p[1] for p in pairs]
+
+    def evaluate(self, points) -> np.ndarray:
+        x = self._unit(points)
+        coef = self._coefficients()
+        out = np.empty((x.shape[0], self.k_))
+        for sl in _chunks(x.shape[0], self.k_):
+            spans, weights = self._stencil(x[sl])
+            out[sl] = _tensor_evaluate(coef, spans, weights)
+        return out
+
+    def derivative(self, points, variable_index: int) -> np.ndarray:
+        """Derivative per physical unit; at a breakpoint the right-hand cell's slope is used."""
+        j = self._check_index(variable_index)
+        x = self._unit(points)
+        spans, weights = self._stencil(x, deriv=j)
+        return (_tensor_evaluate(self._coefficients(), spans, weights)
+                / (self.upper[j] - self.lower[j]))
+
     def _load_grid(self, arrays, attrs) -> None:
         self._load_base(arrays, attrs)
         self.axes_ = [np.asarray(arrays[f"axis{j}"], dtype=float) for j in range(self.d_)]
@@ -399,39 +434,19 @@ class MultilinearGrid(_GridInterpolant):
         self.grid_ = self._grid_values(points, values)
         return self
 
-    def _stencil(self, x: np.ndarray, deriv: int | None = None):
-        spans, weights = [], []
-        for j, ax in enumerate(self.axes_):
-            if len(ax) == 1:
-                spans.append(np.zeros(x.shape[0], dtype=np.intp))
-                w = np.ones((x.shape[0], 1)) if deriv != j else np.zeros((x.shape[0], 1))
-                weights.append(w)
-                continue
-            i = np.clip(np.searchsorted(ax, x[:, j], side="right") - 1, 0, len(ax) - 2)
-            h = ax[i + 1] - ax[i]
-            if deriv == j:
-                w = np.stack([-1.0 / h, 1.0 / h], axis=1)
-            else:
-                t = (x[:, j] - ax[i]) / h
-                w = np.stack([1.0 - t, t], axis=1)
-            spans.append(i)
-            weights.append(w)
-        return spans, weights
+    def _coefficients(self) -> np.ndarray:
+        return self.grid_
 
-    def evaluate(self, points) -> np.ndarray:
-        x = self._unit(points)
-        out = np.empty((x.shape[0], self.k_))
-        for sl in _chunks(x.shape[0], self.k_):
-            spans, weights = self._stencil(x[sl])
-            out[sl] = _tensor_evaluate(self.grid_, spans, weights)
-        return out
-
-    def derivative(self, points, variable_index: int) -> np.ndarray:
-        """Derivative per physical unit; at a breakpoint the right-hand cell's slope is used."""
-        j = self._check_index(variable_index)
-        x = self._unit(points)
-        spans, weights = self._stencil(x, deriv=j)
-        return _tensor_evaluate(self.grid_, spans, weights) / (self.upper[j] - self.lower[j])
+    def _axis_stencil(self, j: int, xj: np.ndarray, deriv: bool):
+        ax = self.axes_[j]
+        if len(ax) == 1:
+            return _constant_axis(xj, deriv)
+        i = np.clip(np.searchsorted(ax, xj, side="right") - 1, 0, len(ax) - 2)
+        h = ax[i + 1] - ax[i]
+        if deriv:
+            return i, np.stack([-1.0 / h, 1.0 / h], axis=1)
+        t = (xj - ax[i]) / h
+        return i, np.stack([1.0 - t, t], axis=1)
 
     def to_arrays(self) -> tuple[dict, dict]:
         arrays, attrs = self._grid_arrays()
@@ -514,31 +529,14 @@ class CubicSplineGrid(_GridInterpolant):
         self.coef_ = coef
         return self
 
-    def _stencil(self, x: np.ndarray, deriv: int | None = None):
-        spans, weights = [], []
-        for j, (t, k) in enumerate(zip(self.knots_, self.degrees_, strict=True)):
-            if k == 0:
-                spans.append(np.zeros(x.shape[0], dtype=np.intp))
-                weights.append(np.full((x.shape[0], 1), 0.0 if deriv == j else 1.0))
-                continue
-            s, w = _bspline_basis(t, k, x[:, j], deriv=(deriv == j))
-            spans.append(s)
-            weights.append(w)
-        return spans, weights
+    def _coefficients(self) -> np.ndarray:
+        return self.coef_
 
-    def evaluate(self, points) -> np.ndarray:
-        x = self._unit(points)
-        out = np.empty((x.shape[0], self.k_))
-        for sl in _chunks(x.shape[0], self.k_):
-            spans, weights = self._stencil(x[sl])
-            out[sl] = _tensor_evaluate(self.coef_, spans, weights)
-        return out
-
-    def derivative(self, points, variable_index: int) -> np.ndarray:
-        j = self._check_index(variable_index)
-        x = self._unit(points)
-        spans, weights = self._stencil(x, deriv=j)
-        return _tensor_evaluate(self.coef_, spans, weights) / (self.upper[j] - self.lower[j])
+    def _axis_stencil(self, j: int, xj: np.ndarray, deriv: bool):
+        k = self.degrees_[j]
+        if k == 0:
+            return _constant_axis(xj, deriv)
+        return _bspline_basis(self.knots_[j], k, xj, deriv=deriv)
 
     def to_arrays(self) -> tuple[dict, dict]:
         arrays, attrs = self._grid_arrays()

@@ -507,13 +507,18 @@ def h_infinity_norm(A: Any, B: Any, C: Any, D: Any,
     True
     """
     A, B, C, D = _check_abcd(A, B, C, D)
+    return _hinf(A, B, C, D, _check_rtol(rtol))
+
+
+def _check_rtol(rtol) -> float:
+    """The relative accuracy of the H-infinity norm as a float in (0, 0.1)."""
     try:
         rtol = float(rtol)
     except (TypeError, ValueError):
         raise InputError(f"rtol={rtol!r} is not a number; pass e.g. rtol=1e-8") from None
     if not (0.0 < rtol < 0.1):
         raise InputError(f"rtol={rtol} is outside (0, 0.1); pass e.g. rtol=1e-8")
-    return _hinf(A, B, C, D, rtol)
+    return rtol
 
 
 def _hinf(A, B, C, D, rtol):
@@ -651,12 +656,7 @@ def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
         if not np.isfinite(arr).all():
             i = int(np.flatnonzero(~np.isfinite(arr).reshape(N, -1).all(axis=1))[0])
             raise PlantError(f"{k}[{i}] contains NaN or inf; give finite state-space matrices")
-    try:
-        rtol = float(rtol)
-    except (TypeError, ValueError):
-        raise InputError(f"rtol={rtol!r} is not a number; pass e.g. rtol=1e-8") from None
-    if not (0.0 < rtol < 0.1):
-        raise InputError(f"rtol={rtol} is outside (0, 0.1); pass e.g. rtol=1e-8")
+    rtol = _check_rtol(rtol)
 
     norm = np.zeros(N)
     peak = np.zeros(N)

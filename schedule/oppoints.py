@@ -18,7 +18,6 @@ All plants share one state coordinate system, named by /names/states.
 from __future__ import annotations
 
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,6 +25,7 @@ import h5py
 import numpy as np
 
 from .errors import InputError
+from .h5util import atomic_h5, decode, read_variables, strings, write_variables
 from .types import LinearPlant, SchedulingVariable
 
 FORMAT_NAME = "schedule-operating-points"
@@ -57,47 +57,33 @@ class OperatingPoints:
                            self.state_names, self.input_names, self.output_names)
 
 
-def _strings(values) -> np.ndarray:
-    return np.array([str(v) for v in values], dtype=h5py.string_dtype("utf-8"))
-
-
-def _decode(ds) -> tuple[str, ...]:
-    return tuple(v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in ds[()])
-
-
 def write_operating_points(path: str | os.PathLike, points: OperatingPoints) -> None:
-    """Write ``points`` to ``path`` atomically (temporary file, then rename)."""
+    """Write ``points`` to ``path`` atomically (temporary file, then rename).
+
+    Raises
+    ------
+    InputError
+        The points are inconsistent (shapes, NaN, names, bounds) or the output
+        folder does not exist.
+    """
     path = Path(path)
     _validate(points, str(path))
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent or ".")
-    os.close(fd)
-    try:
-        # Fixed creation attributes keep the file bit-for-bit reproducible.
-        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
-            f.attrs["format"] = FORMAT_NAME
-            f.attrs["format_version"] = FORMAT_VERSION
-            f.attrs["description"] = points.description
-            g = f.create_group("variables", track_order=True)
-            g["names"] = _strings(v.name for v in points.variables)
-            g["units"] = _strings(v.unit for v in points.variables)
-            g["lower"] = np.array([v.lower for v in points.variables], dtype=float)
-            g["upper"] = np.array([v.upper for v in points.variables], dtype=float)
-            if points.breakpoints is not None:
-                b = g.create_group("breakpoints", track_order=True)
-                for v, bp in zip(points.variables, points.breakpoints):
-                    b[v.name] = np.asarray(bp, dtype=float)
-            p = f.create_group("points", track_order=True)
-            p["values"] = np.asarray(points.values, dtype=float)
-            for key in ("A", "B", "C", "D"):
-                p[key] = np.asarray(getattr(points, key), dtype=float)
-            n = f.create_group("names", track_order=True)
-            n["states"] = _strings(points.state_names)
-            n["inputs"] = _strings(points.input_names)
-            n["outputs"] = _strings(points.output_names)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+
+    def fill(f: h5py.File) -> None:
+        f.attrs["format"] = FORMAT_NAME
+        f.attrs["format_version"] = FORMAT_VERSION
+        f.attrs["description"] = points.description
+        write_variables(f, points.variables, points.breakpoints)
+        p = f.create_group("points", track_order=True)
+        p["values"] = np.asarray(points.values, dtype=float)
+        for key in ("A", "B", "C", "D"):
+            p[key] = np.asarray(getattr(points, key), dtype=float)
+        n = f.create_group("names", track_order=True)
+        n["states"] = strings(points.state_names)
+        n["inputs"] = strings(points.input_names)
+        n["outputs"] = strings(points.output_names)
+
+    atomic_h5(path, fill)
 
 
 def read_operating_points(path: str | os.PathLike) -> OperatingPoints:
@@ -114,23 +100,14 @@ def read_operating_points(path: str | os.PathLike) -> OperatingPoints:
             if version != FORMAT_VERSION:
                 raise InputError(f"{path} has operating-point format version {version}; this "
                                  f"tool reads version {FORMAT_VERSION}")
-            names = _decode(f["variables/names"])
-            units = _decode(f["variables/units"])
-            lower = f["variables/lower"][()]
-            upper = f["variables/upper"][()]
-            variables = tuple(SchedulingVariable(n, u, float(lo), float(hi))
-                              for n, u, lo, hi in zip(names, units, lower, upper))
-            breakpoints = None
-            if "variables/breakpoints" in f:
-                breakpoints = tuple(np.asarray(f["variables/breakpoints"][n][()], dtype=float)
-                                    for n in names)
+            variables, breakpoints = read_variables(f)
             pts = OperatingPoints(
                 variables=variables,
                 values=np.asarray(f["points/values"][()], dtype=float),
                 A=f["points/A"][()], B=f["points/B"][()], C=f["points/C"][()],
                 D=f["points/D"][()],
-                state_names=_decode(f["names/states"]), input_names=_decode(f["names/inputs"]),
-                output_names=_decode(f["names/outputs"]), breakpoints=breakpoints,
+                state_names=decode(f["names/states"]), input_names=decode(f["names/inputs"]),
+                output_names=decode(f["names/outputs"]), breakpoints=breakpoints,
                 description=str(f.attrs.get("description", "")))
     except InputError:
         raise

@@ -22,11 +22,11 @@ from __future__ import annotations
 import html
 import itertools
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
+from .atomic import write_file_atomic, write_text_atomic
 from .check import CheckResult
 from .errors import InputError
 
@@ -78,20 +78,9 @@ class _AggFigures:
         fig.clear()
 
 
-def _atomic_save(path: Path, write) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
-    os.close(fd)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
 def _save_figure(fig, path: Path) -> None:
-    _atomic_save(path, lambda tmp: fig.savefig(tmp, format="png", dpi=110,
-                                               bbox_inches="tight"))
+    write_file_atomic(path, lambda tmp: fig.savefig(tmp, format="png", dpi=110,
+                                                    bbox_inches="tight"), "figure")
 
 
 def _label(result: CheckResult, j: int) -> str:
@@ -425,6 +414,6 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
     md = markdown_summary(result, [str(f) for f in figures])
     md_path = out / "summary.md"
     html_path = out / "summary.html"
-    _atomic_save(md_path, lambda tmp: Path(tmp).write_text(md, encoding="utf-8"))
-    _atomic_save(html_path, lambda tmp: Path(tmp).write_text(_html(md), encoding="utf-8"))
+    write_text_atomic(md_path, md, "report page")
+    write_text_atomic(html_path, _html(md), "report page")
     return {"markdown": md_path, "html": html_path, "figures": figures}

@@ -32,6 +32,8 @@ import scipy.linalg as sla
 __all__ = [
     "RiccatiResult",
     "solve_riccati",
+    "ordered_schur",
+    "stable_solution",
     "hamiltonian",
     "axis_distance",
     "AXIS_RTOL",
@@ -89,24 +91,6 @@ def hamiltonian(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray:
     return H
 
 
-def _schur_eigen_parts(T: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Real parts and moduli of the eigenvalues of a standardized real Schur form T.
-
-    A 2x2 block [a b; c a] (b c < 0) holds a ± sqrt(b c): real part a, modulus
-    sqrt(a^2 - b c); 1x1 blocks hold real eigenvalues.
-    """
-    re = np.diagonal(T).copy()
-    mod = np.abs(re)
-    sub = np.diagonal(T, -1)
-    pair = np.flatnonzero(sub != 0.0)
-    if pair.size:
-        sup = np.diagonal(T, 1)[pair]
-        m = np.sqrt(np.abs(re[pair] * re[pair + 1] - sup * sub[pair]))
-        mod[pair] = m
-        mod[pair + 1] = m
-    return re, mod
-
-
 def axis_distance(eigenvalues: np.ndarray, hnorm: float) -> np.ndarray:
     """``|Re lam| / (AXIS_RTOL |lam| + AXIS_ATOL ||H||)``; at most 1 means on the axis."""
     lam = np.asarray(eigenvalues)
@@ -131,6 +115,89 @@ def relative_residual(A: np.ndarray, R: np.ndarray, Q: np.ndarray, X: np.ndarray
     return _fro(res) / denom
 
 
+def ordered_schur(H: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
+    """Real Schur form ``H = Z T Z'`` with the eigenvalues of negative real part leading.
+
+    Calls LAPACK directly: ``dgees`` without sorting, then ``dtrsen`` with the
+    selection ``Re lambda < 0``. This is what ``dgees`` does internally when asked
+    to sort (its selection callback runs in Python once per eigenvalue), so the
+    result is the same, without the callbacks and the workspace query of each call.
+
+    Returns
+    -------
+    T, Z : the reordered Schur form and Schur vectors.
+    wr, wi : real and imaginary parts of the eigenvalues, in the order of T.
+    status : number of selected (stable) eigenvalues, -1 when the factorization did
+        not converge, -2 when the reordering failed (eigenvalues too close to swap).
+    """
+    m = H.shape[0]
+    lwork = _LWORK.get(m)
+    if lwork is None:
+        work = _GEES(_no_select, H, compute_v=1, sort_t=0, lwork=-1)[5]
+        lwork = _LWORK[m] = max(int(work[0].real), 3 * m, 1)
+    T, _sdim, wr, wi, Z, _work, info = _GEES(_no_select, H, compute_v=1, sort_t=0, lwork=lwork)
+    if info != 0:
+        return T, Z, wr, wi, -1
+    select = wr < 0.0
+    k = int(np.count_nonzero(select))
+    if 0 < k < m and not select[:k].all():
+        T, Z, wr, wi, _k, _s, _sep, info = _TRSEN(
+            select.astype(np.int32), T, Z, job="N", overwrite_t=1, overwrite_q=1
+        )
+        if info != 0:
+            return T, Z, wr, wi, -2
+    return T, Z, wr, wi, k
+
+
+def _no_select(_re: float, _im: float) -> int:  # dgees needs a callback even when not sorting
+    return 0
+
+
+_GEES = sla.lapack.dgees
+_TRSEN = sla.lapack.dtrsen
+_LWORK: dict[int, int] = {}
+
+
+def stable_solution(H: np.ndarray, n: int, hnorm: float):
+    """Stable-subspace solution ``X = U2 U1^-1`` of the Hamiltonian H (2n x 2n).
+
+    The shared core of :func:`solve_riccati` and of the quick feasibility tests of
+    :mod:`schedule.hinf`: ordered real Schur form, imaginary-axis test, the solve for X
+    and the exact condition number of U1 (from the eigenvalues of X). No residual check.
+
+    Returns
+    -------
+    (X, ev, code, value, margin): X symmetric and its ascending eigenvalues ``ev`` on
+    success (``code`` 0, ``value`` the condition number of U1); ``margin`` the axis
+    margin ``min |Re lambda| / (AXIS_RTOL |lambda| + AXIS_ATOL hnorm)``; otherwise X is None and
+    ``code`` says why: 1 Hamiltonian eigenvalue on the imaginary axis (``value`` the
+    axis margin, with ``ev`` = ``(|lambda|, |Re lambda|)`` of the closest one),
+    2 ordering failed, 3 U1 singular, 4 U1 ill-conditioned (``value`` its condition).
+    """
+    _T, Z, wr, wi, k = ordered_schur(H)
+    if k < 0:
+        return None, None, 2, np.nan, np.nan
+    mod = np.hypot(wr, wi)
+    ratio = np.abs(wr) / (AXIS_RTOL * mod + (AXIS_ATOL * hnorm + 1e-300))
+    j = int(ratio.argmin())
+    margin = float(ratio[j])
+    if margin <= 1.0 or k != n:
+        return None, (float(mod[j]), float(abs(wr[j]))), 1, margin, margin
+    try:
+        X = np.linalg.solve(Z[:n, :n].T, Z[n:, :n].T)  # X' = U1'^-1 U2'; X = U2 U1^-1
+    except np.linalg.LinAlgError:
+        return None, None, 3, np.inf, margin
+    X = 0.5 * (X + X.T)
+    # [U1; U2] has orthonormal columns and U2 = X U1, so U1'U1 = (I + X^2)^-1: the
+    # singular values of U1 are 1 / sqrt(1 + lambda_i(X)^2), which gives cond(U1) exactly.
+    ev = np.linalg.eigvalsh(X)
+    lam2 = ev * ev
+    cond = float(np.sqrt((1.0 + lam2.max()) / (1.0 + lam2.min())))
+    if not cond <= COND_MAX:
+        return None, ev, 4, cond, margin
+    return X, ev, 0, cond, margin
+
+
 def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
     """Stabilizing solution of ``A'X + XA + XRX + Q = 0`` by ordered real Schur.
 
@@ -152,7 +219,8 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
     The Hamiltonian is first balanced by a symplectic diagonal similarity
     ``diag(D, D^-1)`` (it keeps the Hamiltonian structure and the solution
     maps back as ``X = D^-1 Xs D^-1``), which reduces the spread of ``X``'s
-    entries when the states have very different scales.
+    entries when the states have very different scales. The ordered Schur form
+    comes from :func:`ordered_schur` (LAPACK ``dgees`` + ``dtrsen``, Laub 1979).
 
     Examples
     --------
@@ -171,47 +239,33 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
     else:
         H = hamiltonian(A, R, Q)
     hnorm = max(float(np.abs(H).sum(axis=0).max()), 1e-300)
-    try:
-        T, Z, sdim = sla.schur(H, output="real", sort="lhp", check_finite=False)
-    except (ValueError, np.linalg.LinAlgError):
-        # LAPACK reports that reordering broke the sort (eigenvalues at the axis)
+    Xs, ev, code, value, margin = stable_solution(H, n, hnorm)
+    if code == 2:
         return RiccatiResult(
             None, "Hamiltonian eigenvalues on the imaginary axis (ordering failed)"
         )
-    re, mod = _schur_eigen_parts(T)
-    ratio = np.abs(re) / (AXIS_RTOL * mod + AXIS_ATOL * hnorm + 1e-300)
-    k = int(np.argmin(ratio))
-    margin = float(ratio[k])
-    if margin <= 1.0 or sdim != n:
+    if code == 1:
         return RiccatiResult(
             None,
             "Hamiltonian eigenvalue on the imaginary axis "
-            f"(|lambda|={mod[k]:.3g}, |Re|={abs(re[k]):.2e}, ||H||={hnorm:.3g})",
-            axis_margin=margin,
+            f"(|lambda|={ev[0]:.3g}, |Re|={ev[1]:.2e}, ||H||={hnorm:.3g})",
+            axis_margin=value,
         )
-    U1, U2 = Z[:n, :n], Z[n:, :n]
-    try:
-        Xs = np.linalg.solve(U1.T, U2.T).T  # U2 U1^-1
-    except np.linalg.LinAlgError:
+    if code == 3:
         return RiccatiResult(
             None,
             "U1 singular (condition number inf), no stabilizing solution",
             axis_margin=margin,
             cond_u1=np.inf,
         )
-    Xs = 0.5 * (Xs + Xs.T)
-    # [U1; U2] has orthonormal columns and U2 = Xs U1, so U1'U1 = (I + Xs^2)^-1: the
-    # singular values of U1 are 1 / sqrt(1 + lambda_i(Xs)^2), which gives cond(U1) exactly.
-    ev = np.linalg.eigvalsh(Xs)
-    lam2 = ev * ev
-    cond = float(np.sqrt((1.0 + lam2.max()) / (1.0 + lam2.min())))
-    if not np.isfinite(cond) or cond > COND_MAX:
+    if code == 4:
         return RiccatiResult(
             None,
-            f"U1 ill-conditioned (condition number {cond:.2e}), no usable stabilizing solution",
+            f"U1 ill-conditioned (condition number {value:.2e}), no usable stabilizing solution",
             axis_margin=margin,
-            cond_u1=cond,
+            cond_u1=value,
         )
+    cond = value
     if scaled:
         X = Xs / dd  # D^-1 Xs D^-1
         ev = np.linalg.eigvalsh(X)

@@ -33,15 +33,20 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import os
-import tempfile
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 
 import h5py
 import numpy as np
 
 from .errors import InputError
-from .types import Family, SchedulingVariable
+from .h5util import STR as _STR
+from .h5util import atomic_h5 as _atomic_h5
+from .h5util import decode as _decode
+from .h5util import decode_one as _decode_one
+from .h5util import read_variables, write_variables
+from .h5util import strings as _strings
+from .types import Family
 
 FORMAT_NAME = "schedule-family"
 FORMAT_VERSION = 1
@@ -53,25 +58,9 @@ CONTROLLER_KEYS = ("A", "B", "C", "D")
 _NAME_FIELDS = (("measured", "measured_names"), ("controls", "control_names"),
                 ("exogenous", "exogenous_names"), ("performance", "performance_names"),
                 ("states", "state_names"))
-_STR = h5py.string_dtype("utf-8")
 
 
 # ----------------------------------------------------------------------------- helpers
-def _strings(values) -> np.ndarray:
-    return np.array([str(v) for v in values], dtype=_STR)
-
-
-def _decode_one(v) -> str:
-    return v.decode("utf-8") if isinstance(v, bytes) else str(v)
-
-
-def _decode(ds) -> tuple[str, ...]:
-    data = ds[()]
-    if np.ndim(data) == 0:
-        return (_decode_one(data),)
-    return tuple(_decode_one(v) for v in np.ravel(data))
-
-
 def _is_string_array(arr: np.ndarray) -> bool:
     return arr.dtype.kind in "USO"
 
@@ -182,27 +171,6 @@ def _canonical(value):
     return value
 
 
-def _atomic_h5(path: Path, fill: Callable[[h5py.File], None]) -> None:
-    """Create ``path`` through a temporary file in the same folder and ``os.replace``."""
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(f"output folder {folder} does not exist; create it first")
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=folder)
-    os.close(fd)
-    try:
-        # track_order and libver="earliest" fix the layout, so equal content
-        # gives equal bytes (h5py does not store object times by default).
-        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
-            fill(f)
-            f.flush()
-        with open(tmp, "rb") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
 # ----------------------------------------------------------------------------- family file
 def family_base_dir(family: Family) -> str:
     """The design file's folder recorded with the family ('' when unknown)."""
@@ -243,15 +211,7 @@ def write_family(path: str | os.PathLike, family: Family) -> None:
         _set_attr(f, "design_base_dir", family_base_dir(family))
         _set_attr(f, "tool_version", tool_version)
         _set_attr(f, "created", created)
-        g = f.create_group("variables", track_order=True)
-        g["names"] = _strings(v.name for v in family.variables)
-        g["units"] = _strings(v.unit for v in family.variables)
-        g["lower"] = np.array([v.lower for v in family.variables], dtype=float)
-        g["upper"] = np.array([v.upper for v in family.variables], dtype=float)
-        if family.breakpoints is not None:
-            b = g.create_group("breakpoints", track_order=True)
-            for v, bp in zip(family.variables, family.breakpoints, strict=False):
-                b[v.name] = np.asarray(bp, dtype=float)
+        write_variables(f, family.variables, family.breakpoints)
         p = f.create_group("points", track_order=True)
         p["values"] = np.asarray(family.points, dtype=float)
         if family.grid_index is not None:
@@ -361,19 +321,10 @@ def read_family(path: str | os.PathLike) -> Family:
 
 
 def _read_open_family(f: h5py.File) -> Family:
-    names = _decode(f["variables/names"]) if f["variables/names"].shape != (0,) else ()
-    units = _decode(f["variables/units"]) if names else ()
-    lower = f["variables/lower"][()]
-    upper = f["variables/upper"][()]
-    variables = tuple(SchedulingVariable(n, u, float(lo), float(hi))
-                      for n, u, lo, hi in zip(names, units, lower, upper, strict=False))
-    breakpoints = None
-    if "variables/breakpoints" in f:
-        breakpoints = tuple(np.asarray(f["variables/breakpoints"][n][()], dtype=float)
-                            for n in names)
+    variables, breakpoints = read_variables(f)
     p = f["points"]
-    status = np.array(_decode(p["status"]) if p["status"].shape != (0,) else (), dtype=str)
-    reasons = _decode(p["reasons"]) if p["reasons"].shape != (0,) else ()
+    status = np.array(_decode(p["status"]), dtype=str)
+    reasons = _decode(p["reasons"])
     extra = {k: _get(v) for k, v in f["extra"].items()} if "extra" in f else {}
     base_dir = str(_attr_value(f.attrs.get("design_base_dir", "")))
     family = Family(
@@ -404,8 +355,7 @@ def _read_open_family(f: h5py.File) -> Family:
 
 
 def _decode_names(f: h5py.File, label: str) -> tuple[str, ...]:
-    ds = f["names"][label]
-    return () if ds.shape == (0,) else _decode(ds)
+    return _decode(f["names"][label])
 
 
 def _validate_family(family: Family, where: str) -> None:

@@ -7,6 +7,7 @@ import json
 
 import numpy as np
 import pytest
+from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
 from click.testing import CliRunner
 
 from schedule.check import (
@@ -32,54 +33,24 @@ def plant_at(point):
                        ("force", "push"), ("pos",))
 '''
 
-DESIGN = '''
-title = "synthetic oscillator"
-[[variable]]
-name = "stiffness"
-unit = "-"
-lower = 0.0
-upper = 1.0
-[[variable]]
-name = "gain"
-unit = "-"
-lower = 0.0
-upper = 1.0
-[source]
+DESIGN = ('title = "synthetic oscillator"\n'
+          + toml_variables(("stiffness", "-", 0.0, 1.0), ("gain", "-", 0.0, 1.0))
+          + """[source]
 model_file = "model.py"
 function = "plant_at"
 [grid]
 stiffness = STIFF
 gain = [0.0, 1.0]
-[channels]
-controls = ["force"]
-disturbances = ["push"]
-measured = ["pos"]
-performance = ["pos"]
-[[weights.performance]]
-output = "pos"
-low_frequency_gain = 100.0
-crossover = 0.5
-high_frequency_gain = 0.5
-[[weights.effort]]
-input = "force"
-gain = 0.1
-[[weights.noise]]
-output = "pos"
-gain = 0.01
-[[weights.disturbance]]
-input = "push"
-gain = 1.0
-[gamma]
-policy = "common"
-margin = 0.05
-[interpolation]
-form = "matrices"
-kind = "multilinear"
-[check]
+"""
+          + toml_channels(["force"], ["pos"], ["push"], ["pos"])
+          + toml_weights(performance=[("pos", 100.0, 0.5, 0.5)], effort=[("force", 0.1)],
+                         noise=[("pos", 0.01)], disturbance=[("push", 1.0)])
+          + SCHEDULED_MATRICES
+          + """[check]
 samples = 16
 gain_margin_db = 0.0
 phase_margin_deg = 0.0
-'''
+""")
 
 FAST = dict(gamma_opt=False, rate=False)
 

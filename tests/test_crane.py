@@ -266,7 +266,7 @@ def test_envelope_file_content():
             importlib.resources.files("schedule.demo_crane") / "crane_envelope.h5") as path:
         pts = read_operating_points(path)
     assert len(pts) == 35
-    np.testing.assert_array_equal(pts.breakpoints[0], [3, 6, 10, 15, 20, 25, 30])
+    np.testing.assert_array_equal(pts.breakpoints[0], [3, 4.4, 6.5, 9.5, 14, 20.5, 30])
     np.testing.assert_array_equal(pts.breakpoints[1], [2000, 10000, 20000, 30000, 40000])
     assert [v.name for v in pts.variables] == ["rope_length", "payload_mass"]
     for k in (0, 17, 34):

@@ -22,28 +22,28 @@ def _random_stable(rng, n, m, p):
     return A, rng.standard_normal((n, m)), rng.standard_normal((p, n)), rng.standard_normal((p, m))
 
 
+def _assert_matches_scipy(seed, n, p, T, ours, theirs):
+    """Our discretization of a random stable (n, 2, p) model against scipy.signal.cont2discrete."""
+    rng = np.random.default_rng(seed)
+    sys = _random_stable(rng, n, 2, p)
+    ref = scipy.signal.cont2discrete(sys, T, method=theirs)[:4]
+    got = discretize(*sys, T, ours)
+    for g, r in zip(got, ref, strict=True):
+        np.testing.assert_allclose(g, r, rtol=1e-10, atol=1e-12)
+
+
 @settings(max_examples=25, deadline=None)
 @given(seed=st.integers(0, 10_000), n=st.integers(1, 5), T=st.floats(1e-3, 0.5))
 def test_tustin_matches_scipy_bilinear(seed, n, T):
     # Reference: scipy.signal.cont2discrete(method="bilinear") (Tustin, gbt alpha=1/2).
-    rng = np.random.default_rng(seed)
-    sys = _random_stable(rng, n, 2, 3)
-    ref = scipy.signal.cont2discrete(sys, T, method="bilinear")[:4]
-    got = discretize(*sys, T, "tustin")
-    for g, r in zip(got, ref, strict=True):
-        np.testing.assert_allclose(g, r, rtol=1e-10, atol=1e-12)
+    _assert_matches_scipy(seed, n, 3, T, "tustin", "bilinear")
 
 
 @settings(max_examples=25, deadline=None)
 @given(seed=st.integers(0, 10_000), n=st.integers(1, 5), T=st.floats(1e-3, 0.5))
 def test_zoh_matches_scipy_zoh(seed, n, T):
     # Reference: scipy.signal.cont2discrete(method="zoh").
-    rng = np.random.default_rng(seed)
-    sys = _random_stable(rng, n, 2, 1)
-    ref = scipy.signal.cont2discrete(sys, T, method="zoh")[:4]
-    got = discretize(*sys, T, "zoh")
-    for g, r in zip(got, ref, strict=True):
-        np.testing.assert_allclose(g, r, rtol=1e-10, atol=1e-12)
+    _assert_matches_scipy(seed, n, 1, T, "zoh", "zoh")
 
 
 def test_stacked_discretization_equals_one_by_one():

@@ -102,7 +102,7 @@ def test_failed_write_leaves_no_partial_file(tmp_path, monkeypatch):
     from schedule.export import json_table
     tab = _table()
     monkeypatch.setattr(json_table, "json_text", lambda table: "{\"half\": ")
-    monkeypatch.setattr("schedule.export.atomic.os.replace",
+    monkeypatch.setattr("schedule.atomic.os.replace",
                         lambda *a: (_ for _ in ()).throw(OSError(28, "No space left")))
     with pytest.raises(InputError, match="No space"):
         write_table(tab, "json", tmp_path / "t.json")

@@ -17,6 +17,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 import pytest
+from _helpers import toml_channels, toml_variables, toml_weights
 from click.testing import CliRunner
 
 from schedule.cli.main import main
@@ -52,19 +53,8 @@ def msd_flaky(point):
     return plant
 
 
-DESIGN = """
-[[variable]]
-name = "stiffness"
-unit = "N/m"
-lower = 1.0
-upper = 4.0
-
-[[variable]]
-name = "damping"
-unit = "N s/m"
-lower = 0.5
-upper = 2.0
-
+DESIGN = (toml_variables(("stiffness", "N/m", 1.0, 4.0), ("damping", "N s/m", 0.5, 2.0))
+          + """
 [source]
 model_file = "{model_file}"
 function = "{function}"
@@ -73,37 +63,14 @@ function = "{function}"
 stiffness = {stiffness}
 damping = {damping}
 
-[channels]
-controls = ["u"]
-disturbances = ["d"]
-measured = ["pos", "vel"]
-performance = ["pos"]
-
-[[weights.performance]]
-output = "pos"
-low_frequency_gain = 10.0
-crossover = 0.5
-high_frequency_gain = 0.5
-
-[[weights.effort]]
-input = "u"
-gain = 0.1
-
-[[weights.noise]]
-output = "pos"
-gain = 0.01
-
-[[weights.noise]]
-output = "vel"
-gain = 0.01
-
-[[weights.disturbance]]
-input = "d"
-gain = 1.0
-
+"""
+          + toml_channels(["u"], ["pos", "vel"], ["d"], ["pos"])
+          + toml_weights(performance=[("pos", 10.0, 0.5, 0.5)], effort=[("u", 0.1)],
+                         noise=[("pos", 0.01), ("vel", 0.01)], disturbance=[("d", 1.0)])
+          + """
 [gamma]
 {gamma}
-"""
+""")
 
 
 def write_design(folder: Path, function: str = "msd_plant",

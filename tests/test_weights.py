@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from _helpers import toml_channels, toml_variables, toml_weights
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal
@@ -74,51 +75,19 @@ def test_weight_examples_and_errors():
         first_order_weight(-2.0, 1.0, 0.1)
 
 
-SPEC = """
-[[variable]]
-name = "p"
-unit = ""
-lower = 0.0
-upper = 1.0
-[source]
+SPEC = (toml_variables(("p", "", 0.0, 1.0))
+        + """[source]
 model = "m:f"
 [grid]
 p = [0.0, 1.0]
-[channels]
-controls = ["u1", "u2"]
-disturbances = ["d1"]
-measured = ["y1", "y2"]
-performance = ["y3", "y1"]
-[[weights.performance]]
-output = "y1"
-low_frequency_gain = 50.0
-crossover = { over = ["p"], breakpoints = [[0.0, 1.0]], values = [1.0, 3.0] }
-high_frequency_gain = 0.2
-[[weights.performance]]
-output = "y3"
-gain = 2.0
-[[weights.effort]]
-input = "u1"
-low_frequency_gain = 0.05
-crossover = 20.0
-high_frequency_gain = 5.0
-[[weights.effort]]
-input = "u2"
-gain = 0.3
-[[weights.noise]]
-output = "y1"
-gain = 0.01
-[[weights.noise]]
-output = "y2"
-low_frequency_gain = 0.02
-crossover = 50.0
-high_frequency_gain = 2.0
-[[weights.disturbance]]
-input = "d1"
-low_frequency_gain = 10.0
-crossover = 1.0
-high_frequency_gain = 0.1
 """
+        + toml_channels(["u1", "u2"], ["y1", "y2"], ["d1"], ["y3", "y1"])
+        + toml_weights(
+            performance=[("y1", 50.0, '{ over = ["p"], breakpoints = [[0.0, 1.0]], '
+                                      'values = [1.0, 3.0] }', 0.2), ("y3", 2.0)],
+            effort=[("u1", 0.05, 20.0, 5.0), ("u2", 0.3)],
+            noise=[("y1", 0.01), ("y2", 0.02, 50.0, 2.0)],
+            disturbance=[("d1", 10.0, 1.0, 0.1)]))
 
 
 def random_plant(seed=0):

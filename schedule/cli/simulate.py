@@ -67,8 +67,8 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     for a position) and adds its output to the trim controls; its state is carried
     across schedule changes.
     """
+    from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
-    from ..export.atomic import write_dir_atomic
     from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
     from ..store import read_family
     from .export import export_settings

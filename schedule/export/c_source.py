@@ -15,8 +15,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ..atomic import write_dir_atomic
 from ..errors import InputError
-from .atomic import write_dir_atomic
 from .table import ScheduledTable
 
 _IDENT = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,30}")

@@ -20,8 +20,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ..atomic import write_text_atomic
 from ..errors import InputError
-from .atomic import write_text_atomic
 from .table import MATRICES, ScheduledTable, table_from_metadata
 
 

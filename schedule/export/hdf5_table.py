@@ -17,8 +17,8 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from ..atomic import write_file_atomic
 from ..errors import InputError
-from .atomic import write_file_atomic
 from .table import FORMAT_NAME, FORMAT_VERSION, MATRICES, ScheduledTable, table_from_metadata
 
 

@@ -12,8 +12,8 @@ import json
 import os
 from pathlib import Path
 
+from ..atomic import write_text_atomic
 from ..errors import InputError
-from .atomic import write_text_atomic
 from .table import MATRICES, ScheduledTable, table_from_metadata
 
 

@@ -39,54 +39,27 @@ def plant_at(point):
                        ("force", "push"), ("pos1", "pos3"))
 '''
 
-DESIGN = '''
-[[variable]]
-name = "stiffness"
-unit = "N/m"
-lower = 1.0
-upper = 4.0
-[[variable]]
-name = "mass"
-unit = "kg"
-lower = 0.5
-upper = 2.0
-[source]
+TESTS = Path(__file__).resolve().parents[1]  # tests/_helpers.py builds the TOML tables
+
+
+def design_text() -> str:
+    """Three masses: stiffness and middle mass scheduled, one force, two positions measured."""
+    sys.path.insert(0, str(TESTS))
+    from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+
+    return (toml_variables(("stiffness", "N/m", 1.0, 4.0), ("mass", "kg", 0.5, 2.0))
+            + """[source]
 model_file = "model.py"
 function = "plant_at"
 [grid]
 stiffness = [1.0, 1.75, 2.5, 3.25, 4.0]
 mass = [0.5, 1.25, 2.0]
-[channels]
-controls = ["force"]
-disturbances = ["push"]
-measured = ["pos1", "pos3"]
-performance = ["pos3"]
-[[weights.performance]]
-output = "pos3"
-low_frequency_gain = 50.0
-crossover = 0.2
-high_frequency_gain = 0.5
-[[weights.effort]]
-input = "force"
-low_frequency_gain = 0.05
-crossover = 10.0
-high_frequency_gain = 2.0
-[[weights.noise]]
-output = "pos1"
-gain = 0.01
-[[weights.noise]]
-output = "pos3"
-gain = 0.01
-[[weights.disturbance]]
-input = "push"
-gain = 1.0
-[gamma]
-policy = "common"
-margin = 0.05
-[interpolation]
-form = "matrices"
-kind = "multilinear"
-'''
+"""
+            + toml_channels(["force"], ["pos1", "pos3"], ["push"], ["pos3"])
+            + toml_weights(performance=[("pos3", 50.0, 0.2, 0.5)],
+                           effort=[("force", 0.05, 10.0, 2.0)],
+                           noise=[("pos1", 0.01), ("pos3", 0.01)], disturbance=[("push", 1.0)])
+            + SCHEDULED_MATRICES)
 
 
 def main(n: int = 10000) -> None:
@@ -97,7 +70,7 @@ def main(n: int = 10000) -> None:
 
     tmp = Path(tempfile.mkdtemp(prefix="bench_check_"))
     (tmp / "model.py").write_text(MODEL)
-    (tmp / "design.toml").write_text(DESIGN)
+    (tmp / "design.toml").write_text(design_text())
     spec = load_design(tmp / "design.toml")
     fam = design_family(spec)
     sc = ScheduledController.from_family(fam)

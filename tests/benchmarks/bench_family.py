@@ -8,6 +8,7 @@ has 2 cores and is shared, so the numbers are noisy).
 from __future__ import annotations
 
 import argparse
+import sys
 import time
 from pathlib import Path
 
@@ -53,39 +54,22 @@ def synthetic_plant_19(point):
 
 
 def design_text(function: str, per_axis: int) -> str:
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # tests/_helpers.py
+    from _helpers import toml_channels, toml_variables, toml_weights
+
     axis = [float(x) for x in np.linspace(0.0, 1.0, per_axis)]
-    variables = "".join(f'[[variable]]\nname = "p{i}"\nunit = "-"\nlower = 0.0\nupper = 1.0\n'
-                        for i in range(1, 5))
     grid = "".join(f"p{i} = {axis}\n" for i in range(1, 5))
-    return f"""{variables}
+    return (toml_variables(*[(f"p{i}", "-", 0.0, 1.0) for i in range(1, 5)])
+            + f"""
 [source]
 model_file = "{Path(__file__).resolve()}"
 function = "{function}"
 [grid]
 {grid}
-[channels]
-controls = ["u"]
-disturbances = ["d"]
-measured = ["y1", "y2"]
-performance = ["y1"]
-[[weights.performance]]
-output = "y1"
-low_frequency_gain = 10.0
-crossover = 0.5
-high_frequency_gain = 0.5
-[[weights.effort]]
-input = "u"
-gain = 0.1
-[[weights.noise]]
-output = "y1"
-gain = 0.01
-[[weights.noise]]
-output = "y2"
-gain = 0.01
-[[weights.disturbance]]
-input = "d"
-gain = 1.0
 """
+            + toml_channels(["u"], ["y1", "y2"], ["d"], ["y1"])
+            + toml_weights(performance=[("y1", 10.0, 0.5, 0.5)], effort=[("u", 0.1)],
+                           noise=[("y1", 0.01), ("y2", 0.01)], disturbance=[("d", 1.0)]))
 
 
 def timed(spec, **kw) -> tuple[float, int]:

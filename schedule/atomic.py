@@ -1,4 +1,12 @@
-"""Atomic writes: a file or a directory appears whole or not at all."""
+"""Atomic writes: a file or a directory appears whole or not at all.
+
+Every output of the package (family files, operating-point files, tables,
+reports, simulations) goes through here: the content is written to a
+temporary name beside the target, flushed, given the usual permissions (0666
+or 0777 less the process umask, not mkstemp's 0600) and renamed over the
+target with ``os.replace``. A failure leaves the target as it was and no
+temporary behind.
+"""
 
 from __future__ import annotations
 
@@ -8,7 +16,14 @@ import tempfile
 from collections.abc import Callable
 from pathlib import Path
 
-from ..errors import InputError
+from .errors import InputError
+
+
+def _mode(base: int) -> int:
+    """``base`` less the process umask (what ``open`` would have given)."""
+    umask = os.umask(0)
+    os.umask(umask)
+    return base & ~umask
 
 
 def _parent(path: Path, what: str) -> Path:
@@ -37,7 +52,9 @@ def write_file_atomic(path: str | os.PathLike, writer: Callable[[str], None],
     os.close(fd)
     try:
         writer(tmp)
-        os.chmod(tmp, 0o644)
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        os.chmod(tmp, _mode(0o666))
         os.replace(tmp, path)
     except OSError as exc:
         raise InputError(f"cannot write {what} {path}: {exc.strerror or exc}; choose another "
@@ -89,7 +106,7 @@ def write_dir_atomic(path: str | os.PathLike, files: dict[str, str | bytes],
             else:
                 with open(os.path.join(tmp, name), "w", encoding="utf-8", newline="\n") as f:
                     f.write(content)
-        os.chmod(tmp, 0o755)
+        os.chmod(tmp, _mode(0o777))
         if path.exists():
             old = tempfile.mkdtemp(prefix="." + path.name + ".", suffix=".old", dir=parent)
             os.rmdir(old)

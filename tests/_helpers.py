@@ -1,0 +1,84 @@
+"""Helpers shared by several test modules and benchmarks (not collected by pytest).
+
+Design-file snippets: the tests and benchmarks write many small TOML design
+files that differ only in names and numbers. These builders write the
+repeated tables (``[[variable]]``, ``[channels]``, ``[[weights.*]]``) from
+compact Python data, following the schema of docs/design-file.md.
+
+Benchmarks import this module after putting ``tests/`` on ``sys.path``.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+
+
+def _value(x) -> str:
+    """A TOML value: strings pass through verbatim (inline tables, arrays), numbers as floats."""
+    return x if isinstance(x, str) else repr(float(x))
+
+
+def _names(names: Sequence[str]) -> str:
+    return json.dumps(list(names))
+
+
+def toml_table(name: str, **keys) -> str:
+    """A ``[name]`` table; string values are quoted, numbers written as given (int or float)."""
+    lines = [f"[{name}]"]
+    for key, value in keys.items():
+        lines.append(f"{key} = {json.dumps(value)}")
+    return "\n".join(lines) + "\n"
+
+
+SCHEDULED_MATRICES = (toml_table("gamma", policy="common", margin=0.05)
+                      + toml_table("interpolation", form="matrices", kind="multilinear"))
+"""Common gamma with a 5 % margin, multilinear interpolation of the controller matrices."""
+
+
+def toml_variables(*variables: tuple[str, str, float, float]) -> str:
+    """``[[variable]]`` tables from ``(name, unit, lower, upper)`` tuples."""
+    return "".join(f'[[variable]]\nname = "{name}"\nunit = "{unit}"\n'
+                   f"lower = {_value(lower)}\nupper = {_value(upper)}\n"
+                   for name, unit, lower, upper in variables)
+
+
+def toml_channels(controls: Sequence[str], measured: Sequence[str],
+                  disturbances: Sequence[str] = (), performance: Sequence[str] = ()) -> str:
+    """The ``[channels]`` table (empty lists are left out: they are the schema default)."""
+    lines = ["[channels]", f"controls = {_names(controls)}"]
+    if disturbances:
+        lines.append(f"disturbances = {_names(disturbances)}")
+    lines.append(f"measured = {_names(measured)}")
+    if performance:
+        lines.append(f"performance = {_names(performance)}")
+    return "\n".join(lines) + "\n"
+
+
+def toml_weights(performance: Sequence[tuple] = (), effort: Sequence[tuple] = (),
+                 noise: Sequence[tuple] = (), disturbance: Sequence[tuple] = ()) -> str:
+    """``[[weights.<group>]]`` tables, one per entry.
+
+    An entry is ``(channel, gain)`` for a static weight or ``(channel,
+    low_frequency_gain, crossover, high_frequency_gain)`` for a first-order
+    weight; a number given as a string (for example a scheduled inline table)
+    is written verbatim.
+    """
+    out = []
+    for group, key, entries in (("performance", "output", performance),
+                                ("effort", "input", effort),
+                                ("noise", "output", noise),
+                                ("disturbance", "input", disturbance)):
+        for entry in entries:
+            channel, *numbers = entry
+            out.append(f'[[weights.{group}]]\n{key} = "{channel}"\n')
+            if len(numbers) == 1:
+                out.append(f"gain = {_value(numbers[0])}\n")
+            elif len(numbers) == 3:
+                low, crossover, high = numbers
+                out.append(f"low_frequency_gain = {_value(low)}\ncrossover = {_value(crossover)}"
+                           f"\nhigh_frequency_gain = {_value(high)}\n")
+            else:
+                raise ValueError(f"weight entry {entry!r} needs (channel, gain) or (channel, "
+                                 "low_frequency_gain, crossover, high_frequency_gain)")
+    return "".join(out)

@@ -1,0 +1,139 @@
+"""The README's demo command runs the whole job and leaves every promised file.
+
+The README promises: `schedule demo` designs the crane family at a common
+gamma, fits interpolants with leave-one-out evidence, checks in-between
+points against the crane model, writes the report with plots, exports CSV,
+JSON and C tables, and prints a closing summary of about a dozen lines. The
+checks below read the files back with general-purpose readers (h5py, json,
+csv, matplotlib's PNG decoder, the system C compiler) rather than with our
+own code, so a broken writer cannot pass by agreeing with itself.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from schedule.cli.main import main
+
+README = Path(__file__).resolve().parents[1] / "README.md"
+DESIGN = Path(__file__).resolve().parents[1] / "operating_points" / "crane_design.toml"
+
+
+def _design_margin() -> float:
+    """The common-gamma margin the bundled design file asks for (read with tomllib)."""
+    try:
+        import tomllib
+    except ImportError:  # Python 3.10
+        import tomli as tomllib
+    return float(tomllib.loads(DESIGN.read_text())["gamma"]["margin"])
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "schedule-demo"
+    res = CliRunner().invoke(main, ["demo", "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    return out, res.output
+
+
+def test_readme_gives_the_demo_and_test_commands():
+    text = README.read_text()
+    first = text.split("\n\n")[1] if text.startswith("#") else text.split("\n\n")[0]
+    assert "H-infinity" in first and "operating" in first  # the job paragraph comes first
+    assert "schedule demo" in text
+    ci = (README.parent / ".ci" / "run").read_text()
+    test_line = [ln for ln in ci.splitlines() if "pytest" in ln][0].strip()
+    assert test_line in text, "README must give exactly the test command .ci/run runs"
+    assert "design aids" in text and "licensed practice" in text
+
+
+def test_summary_lines(demo_run):
+    out, output = demo_run
+    # stage announcements ("== design") go to stderr; the summary is the rest
+    lines = [ln for ln in output.splitlines() if ln.strip() and not ln.startswith("==")]
+    assert 10 <= len(lines) <= 16
+    text = "\n".join(lines)
+    for key in ("worst gamma_opt", "common gamma", "worst norm / gamma", "disk margins",
+                "rate bound", "family file", "report", "tables", "design aids"):
+        assert key in text, key
+    gamma = float(re.search(r"common gamma\s+([0-9.eE+-]+)", text).group(1))
+    worst_opt = float(re.search(r"worst gamma_opt\s+([0-9.eE+-]+)", text).group(1))
+    # the common-gamma policy of the bundled design: max gamma_opt * (1 + margin)
+    assert gamma == pytest.approx(worst_opt * (1 + _design_margin()), rel=2e-3)
+
+
+def test_family_file_holds_the_common_gamma_and_controllers(demo_run):
+    out, _ = demo_run
+    with h5py.File(out / "crane-family.h5", "r") as f:
+        gamma = float(f.attrs["gamma"])
+        opt = f["points/gamma_opt"][()]
+        status = [s.decode() if isinstance(s, bytes) else s for s in f["points/status"][()]]
+        assert "interpolant" in f
+        A = f["controller/A"][()]
+    ok = np.array(status) == "ok"
+    assert ok.all() and len(ok) == 35                      # 7 rope lengths x 5 masses
+    assert gamma == pytest.approx(np.max(opt[ok]) * (1 + _design_margin()), rel=1e-9)
+    assert np.isfinite(A).all()
+
+
+def test_report_plots_and_pages(demo_run):
+    import matplotlib.image as mpimg
+
+    out, _ = demo_run
+    report = out / "report"
+    pngs = sorted(report.glob("*.png"))
+    assert len(pngs) >= 4
+    for p in pngs:
+        assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        assert mpimg.imread(p).ndim == 3
+    md = (report / "summary.md").read_text()
+    assert "design aids" in md and "licensed practice" in md
+    assert (report / "summary.html").read_text().lstrip().lower().startswith("<!doctype html")
+
+
+def test_tables_load_with_general_readers(demo_run):
+    out, _ = demo_run
+    tables = out / "tables"
+    with open(tables / "crane-table.csv", newline="") as fh:
+        rows = [r for r in csv.reader(ln for ln in fh if not ln.startswith("#"))]
+    assert len(rows) == 1 + 35
+    doc = json.loads((tables / "crane-table.json").read_text())
+    assert doc  # valid JSON
+    assert (tables / "c" / "crane_table.h").exists()
+
+
+@pytest.mark.skipif(shutil.which("cc") is None, reason="no system C compiler")
+def test_exported_c_compiles(demo_run, tmp_path):
+    out, _ = demo_run
+    c = out / "tables" / "c"
+    subprocess.run(["cc", "-std=c99", "-Wall", "-Wextra", "-Werror", "-c",
+                    str(c / "crane_table.c"), "-o", str(tmp_path / "t.o")], check=True)
+
+
+def test_simulation_outputs(demo_run):
+    out, _ = demo_run
+    sim = out / "simulation"
+    assert (sim / "response.png").read_bytes()[:4] == b"\x89PNG"
+    with open(sim / "simulation.csv", newline="") as fh:
+        data = list(csv.reader(ln for ln in fh if not ln.startswith("#")))
+    assert len(data) > 100
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["points_ok"] == 35
+
+
+def test_demo_into_a_file_path_is_a_clear_error(tmp_path):
+    target = tmp_path / "afile"
+    target.write_text("x")
+    res = CliRunner().invoke(main, ["demo", "--out", str(target)])
+    assert res.exit_code == 2
+    assert "afile" in res.output and "Traceback" not in res.output
