@@ -82,6 +82,13 @@ class CheckSettings:
     gamma_tolerance : pass when norm <= gamma (1 + tolerance).
     gain_margin_db, phase_margin_deg : required disk margins at the plant input
         (common practice 6 dB / 45 deg).
+    loo_gates : whether leave-one-out predictions count in the overall verdict.
+        They predict each design point from a grid with that point removed,
+        i.e. at twice the grid spacing (and by extrapolation at the edges), so
+        they are pessimistic evidence. None (default): they count only when the
+        in-between points could not be checked on a true plant (no model, no
+        validation file); otherwise they are reported point by point but do
+        not fail the check.
     gamma_opt : compute the optimal gamma at each check point (costly).
     rate : compute the scheduling-rate bound.
     classical : compute classical margins at the plant input.
@@ -99,6 +106,7 @@ class CheckSettings:
     gamma_tolerance: float = 0.02
     gain_margin_db: float = 6.0
     phase_margin_deg: float = 45.0
+    loo_gates: bool | None = None
     gamma_opt: bool = True
     rate: bool = True
     classical: bool = True
@@ -481,10 +489,18 @@ class CheckResult:
     proposals: np.ndarray | None = None
     proposed_breakpoints: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
+    gating: np.ndarray | None = None
+
+    @property
+    def gates(self) -> np.ndarray:
+        """(M,) True where the point counts in the overall verdict (see CheckSettings.loo_gates)."""
+        if self.gating is None:
+            return np.ones(len(self.passed), dtype=bool)
+        return np.asarray(self.gating, dtype=bool)
 
     @property
     def all_passed(self) -> bool:
-        return bool(np.all(self.passed))
+        return bool(np.all(self.passed[self.gates]))
 
     @property
     def weaker(self) -> bool:
@@ -503,14 +519,19 @@ class CheckResult:
         for k in dict.fromkeys(self.kind.tolist()):
             m = self.kind == k
             by_kind[k] = {"points": int(m.sum()), "failed": int((~self.passed[m]).sum()),
-                          "max_ratio": _f(np.max(v["ratio"][m])) if m.any() else None}
+                          "max_ratio": _f(np.max(v["ratio"][m])) if m.any() else None,
+                          "gates_verdict": bool(np.all(self.gates[m]))}
+        gates = self.gates
         return {
-            "gamma": self.gamma, "points": int(len(self.passed)),
-            "failed": int((~self.passed).sum()), "passed": self.all_passed,
-            "unstable": int((~v["stable"]).sum()),
-            "max_ratio": _f(np.max(v["ratio"])) if len(self.passed) else None,
-            "min_input_gain_db": _f(np.min(v["in_gain_db"])) if len(self.passed) else None,
-            "min_input_phase_deg": _f(np.min(v["in_phase_deg"])) if len(self.passed) else None,
+            "gamma": self.gamma, "points": int(gates.sum()),
+            "failed": int((~self.passed & gates).sum()), "passed": self.all_passed,
+            "evidence_points": int((~gates).sum()),
+            "evidence_failed": int((~self.passed & ~gates).sum()),
+            "unstable": int((~v["stable"] & gates).sum()),
+            "max_ratio": _f(np.max(v["ratio"][gates])) if gates.any() else None,
+            "min_input_gain_db": _f(np.min(v["in_gain_db"][gates])) if gates.any() else None,
+            "min_input_phase_deg": (_f(np.min(v["in_phase_deg"][gates])) if gates.any()
+                                    else None),
             "weaker_check": self.weaker, "by_kind": by_kind,
         }
 
@@ -522,7 +543,8 @@ class CheckResult:
             row = {"point": dict(zip(self.variable_names, map(float, self.points[i]),
                                      strict=True)),
                    "kind": str(self.kind[i]), "plant": str(self.plant_source[i]),
-                   "passed": bool(self.passed[i]), "reason": self.reasons[i]}
+                   "passed": bool(self.passed[i]), "gates_verdict": bool(self.gates[i]),
+                   "reason": self.reasons[i]}
             for k in keys:
                 row[k] = _f(self.values[k][i])
             rows.append(row)
@@ -791,6 +813,12 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
                          pts_all, kinds_all, src_all, values, passed, why, notes=notes)
     if result.weaker:
         notes.append(WEAKER)
+    loo_gates = s.loo_gates if s.loo_gates is not None else result.weaker
+    result.gating = (kinds_all != "leave_one_out") | bool(loo_gates)
+    if not loo_gates and np.any(kinds_all == "leave_one_out"):
+        notes.append("leave-one-out predictions (twice the grid spacing, extrapolated at the "
+                     "edges) are shown as evidence and do not gate the verdict, because the "
+                     "in-between points were checked on the true plant")
     if s.rate:
         sel = np.flatnonzero(np.isin(kinds_all, ["centre", "midpoint", "sobol",
                                                   "latin_hypercube", "file", "previous"])

@@ -134,7 +134,9 @@ def _summary(family, result, sim: dict, names, units, files, out: Path, seconds:
     opt = np.where(ok, np.asarray(family.gamma_opt, dtype=float), np.nan)
     worst_opt = int(np.nanargmax(opt))
     ratio = np.nan_to_num(np.asarray(result.values["ratio"], dtype=float), nan=np.inf)
-    worst = int(np.argmax(ratio))
+    gates = result.gates
+    worst = int(np.flatnonzero(gates)[np.argmax(ratio[gates])])
+    loo = np.asarray(result.kind) == "leave_one_out"
     s = result.summary()
     rate = None
     if result.rate is not None:
@@ -152,6 +154,8 @@ def _summary(family, result, sim: dict, names, units, files, out: Path, seconds:
         "worst_ratio": float(ratio[worst]),
         "worst_at": dict(zip(names, map(float, result.points[worst]))),
         "worst_kind": str(result.kind[worst]),
+        "loo_points": int(loo.sum()), "loo_failed": int((loo & ~result.passed).sum()),
+        "loo_worst_ratio": float(np.max(ratio[loo])) if loo.any() else None,
         "min_input_gain_margin_db": s["min_input_gain_db"],
         "min_input_phase_margin_deg": s["min_input_phase_deg"],
         "rate_bound": rate, "units": dict(zip(names, units)),
@@ -179,6 +183,8 @@ def _lines(s: dict) -> list[str]:
         + (" (weaker check: interpolated plant)" if s["weaker_check"] else ""),
         f"worst norm / gamma    {s['worst_ratio']:.4g} at {where(s['worst_at'])} "
         f"({s['worst_kind']})",
+        f"leave-one-out         {s['loo_failed']} of {s['loo_points']} predictions above "
+        f"gamma, worst norm / gamma {_num(s['loo_worst_ratio'])} (evidence)",
         f"input disk margins    >= {_num(s['min_input_gain_margin_db'])} dB, "
         f">= {_num(s['min_input_phase_margin_deg'])} deg",
     ]

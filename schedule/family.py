@@ -75,7 +75,10 @@ def _plant_objects(stack: dict[str, np.ndarray]) -> list:
     from .plant import GeneralizedPlant
 
     k = stack["A"].shape[0]
-    return [GeneralizedPlant(**{key: stack[key][i] for key in PLANT_KEYS}) for i in range(k)]
+    stack = {key: np.asarray(stack[key], dtype=np.float64) for key in PLANT_KEYS}
+    # the stacks hold plants validated when they were built: no second validation here
+    return [GeneralizedPlant.from_validated({key: stack[key][i] for key in PLANT_KEYS})
+            for i in range(k)]
 
 
 def _one_line(exc: BaseException) -> str:
@@ -124,12 +127,12 @@ def controller_chunk(stack: dict[str, np.ndarray], gamma: float) -> list:
     Returns one entry per plant: ``(controller arrays, piece arrays, "")`` or
     ``(None, None, reason)``.
     """
-    from .hinf import central_controller
+    from .hinf import central_controller_checked
 
     out: list = []
     for p in _plant_objects(stack):
-        try:
-            c = central_controller(p, gamma)
+        try:  # the plant conditions were checked in the gamma phase
+            c = central_controller_checked(p, gamma)
             ctrl = {k: np.asarray(getattr(c, k), dtype=float) for k in CONTROLLER_KEYS}
             bad = [k for k, v in ctrl.items() if not np.isfinite(v).all()]
             if bad:

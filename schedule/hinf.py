@@ -428,7 +428,10 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
 
 
 # ================================================== quick feasibility tests
-_NAN3 = (np.nan, np.nan, np.nan)
+# columns of the measure arrays of the quick tests (see _Quick)
+M_XPSD, M_YPSD, M_COUPLING, M_XAXIS, M_YAXIS = range(5)
+N_MEASURES = 5
+_NANS = (np.nan,) * N_MEASURES
 
 
 def _side_measure(ev: np.ndarray) -> float:
@@ -487,26 +490,27 @@ class _QuickSide:
         self.dd = d[:, None] * d[None, :]
         return H * left[:, None] * right[None, :]
 
-    def solve(self, gamma: float) -> tuple[np.ndarray | None, float]:
-        """(X or None, measure): X >= 0 stabilizing, else None; see :func:`_side_measure`."""
+    def solve(self, gamma: float) -> tuple[np.ndarray | None, float, float]:
+        """(X or None, psd measure, axis measure): X >= 0 stabilizing, else None; see
+        :func:`_side_measure` and :func:`schedule.riccati.stable_solution`."""
         try:
             sol = np.linalg.solve(self.DtD - (gamma * gamma) * self.E, self.SBt)
         except np.linalg.LinAlgError:
-            return None, np.nan
+            return None, np.nan, np.nan
         H = self.H0 + self.W @ sol
         if self.first:
             H = self._scale(H)
         hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
-        X, ev, code, _value, _margin = stable_solution(H, self.n, hnorm)
+        X, ev, code, _value, _margin, axis = stable_solution(H, self.n, hnorm)
         if code:
-            return None, np.nan
+            return None, np.nan, (axis if code == 1 and axis > 0 else np.nan)
         if self.dd is not None:
             X = X / self.dd
             ev = np.linalg.eigvalsh(X)
         meas = _side_measure(ev)
         if ev[0] < -PSD_RTOL * max(1.0, abs(ev[-1])):
-            return None, (meas if meas > 0 else np.nan)
-        return X, meas
+            return None, (meas if meas > 0 else np.nan), np.nan
+        return X, meas, axis
 
 
 class _Quick:
@@ -514,11 +518,13 @@ class _Quick:
 
     Same conditions as :func:`feasibility` (D11 bound, stabilizing X >= 0 and Y >= 0,
     ``rho(XY) < gamma^2``) through :func:`schedule.riccati.stable_solution`, with all
-    gamma-independent work done once. Returns ``(feasible, (mX, mY, mC))`` where the
-    measures are continuous in gamma near the boundary of their condition (negative
-    where it holds): ``mX``, ``mY`` from :func:`_side_measure`, ``mC = rho(XY)/gamma^2 - 1``.
-    At an infeasible gamma only the failing condition's measure is given (nan when
-    the failure has no continuous measure, e.g. an imaginary-axis eigenvalue).
+    gamma-independent work done once. Returns ``(feasible, measures)``: five numbers,
+    continuous in gamma near the boundary of their condition and negative where it
+    holds (columns ``M_XPSD`` ... ``M_YAXIS``): X >= 0 and Y >= 0 from
+    :func:`_side_measure` (X blowing up), ``rho(XY)/gamma^2 - 1``, and the
+    imaginary-axis measures of the two Hamiltonians (``axis`` of
+    :func:`schedule.riccati.stable_solution`). At an infeasible gamma only the
+    failing condition's measure is given (nan when it has none).
     """
 
     __slots__ = ("pb", "x", "y")
@@ -529,19 +535,20 @@ class _Quick:
         self.y = _QuickSide(P.y_side)
 
     def __call__(self, gamma: float) -> tuple[bool, tuple[float, float, float]]:
+        nan = np.nan
         if not gamma > self.pb * (1 + 1e-12):
-            return False, _NAN3
-        X, mx = quick_side_solve(self.x, gamma)
+            return False, _NANS
+        X, mx, ax = quick_side_solve(self.x, gamma)
         if X is None:
-            return False, (mx, np.nan, np.nan)
-        Y, my = quick_side_solve(self.y, gamma)
+            return False, (mx, nan, nan, ax, nan)
+        Y, my, ay = quick_side_solve(self.y, gamma)
         if Y is None:
-            return False, (np.nan, my, np.nan)
+            return False, (nan, my, nan, nan, ay)
         g2 = gamma * gamma
         mc = float(np.abs(np.linalg.eigvals(X @ Y)).max()) / g2 - 1.0
         if mc >= -COUPLING_RTOL:
-            return False, (np.nan, np.nan, mc)
-        return True, (mx, my, mc)
+            return False, (nan, nan, mc, nan, nan)
+        return True, (mx, my, mc, ax, ay)
 
 
 def quick_side_solve(side: _QuickSide, gamma: float):
@@ -551,18 +558,19 @@ def quick_side_solve(side: _QuickSide, gamma: float):
 
 def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> float:
     """Scalar twin of :func:`_search` (same steps, plain floats): ``test(gamma) ->
-    (feasible, (mX, mY, mC))``. Returns the feasible end, nan when nothing up to
+    (feasible, measures)``. Returns the feasible end, nan when nothing up to
     GAMMA_MAX is feasible."""
     lo = float(pb)
     hi = math.inf
-    m_lo = list(_NAN3)
-    m_hi = list(_NAN3)
+    m_lo = list(_NANS)
+    m_hi = list(_NANS)
     last = 0
     start, step = (2.0 * lo if lo > 0 else 1.0), 4.0
     if hint is not None and math.isfinite(hint) and hint > lo:
         start, step = float(hint), 1.03
     tested = False
     eps = 0.3 * math.log1p(rtol)
+    close = 0.4 * math.log1p(rtol)
     for _ in range(400):
         if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < 1e-10)):
             break
@@ -578,10 +586,10 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
             xl, xh = math.log(lo), math.log(hi)
             x = xl + 0.5 * (xh - xl)
             if xh - xl > 2 * eps:
-                for k in range(3):
-                    pl, ph = m_lo[k], m_hi[k]
+                for pl, ph in zip(m_lo, m_hi, strict=True):
                     if pl > 0 and ph < 0:  # false for nan
-                        x = min(max(xl + pl / (pl - ph) * (xh - xl), xl + eps), xh - eps)
+                        x = xl + pl / (pl - ph) * (xh - xl) + (-close if last == 1 else close)
+                        x = min(max(x, xl + eps), xh - eps)
                         break
             g = math.exp(x)
         if tested and (up or down):
@@ -897,9 +905,11 @@ class _StackedSide:
     def solve(self, idx: np.ndarray, gamma: np.ndarray):
         """Batched side test for the plants ``idx`` at ``gamma`` (one per plant).
 
-        Returns ``(ok, X, meas)``: ok where a stabilizing X >= 0 passed the checks,
-        X (k, n, n), and the measure of :func:`_side_measure` (nan where X does not
-        exist). Eigen-decomposition of the stacked Hamiltonians (one LAPACK call per
+        Returns ``(ok, X, psd, axis)``: ok where a stabilizing X >= 0 passed the checks,
+        X (k, n, n), and the measures of :func:`_side_measure` and of the distance to an
+        imaginary-axis collision (``axis`` of :func:`schedule.riccati.stable_solution`);
+        where the test failed only the failing condition's measure is kept.
+        Eigen-decomposition of the stacked Hamiltonians (one LAPACK call per
         stack through numpy's gufuncs); the stable invariant subspace is spanned by the
         eigenvectors of the n eigenvalues with negative real part.
         """
@@ -926,7 +936,16 @@ class _StackedSide:
         wr = np.take_along_axis(w.real, order, axis=1)
         hnorm = np.abs(H).sum(axis=1).max(axis=1) + 1e-300
         ok &= (wr[:, n - 1] < 0) & (wr[:, n] > 0)
-        ok &= axis_distance(w, hnorm[:, None]).min(axis=1) > 1.0
+        on = axis_distance(w, hnorm[:, None]) <= 1.0
+        on_axis = on.any(axis=1)
+        ok &= ~on_axis
+        axis = -(wr * wr).min(axis=1)
+        if on_axis.any():
+            with np.errstate(invalid="ignore"):
+                gaps = np.diff(np.sort(np.where(on, w.imag, np.inf), axis=1), axis=1)
+            gap = np.where(np.isfinite(gaps), gaps, np.inf).min(axis=1)
+            axis = np.where(on_axis, np.where(np.isfinite(gap), 0.25 * gap * gap, np.nan), axis)
+        axis[~on_axis & ~ok] = np.nan
         U = np.take_along_axis(V, order[:, None, :n], axis=2)
         U1, U2 = U[:, :n], U[:, n:]
         try:
@@ -956,8 +975,10 @@ class _StackedSide:
         with np.errstate(divide="ignore"):
             meas = np.where(ok & (big != 0), -1.0 / np.where(big != 0, big, 1.0), np.nan)
         psd = ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
-        meas = np.where(psd | (meas > 0), meas, np.nan)
-        return ok & psd, X, meas
+        with np.errstate(invalid="ignore"):
+            meas = np.where(psd | (meas > 0), meas, np.nan)
+        axis[ok & ~psd] = np.nan
+        return ok & psd, X, meas, axis
 
 
 class _Stacked:
@@ -969,35 +990,39 @@ class _Stacked:
         self.y = _StackedSide([P.y_side for P in Ps])
 
     def __call__(self, idx: np.ndarray, gamma: np.ndarray):
-        """``(feasible (k,), measures (k, 3))`` for the plants ``idx`` at ``gamma``."""
+        """``(feasible (k,), measures (k, N_MEASURES))`` for the plants ``idx`` at ``gamma``."""
         idx = np.asarray(idx)
         gamma = np.asarray(gamma, dtype=float)
         k = idx.size
-        meas = np.full((k, 3), np.nan)
+        meas = np.full((k, N_MEASURES), np.nan)
         feas = gamma > self.pb[idx] * (1 + 1e-12)
         a = np.flatnonzero(feas)
         if a.size == 0:
             return feas, meas
-        okx, X, mx = self.x.solve(idx[a], gamma[a])
-        meas[a, 0] = mx
+        okx, X, mx, ax = self.x.solve(idx[a], gamma[a])
+        meas[a, M_XPSD] = mx
+        meas[a, M_XAXIS] = ax
         feas[a[~okx]] = False
         a, X = a[okx], X[okx]
         if a.size == 0:
             return feas, meas
-        oky, Y, my = self.y.solve(idx[a], gamma[a])
-        meas[a, 1] = my
+        oky, Y, my, ay = self.y.solve(idx[a], gamma[a])
+        meas[a, M_YPSD] = my
+        meas[a, M_YAXIS] = ay
         feas[a[~oky]] = False
-        meas[a[~oky], 0] = np.nan
+        meas[a[~oky], M_XPSD] = np.nan
+        meas[a[~oky], M_XAXIS] = np.nan
         a, X, Y = a[oky], X[oky], Y[oky]
         if a.size == 0:
             return feas, meas
         g2 = gamma[a] ** 2
         mc = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1) / g2 - 1.0
-        meas[a, 2] = mc
-        feas[a[mc >= -COUPLING_RTOL]] = False
-        # at an infeasible gamma keep only the failing condition's measure
+        meas[a, M_COUPLING] = mc
         bad_c = a[mc >= -COUPLING_RTOL]
-        meas[bad_c, :2] = np.nan
+        feas[bad_c] = False
+        # at an infeasible gamma keep only the failing condition's measure
+        meas[bad_c] = np.nan
+        meas[bad_c, M_COUPLING] = mc[mc >= -COUPLING_RTOL]
         return feas, meas
 
 
@@ -1005,8 +1030,8 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     """Bracket and shrink in log(gamma) many problems in lockstep.
 
     ``test(indices, gammas) -> (feasible, measures)`` with ``measures`` of shape
-    ``(k, 3)``: the continuous measures ``(mX, mY, mC)`` of :class:`_Quick` (a 1-D
-    array is taken as ``mC = rho(XY)/gamma^2 - 1`` alone). Each problem starts at
+    ``(k, N_MEASURES)``: the continuous measures of :class:`_Quick` (a 1-D array is
+    taken as the coupling measure ``rho(XY)/gamma^2 - 1`` alone). Each problem starts at
     its hint (a neighbour's optimal gamma) with a first step of 3 %, or at
     ``2 * D11 bound`` (1 when the bound is 0) with a first step of 4; the step
     is squared after every move (capped at 1e4) until the optimum is
@@ -1020,8 +1045,8 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     K = len(pbs)
     lo = np.asarray(pbs, dtype=float).copy()  # known infeasible (gamma must exceed the bound)
     hi = np.full(K, np.inf)  # known feasible
-    m_lo = np.full((K, 3), np.nan)
-    m_hi = np.full((K, 3), np.nan)
+    m_lo = np.full((K, N_MEASURES), np.nan)
+    m_hi = np.full((K, N_MEASURES), np.nan)
     last = np.zeros(K, dtype=int)  # +1: hi moved last, -1: lo moved last
     start = np.where(lo > 0, 2.0 * lo, 1.0)
     step = np.full(K, 4.0)
@@ -1033,6 +1058,7 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     tested = np.zeros(K, dtype=bool)
     failed = np.zeros(K, dtype=bool)
     eps = 0.3 * math.log1p(rtol)
+    close = 0.4 * math.log1p(rtol)
     for _ in range(400):
         done = failed | (np.isfinite(hi) & (hi <= lo * (1 + rtol)))
         done |= np.isfinite(hi) & (lo == 0) & (hi < 1e-10)
@@ -1058,6 +1084,9 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
             with np.errstate(invalid="ignore", divide="ignore"):
                 frac = np.where(secant, pk / (pk - hk), 0.5)
             x = xl + frac * (xh - xl)
+            # aim just past the estimate, at the side of the end that stayed put, so
+            # that a good estimate closes the bracket in one more step
+            x = x + np.where(last[active] == 1, -close, close)
             x = np.where(secant, np.clip(x, xl + eps, xh - eps), x)
             g = np.where(shrink, np.exp(x), g)
         moved = ~first & (up | down)
@@ -1068,9 +1097,12 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
             feas = np.asarray(result[0], dtype=bool)
             meas = np.asarray(result[1], dtype=float)
             if meas.ndim == 1:
-                meas = np.stack([np.full(active.size, np.nan)] * 2 + [meas], axis=1)
+                phi = meas
+                meas = np.full((active.size, N_MEASURES), np.nan)
+                meas[:, M_COUPLING] = phi
         else:
-            feas, meas = np.asarray(result, dtype=bool), np.full((active.size, 3), np.nan)
+            feas = np.asarray(result, dtype=bool)
+            meas = np.full((active.size, N_MEASURES), np.nan)
         a_f, a_i = active[feas], active[~feas]
         # Illinois: the end that stays put twice in a row has its measures halved
         m_lo[a_f[last[a_f] == 1]] *= 0.5

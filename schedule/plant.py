@@ -156,6 +156,19 @@ class GeneralizedPlant:
             D22=D[nz:, nw:],
         )
 
+    @classmethod
+    def from_validated(cls, arrays: dict[str, np.ndarray]) -> GeneralizedPlant:
+        """Build without validating again, from the arrays of plants that were validated
+        before (e.g. slices of the stacked plants of a family run, handed to a worker).
+
+        The arrays must be float64 2-D with consistent shapes; nothing is checked or
+        copied. Use the normal constructor for anything that comes from a user.
+        """
+        obj = object.__new__(cls)
+        for key in PLANT_KEYS:
+            object.__setattr__(obj, key, arrays[key])
+        return obj
+
     def to_arrays(self) -> dict[str, np.ndarray]:
         """The nine matrices by name (copies)."""
         return {k: getattr(self, k).copy() for k in PLANT_KEYS}

@@ -256,14 +256,19 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> s
           f"- Margin requirement at the plant input (loop at a time, disk): "
           f"{st.gain_margin_db:g} dB and {st.phase_margin_deg:g} deg (common practice)",
           f"- Unstable frozen loops: {s['unstable']}",
-          f"- Largest norm / gamma: {_fmt(np.max(v['ratio']))}", ""]
+          f"- Largest norm / gamma: {_fmt(_num(s['max_ratio']))}", ""]
+    if s["evidence_points"]:
+        L[-1:-1] = [f"- Evidence only (not in the verdict): {s['evidence_failed']} of "
+                    f"{s['evidence_points']} leave-one-out predictions fail (see notes)"]
     if result.weaker:
         L += ["**Weaker check:** some points use the interpolated plant of the family, "
               "not the true plant (see notes).", ""]
-    L += ["## Points by kind", "", "| kind | points | failed | max norm/gamma |",
-          "|---|---:|---:|---:|"]
+    L += ["## Points by kind", "",
+          "| kind | points | failed | max norm/gamma | counts in verdict |",
+          "|---|---:|---:|---:|---|"]
     for k, d in s["by_kind"].items():
-        L.append(f"| {k} | {d['points']} | {d['failed']} | {_fmt(_num(d['max_ratio']))} |")
+        L.append(f"| {k} | {d['points']} | {d['failed']} | {_fmt(_num(d['max_ratio']))} | "
+                 f"{'yes' if d['gates_verdict'] else 'no (evidence)'} |")
     L += ["", "## Worst points", "",
           "| point | kind | plant | norm/gamma | gamma_opt/gamma | in. gain [dB] | "
           "in. phase [deg] | out. gain [dB] | all-loop in. gain [dB] | result |",

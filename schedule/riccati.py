@@ -167,26 +167,40 @@ def stable_solution(H: np.ndarray, n: int, hnorm: float):
 
     Returns
     -------
-    (X, ev, code, value, margin): X symmetric and its ascending eigenvalues ``ev`` on
-    success (``code`` 0, ``value`` the condition number of U1); ``margin`` the axis
-    margin ``min |Re lambda| / (AXIS_RTOL |lambda| + AXIS_ATOL hnorm)``; otherwise X is None and
+    (X, ev, code, value, margin, axis): X symmetric and its ascending eigenvalues ``ev``
+    on success (``code`` 0, ``value`` the condition number of U1); ``margin`` the axis
+    margin ``min |Re lambda| / (AXIS_RTOL |lambda| + AXIS_ATOL hnorm)``; ``axis`` a signed
+    measure of the distance to an imaginary-axis collision (see Notes); otherwise X is None and
     ``code`` says why: 1 Hamiltonian eigenvalue on the imaginary axis (``value`` the
     axis margin, with ``ev`` = ``(|lambda|, |Re lambda|)`` of the closest one),
     2 ordering failed, 3 U1 singular, 4 U1 ill-conditioned (``value`` its condition).
+
+    Notes
+    -----
+    When a parameter of H moves the eigenvalues onto the imaginary axis, a pair
+    ``lambda = j w0 +- a`` (a real) meets at ``j w0`` and splits along the axis as
+    ``j (w0 +- delta)``; to first order ``a^2`` and ``delta^2`` are linear in the
+    parameter with opposite signs. ``axis`` is ``-min (Re lambda)^2`` when no eigenvalue
+    is on the axis and ``+delta^2`` (half the smallest gap between axis eigenvalues,
+    squared) when some are, so it passes through zero at the collision; nan when
+    fewer than two eigenvalues are on the axis.
     """
     _T, Z, wr, wi, k = ordered_schur(H)
     if k < 0:
-        return None, None, 2, np.nan, np.nan
+        return None, None, 2, np.nan, np.nan, np.nan
     mod = np.hypot(wr, wi)
     ratio = np.abs(wr) / (AXIS_RTOL * mod + (AXIS_ATOL * hnorm + 1e-300))
     j = int(ratio.argmin())
     margin = float(ratio[j])
     if margin <= 1.0 or k != n:
-        return None, (float(mod[j]), float(abs(wr[j]))), 1, margin, margin
+        on = np.sort(wi[ratio <= 1.0])
+        axis = 0.25 * float(np.diff(on).min()) ** 2 if on.size > 1 else np.nan
+        return None, (float(mod[j]), float(abs(wr[j]))), 1, margin, margin, axis
+    axis = -float((wr * wr).min())
     try:
         X = np.linalg.solve(Z[:n, :n].T, Z[n:, :n].T)  # X' = U1'^-1 U2'; X = U2 U1^-1
     except np.linalg.LinAlgError:
-        return None, None, 3, np.inf, margin
+        return None, None, 3, np.inf, margin, axis
     X = 0.5 * (X + X.T)
     # [U1; U2] has orthonormal columns and U2 = X U1, so U1'U1 = (I + X^2)^-1: the
     # singular values of U1 are 1 / sqrt(1 + lambda_i(X)^2), which gives cond(U1) exactly.
@@ -194,8 +208,8 @@ def stable_solution(H: np.ndarray, n: int, hnorm: float):
     lam2 = ev * ev
     cond = float(np.sqrt((1.0 + lam2.max()) / (1.0 + lam2.min())))
     if not cond <= COND_MAX:
-        return None, ev, 4, cond, margin
-    return X, ev, 0, cond, margin
+        return None, ev, 4, cond, margin, axis
+    return X, ev, 0, cond, margin, axis
 
 
 def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
@@ -239,7 +253,7 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
     else:
         H = hamiltonian(A, R, Q)
     hnorm = max(float(np.abs(H).sum(axis=0).max()), 1e-300)
-    Xs, ev, code, value, margin = stable_solution(H, n, hnorm)
+    Xs, ev, code, value, margin, _axis = stable_solution(H, n, hnorm)
     if code == 2:
         return RiccatiResult(
             None, "Hamiltonian eigenvalues on the imaginary axis (ordering failed)"

@@ -32,7 +32,8 @@ def print_result(result, quiet: bool = False) -> None:
                f"{st.gain_margin_db:g} dB / {st.phase_margin_deg:g} deg, common practice)")
     for k, d in s["by_kind"].items():
         click.echo(f"  {k:<16} {d['points']:>6} points  {d['failed']:>5} failed  "
-                   f"max norm/gamma {_fmt(float(d['max_ratio']))}")
+                   f"max norm/gamma {_fmt(float(d['max_ratio']))}"
+                   + ("" if d["gates_verdict"] else "  (evidence only)"))
     if result.weaker:
         click.echo("  WEAKER CHECK: some points use the family's interpolated plant, not the "
                    "true plant")
