@@ -508,9 +508,10 @@ class CheckResult:
         return bool(np.any(self.plant_source == "interpolated"))
 
     def worst(self, count: int = 10) -> np.ndarray:
-        """Indices of the worst points: failures first, then by norm / gamma."""
+        """Indices of the worst points: points that count in the verdict first, then
+        failures, then by norm / gamma."""
         ratio = np.nan_to_num(self.values["ratio"], nan=np.inf)
-        order = np.lexsort((-ratio, self.passed))
+        order = np.lexsort((-ratio, self.passed, ~self.gates))
         return order[:count]
 
     def summary(self) -> dict:
@@ -608,7 +609,7 @@ def propose_points(result: CheckResult, family: Family) -> tuple[np.ndarray, dic
     point. Failing design points (kind "grid") are not proposed: adding
     points there changes nothing.
     """
-    fail = np.flatnonzero(~result.passed & (result.kind != "grid"))
+    fail = np.flatnonzero(~result.passed & result.gates & (result.kind != "grid"))
     ratio = np.nan_to_num(result.values["ratio"][fail], nan=np.inf)
     fail = fail[np.argsort(-ratio, kind="stable")]
     names = result.variable_names

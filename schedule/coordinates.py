@@ -13,9 +13,9 @@ For each pair of neighbouring points i, j this module computes
 
 - the relative matrix difference ``|M_i - M_j|_F / max(|M_i|_F, |M_j|_F)`` with
   ``M = [[A, B], [C, D]]``, and
-- the relative response difference ``max_w |G_i(jw) - G_j(jw)|_F / max_w
-  max(|G_i(jw)|_F, |G_j(jw)|_F)`` on a logarithmic frequency grid spanning the
-  eigenvalue moduli of all A's,
+- the relative response difference ``max_w |G_i(jw) - G_j(jw)|_F /
+  max(|G_i(jw)|_F, |G_j(jw)|_F)`` (relative at each frequency) on a
+  logarithmic frequency grid spanning the eigenvalue moduli of all A's,
 
 and flags the pair when the matrix difference exceeds ``min_difference`` and
 either ``ratio`` times the response difference or ``relative`` times the
@@ -151,11 +151,20 @@ def check_coordinates(points, A, B, C, D, grid_index=None, omega=None, ratio: fl
     i, j = pairs[:, 0], pairs[:, 1]
     mat = np.sqrt(np.sum((M[i] - M[j]) ** 2, axis=(1, 2))) / np.maximum(
         np.maximum(mnorm[i], mnorm[j]), 1e-300)
-    gd = np.sqrt(np.sum(np.abs(G[i] - G[j]) ** 2, axis=(2, 3))).max(axis=1)
-    resp = gd / np.maximum(np.maximum(gnorm[i], gnorm[j]).max(axis=1), 1e-300)
+    # Relative difference frequency by frequency, then the largest: a norm taken
+    # over all frequencies at once is dominated by integrators and resonances and
+    # hides real changes elsewhere (a crane's sway mode next to its position
+    # integrator). A floor keeps transmission zeros from dividing by ~0.
+    gmax = np.maximum(gnorm[i], gnorm[j])
+    floor = 1e-6 * gmax.max(axis=1, keepdims=True)
+    gd = np.sqrt(np.sum(np.abs(G[i] - G[j]) ** 2, axis=(2, 3)))
+    resp = (gd / np.maximum(np.maximum(gmax, floor), 1e-300)).max(axis=1)
     excess = mat / np.maximum(resp, 1e-12)
     baseline = float(np.median(excess)) if excess.size >= 4 else np.inf
-    flagged = (mat > min_difference) & ((excess > ratio) | (excess > relative * baseline))
+    # "much more": the matrices must differ more than the responses in any case
+    # (by 2x at least), and by ``ratio`` or ``relative`` x the typical pair.
+    flagged = ((mat > min_difference) & (excess > 2.0)
+               & ((excess > ratio) | (excess > relative * baseline)))
     score = np.zeros(n_pts)
     for k in range(n_pts):
         mine = (i == k) | (j == k)

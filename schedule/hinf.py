@@ -988,41 +988,49 @@ class _Stacked:
         self.pb = np.array([P.d11_bound for P in Ps])
         self.x = _StackedSide([P.x_side for P in Ps])
         self.y = _StackedSide([P.y_side for P in Ps])
+        self.fails = [0, 0]  # failures of the X and the Y side so far
 
     def __call__(self, idx: np.ndarray, gamma: np.ndarray):
-        """``(feasible (k,), measures (k, N_MEASURES))`` for the plants ``idx`` at ``gamma``."""
+        """``(feasible (k,), measures (k, N_MEASURES))`` for the plants ``idx`` at ``gamma``.
+
+        The side (X or Y) that has failed more often so far is solved first; plants
+        that fail it skip the other one.
+        """
         idx = np.asarray(idx)
         gamma = np.asarray(gamma, dtype=float)
         k = idx.size
         meas = np.full((k, N_MEASURES), np.nan)
         feas = gamma > self.pb[idx] * (1 + 1e-12)
         a = np.flatnonzero(feas)
-        if a.size == 0:
-            return feas, meas
-        okx, X, mx, ax = self.x.solve(idx[a], gamma[a])
-        meas[a, M_XPSD] = mx
-        meas[a, M_XAXIS] = ax
-        feas[a[~okx]] = False
-        a, X = a[okx], X[okx]
-        if a.size == 0:
-            return feas, meas
-        oky, Y, my, ay = self.y.solve(idx[a], gamma[a])
-        meas[a, M_YPSD] = my
-        meas[a, M_YAXIS] = ay
-        feas[a[~oky]] = False
-        meas[a[~oky], M_XPSD] = np.nan
-        meas[a[~oky], M_XAXIS] = np.nan
-        a, X, Y = a[oky], X[oky], Y[oky]
+        sides = [(0, self.x, M_XPSD, M_XAXIS), (1, self.y, M_YPSD, M_YAXIS)]
+        if self.fails[1] > self.fails[0]:
+            sides.reverse()
+        sols: list[np.ndarray] = []
+        for j, (which, side, c_psd, c_axis) in enumerate(sides):
+            if a.size == 0:
+                return feas, meas
+            ok, X, m_psd, m_axis = side.solve(idx[a], gamma[a])
+            meas[a, c_psd] = m_psd
+            meas[a, c_axis] = m_axis
+            bad = a[~ok]
+            feas[bad] = False
+            self.fails[which] += bad.size
+            if j == 1:  # keep only the failing side's measures
+                meas[bad, sides[0][2]] = np.nan
+                meas[bad, sides[0][3]] = np.nan
+            a = a[ok]
+            sols = [S[ok] for S in sols] + [X[ok]]
         if a.size == 0:
             return feas, meas
         g2 = gamma[a] ** 2
-        mc = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1) / g2 - 1.0
+        mc = np.abs(np.linalg.eigvals(sols[0] @ sols[1])).max(axis=1) / g2 - 1.0
         meas[a, M_COUPLING] = mc
-        bad_c = a[mc >= -COUPLING_RTOL]
+        fail_c = mc >= -COUPLING_RTOL
+        bad_c = a[fail_c]
         feas[bad_c] = False
         # at an infeasible gamma keep only the failing condition's measure
         meas[bad_c] = np.nan
-        meas[bad_c, M_COUPLING] = mc[mc >= -COUPLING_RTOL]
+        meas[bad_c, M_COUPLING] = mc[fail_c]
         return feas, meas
 
 

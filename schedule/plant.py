@@ -221,10 +221,12 @@ class GeneralizedPlant:
                 f"(C2, A) is not detectable: mode {_fmt(lam)} is not seen by the "
                 "measurements; add a sensor seeing it or remove it from the model"
             )
-        _check_rank("D12", self.D12, full="column")
-        _check_rank("D21", self.D21, full="row")
+        u12, s12, vt12 = np.linalg.svd(self.D12)
+        u21, s21, vt21 = np.linalg.svd(self.D21)
+        _check_rank("D12", self.D12, full="column", s=s12)
+        _check_rank("D21", self.D21, full="row", s=s21)
         # (A3): zeros of [A - sI, B2; C1, D12] on the imaginary axis.
-        u_, s_, vt = np.linalg.svd(self.D12)
+        u_, s_, vt = u12, s12, vt12
         pinv = vt.T @ (u_[:, : self.nu].T / s_[:, None])
         Az = A - B2 @ pinv @ C1
         Cz = u_[:, self.nu :].T @ C1
@@ -237,7 +239,7 @@ class GeneralizedPlant:
                 "left half-plane (e.g. s -> s + 1e-4)"
             )
         # (A4): zeros of [A - sI, B1; C2, D21] on the imaginary axis (dual).
-        u_, s_, vt = np.linalg.svd(self.D21)
+        u_, s_, vt = u21, s21, vt21
         pinv = vt[: self.ny].T @ (u_.T / s_[:, None])
         Ay = A - B1 @ pinv @ C2
         By = B1 @ vt[self.ny :].T
@@ -311,9 +313,10 @@ def _validated(raw: dict[str, object]) -> dict[str, np.ndarray]:
     return arrays
 
 
-def _check_rank(name: str, D: np.ndarray, full: str) -> None:
+def _check_rank(name: str, D: np.ndarray, full: str, s: np.ndarray | None = None) -> None:
     rows, cols = D.shape
-    s = np.linalg.svd(D, compute_uv=False)
+    if s is None:
+        s = np.linalg.svd(D, compute_uv=False)
     need = cols if full == "column" else rows
     top = s[0] if s.size else 0.0
     rank = int(np.sum(s > _RANK_RTOL * top)) if top > 0 else 0

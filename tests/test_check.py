@@ -317,3 +317,25 @@ def test_cli_refine(coarse, tmp_path):
     res = runner.invoke(main, ["refine", str(src), "--out", str(tmp_path / "r2.h5"),
                                "--budget", "0", "--samples", "8", "--quiet"])
     assert res.exit_code == 1 and "FAIL" in res.output
+
+
+def test_leave_one_out_is_evidence_unless_asked_or_no_true_plant(fine):
+    """Leave-one-out predictions (twice the grid spacing) gate the verdict only when asked,
+    or when the in-between points could only be checked on the interpolated plant."""
+    from schedule.check import CheckSettings, check_family
+
+    spec, fam = fine
+    base = dict(samples=4, gamma_opt=False, rate=False, classical=False)
+    default = check_family(fam, CheckSettings(**base), spec=spec)
+    loo = default.kind == "leave_one_out"
+    assert loo.any() and not default.weaker
+    np.testing.assert_array_equal(default.gates, ~loo)
+    assert default.all_passed == bool(np.all(default.passed[~loo]))
+    strict = check_family(fam, CheckSettings(**base, loo_gates=True), spec=spec)
+    assert strict.gates.all()
+    assert strict.all_passed == bool(np.all(strict.passed))
+    import dataclasses
+
+    no_model = dataclasses.replace(fam, design_text="")   # nothing tells where a model is
+    weaker = check_family(no_model, CheckSettings(**base), spec=None)
+    assert weaker.weaker and weaker.gates.all()

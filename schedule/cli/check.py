@@ -44,14 +44,20 @@ def print_result(result, quiet: bool = False) -> None:
                            strict=True):
             click.echo(f"  rate bound {n}: |d{n}/dt| < {_fmt(a)} alone, {_fmt(b)} with all "
                        "variables moving (sufficient)")
-    bad = [i for i in result.worst(10) if not result.passed[i]]
-    if bad:
-        click.echo("  worst points:")
-    for i in bad:
+    gates = result.gates
+    order = result.worst(len(result.passed))
+    failing = [i for i in order if gates[i] and not result.passed[i]][:10]
+    evidence = [i for i in order if not gates[i] and not result.passed[i]][:3]
+    shown = failing or [i for i in order if gates[i]][:1]
+    if shown:
+        click.echo("  worst points:" if failing else "  worst point (passes):")
+    for i in shown + evidence:
         pt = ", ".join(f"{n}={x:.4g}" for n, x in zip(result.variable_names, result.points[i],
                                                        strict=True))
-        click.echo(f"    ({pt}) [{result.kind[i]}, {result.plant_source[i]} plant] "
-                   f"{result.reasons[i]}")
+        what = result.reasons[i] or f"norm / gamma {result.values['ratio'][i]:.4g}"
+        tag = "" if gates[i] else ", evidence only"
+        click.echo(f"    ({pt}) [{result.kind[i]}, {result.plant_source[i]} plant{tag}] "
+                   f"{what}")
     if result.proposals is not None and len(result.proposals):
         click.echo(f"  {len(result.proposals)} new design point(s) proposed; "
                    "`schedule refine` adds them")
@@ -79,9 +85,12 @@ def print_result(result, quiet: bool = False) -> None:
 @click.option("--cluster", default=None, help="dask scheduler address (overrides --jobs).")
 @click.option("--no-gamma-opt", is_flag=True,
               help="Skip the optimal gamma at each check point (faster).")
+@click.option("--strict-leave-one-out", "strict_loo", is_flag=True,
+              help="Let failing leave-one-out predictions fail the check even when the "
+                   "in-between points use the true plant (by default they are evidence only).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the verdict lines.")
 def check_command(family_file, samples, sampler, seed, points_file, model, as_json, report_dir,
-                  jobs, cluster, no_gamma_opt, quiet):
+                  jobs, cluster, no_gamma_opt, strict_loo, quiet):
     """Check the scheduled controller of FAMILY_FILE at frozen in-between points.
 
     Stability, closed-loop norm against gamma, disk and classical margins, the
@@ -103,7 +112,8 @@ def check_command(family_file, samples, sampler, seed, points_file, model, as_js
             spec = None  # check_family notes it and uses the interpolated plant
     settings = CheckSettings.from_spec(spec, samples=samples, sampler=sampler, seed=seed,
                                        points_file=points_file,
-                                       gamma_opt=False if no_gamma_opt else None)
+                                       gamma_opt=False if no_gamma_opt else None,
+                                       loo_gates=True if strict_loo else None)
     bar = ProgressBar(enabled=False if (quiet or as_json) else None)
     try:
         result = check_family(family, settings, spec=spec, jobs=jobs, cluster=cluster,

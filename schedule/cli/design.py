@@ -60,8 +60,9 @@ def _print_table(info: dict) -> None:
                                 f"{info['resumed']['controllers']} controllers"))
     if info["interpolant"]:
         attrs = info["interpolant"]
-        rows.append(("interpolant", ", ".join(f"{k}={v}" for k, v in attrs.items()
-                                              if isinstance(v, (str, int, float)))[:90]))
+        rows.append(("interpolant", f"{attrs.get('form', '?')} form, {attrs.get('kind', '?')} "
+                                    "(chosen by leave-one-out evidence unless the design "
+                                    "names one)"))
     elif info["interpolant_error"]:
         rows.append(("interpolant", f"not fitted: {info['interpolant_error']}"))
     width = max(len(r[0]) for r in rows)

@@ -23,8 +23,12 @@ import numpy as np
               help="Worker processes.")
 @click.option("--cluster", default=None, help="dask scheduler address (overrides --jobs).")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
+@click.option("--strict-leave-one-out", "strict_loo", is_flag=True,
+              help="Let failing leave-one-out predictions fail the check even when the "
+                   "in-between points use the true plant (by default they are evidence only).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the final verdict.")
-def refine_command(family_file, out, budget, samples, model, jobs, cluster, as_json, quiet):
+def refine_command(family_file, out, budget, samples, model, jobs, cluster, strict_loo, as_json,
+                   quiet):
     """Refine FAMILY_FILE: synthesize new points where frozen-point checks fail, refit, recheck.
 
     Exit code 0 when the refined family passes every check, 1 when checks still
@@ -36,7 +40,8 @@ def refine_command(family_file, out, budget, samples, model, jobs, cluster, as_j
 
     family = read_family(family_file)
     spec = spec_for_family(family, model=model)
-    settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False)
+    settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False,
+                                       loo_gates=True if strict_loo else None)
     outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster)
     write_family(out, outcome.family)
     last = outcome.rounds[-1]
