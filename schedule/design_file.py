@@ -158,12 +158,19 @@ class GridSpec:
 
 @dataclass(frozen=True)
 class ChannelSpec:
-    """Plant signal names: controls, disturbances (inputs); measured, performance (outputs)."""
+    """Plant signal names: controls, disturbances (inputs); measured, performance (outputs).
+
+    ``arrangement`` is "mixed_sensitivity" (the tool adds the weights) or
+    "generalized" (the source already gives the generalized plant: disturbances
+    are its exogenous inputs w, performance its error outputs z, taken as they
+    are, and [weights] must be absent).
+    """
 
     controls: tuple[str, ...]
     disturbances: tuple[str, ...]
     measured: tuple[str, ...]
     performance: tuple[str, ...]
+    arrangement: str = "mixed_sensitivity"
 
 
 @dataclass(frozen=True)
@@ -367,6 +374,7 @@ def _first_duplicate(items) -> Any:
 
 
 # --------------------------------------------------------------------------- entry points
+ARRANGEMENTS = ("mixed_sensitivity", "generalized")
 TOP_KEYS = ("title", "variable", "source", "grid", "channels", "weights", "gamma",
             "interpolation", "check", "export")
 
@@ -416,13 +424,22 @@ def parse_design(text: str, base_dir: str | os.PathLike, name: str = "<design te
         raise InputError(f"{name}: not valid TOML ({msg}); fix the syntax at that line"
                          ) from None
     base = Path(base_dir)
-    r.keys(data, "", TOP_KEYS, required=("variable", "source", "channels", "weights"))
+    r.keys(data, "", TOP_KEYS, required=("variable", "source", "channels"))
     title = r.string(data, "", "title", "") or ""
     variables = _parse_variables(r, data["variable"])
     source = _parse_source(r, r.table(data["source"], "source"), base)
     grid = _parse_grid(r, data.get("grid"), variables, source)
     channels = _parse_channels(r, r.table(data["channels"], "channels"))
-    weights = _parse_weights(r, r.table(data["weights"], "weights"), channels, variables)
+    if channels.arrangement == "generalized":
+        if "weights" in data:
+            raise r.fail("weights", "given with channels.arrangement = \"generalized\"",
+                         "drop [weights]: a generalized plant carries its weights already")
+        weights = WeightsSpec()
+    else:
+        if "weights" not in data:
+            raise r.fail("weights", "missing required key", "add the [[weights.*]] tables (see "
+                         "docs/design-file.md) or set channels.arrangement = \"generalized\"")
+        weights = _parse_weights(r, r.table(data["weights"], "weights"), channels, variables)
     gamma = _parse_gamma(r, r.table(data.get("gamma", {}), "gamma"))
     interp = _parse_interpolation(r, r.table(data.get("interpolation", {}), "interpolation"))
     check = _parse_check(r, r.table(data.get("check", {}), "check"))
@@ -598,17 +615,29 @@ def _duplicate_row(arr: np.ndarray) -> tuple[int, int] | None:
 
 def _parse_channels(r: _Reader, t: dict) -> ChannelSpec:
     key = "channels"
-    r.keys(t, key, ("controls", "disturbances", "measured", "performance"))
+    r.keys(t, key, ("controls", "disturbances", "measured", "performance", "arrangement"))
+    arrangement = r.string(t, key, "arrangement", "mixed_sensitivity")
+    if arrangement not in ARRANGEMENTS:
+        raise r.fail("channels.arrangement", f"unknown value {arrangement!r}",
+                     f"use one of {', '.join(ARRANGEMENTS)}")
+    generalized = arrangement == "generalized"
     controls = r.names(t, key, "controls", required=True)
-    disturbances = r.names(t, key, "disturbances", required=False)
+    disturbances = r.names(t, key, "disturbances", required=generalized)
     measured = r.names(t, key, "measured", required=True)
-    performance = r.names(t, key, "performance", required=False)
+    performance = r.names(t, key, "performance", required=generalized)
+    if generalized:
+        for a, b, what in ((measured, performance, "output"), (controls, disturbances, "input")):
+            both = set(a) & set(b)
+            if both:
+                raise r.fail("channels", f"'{sorted(both)[0]}' is both a measured/control and "
+                             f"an exogenous/performance {what}",
+                             "in a generalized plant each signal has one role")
     both = set(controls) & set(disturbances)
     if both:
         n = sorted(both)[0]
         raise r.fail("channels.disturbances", f"'{n}' is also listed in channels.controls",
                      "a plant input is either a control or a disturbance")
-    return ChannelSpec(controls, disturbances, measured, performance)
+    return ChannelSpec(controls, disturbances, measured, performance, arrangement)
 
 
 def _parse_weights(r: _Reader, t: dict, ch: ChannelSpec, variables) -> WeightsSpec:

@@ -197,6 +197,28 @@ def build_generalized_plant(spec: DesignSpec, linear_plant: LinearPlant, point):
     return build_generalized_plant_named(spec, linear_plant, point)[0]
 
 
+def _given_generalized_plant(A, B, C, D, ch, ins, outs, state_names):
+    """Partition a plant that already is the generalized plant (arrangement "generalized").
+
+    w = the plant inputs listed as disturbances, u = the controls; z = the
+    outputs listed as performance, y = the measured ones (in the listed order).
+    """
+    from .plant import GeneralizedPlant
+
+    iw = [ins.index(s) for s in ch.disturbances]
+    iu = [ins.index(s) for s in ch.controls]
+    iz = [outs.index(s) for s in ch.performance]
+    iy = [outs.index(s) for s in ch.measured]
+    gp = GeneralizedPlant(A=A, B1=B[:, iw], B2=B[:, iu], C1=C[iz], C2=C[iy],
+                          D11=D[np.ix_(iz, iw)], D12=D[np.ix_(iz, iu)],
+                          D21=D[np.ix_(iy, iw)], D22=D[np.ix_(iy, iu)])
+    names = NamedChannels(exogenous=tuple(ch.disturbances), performance=tuple(ch.performance),
+                          measured=tuple(ch.measured), controls=tuple(ch.controls),
+                          states=tuple(state_names) or tuple(f"x{k + 1}"
+                                                             for k in range(A.shape[0])))
+    return gp, names
+
+
 def build_generalized_plant_named(spec: DesignSpec, linear_plant: LinearPlant, point):
     """Like :func:`build_generalized_plant`, also returning the :class:`NamedChannels`.
 
@@ -226,6 +248,8 @@ def build_generalized_plant_named(spec: DesignSpec, linear_plant: LinearPlant, p
                              "linearization")
     ch, ws = spec.channels, spec.weights
     ins, outs = list(linear_plant.input_names), list(linear_plant.output_names)
+    if ch.arrangement == "generalized":
+        return _given_generalized_plant(A, B, C, D, ch, ins, outs, linear_plant.state_names)
     iu = [ins.index(s) for s in ch.controls]
     idd = [ins.index(s) for s in ch.disturbances]
     im = [outs.index(s) for s in ch.measured]

@@ -209,3 +209,53 @@ def test_unknown_channel_and_bad_point():
         build_generalized_plant(spec, bad, [0.5])
     with pytest.raises(InputError, match="1 scheduling variables"):
         build_generalized_plant(spec, lp, [0.5, 0.2])
+
+
+def test_generalized_arrangement_takes_the_plant_as_it_is(tmp_path):
+    """channels.arrangement = "generalized": the source's plant is partitioned, not weighted.
+
+    Outside reference: the partition of a state-space plant into P11, P12, P21,
+    P22 by input and output groups (Zhou, Doyle and Glover 1996, sec. 10.1);
+    the blocks must equal the sub-matrices picked by name, and the optimal
+    gamma of the scalar problem xdot = a x + w1 + u, z = [x; u],
+    y = x + w2 must be the closed form a + sqrt(a^2 + 2) (derived in
+    tests/test_hinf.py).
+    """
+    from schedule.design_file import parse_design
+    from schedule.hinf import optimal_gamma
+    from schedule.types import LinearPlant
+    from schedule.weights import build_generalized_plant
+
+    text = """
+[[variable]]
+name = "p"
+unit = "-"
+lower = 0.0
+upper = 1.0
+[source]
+model = "no_module:f"
+[grid]
+p = [0.0, 1.0]
+[channels]
+arrangement = "generalized"
+controls = ["u"]
+disturbances = ["w1", "w2"]
+measured = ["y"]
+performance = ["zx", "zu"]
+"""
+    spec = parse_design(text, tmp_path)
+    a = 0.5
+    # inputs deliberately out of order: u first
+    plant = LinearPlant(A=np.array([[a]]), B=np.array([[1.0, 1.0, 0.0]]),
+                        C=np.array([[1.0], [0.0], [1.0]]),
+                        D=np.array([[0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 1.0]]),
+                        state_names=("x",), input_names=("u", "w1", "w2"),
+                        output_names=("zx", "zu", "y"))
+    gp = build_generalized_plant(spec, plant, {"p": 0.0})
+    np.testing.assert_array_equal(gp.B1, [[1.0, 0.0]])
+    np.testing.assert_array_equal(gp.B2, [[1.0]])
+    np.testing.assert_array_equal(gp.D12, [[0.0], [1.0]])
+    np.testing.assert_array_equal(gp.D21, [[0.0, 1.0]])
+    assert optimal_gamma(gp, rtol=1e-7) == pytest.approx(a + np.sqrt(a * a + 2), rel=1e-5)
+    with pytest.raises(Exception, match="weights"):
+        parse_design(text + "\n[[weights.performance]]\noutput = \"zx\"\ngain = 1.0\n", tmp_path)
