@@ -1126,25 +1126,35 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     return out
 
 
-WARM_STRIDE = 8  # pass 1 solves every 8th plant cold, pass 2 the rest warm-started
+WARM_STRIDES = (64, 8, 1)  # plants solved in each pass (by list position)
 
 
-def _two_pass(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
-    """Lockstep search in two passes: every WARM_STRIDE-th plant cold, then the others
-    warm-started from the nearest (by list position) plant of the first pass."""
+def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
+    """Lockstep search in passes: every 64th plant from a cold start, then every 8th
+    and then all others, each warm-started from the nearest (by list position)
+    plant already solved. Plants are taken to be listed in envelope order, so list
+    neighbours are envelope neighbours with nearby optimal gammas."""
     K = len(Ps)
     test = _Stacked(Ps)
-
-    def sub_test(sub):
-        return lambda act, g: test(sub[act], g)
-
-    first = np.arange(0, K, WARM_STRIDE)
     out = np.full(K, np.nan)
-    out[first] = _search(sub_test(first), pbs[first], rtol)
-    rest = np.setdiff1d(np.arange(K), first)
-    if rest.size:
-        anchor = first[np.clip(np.rint(rest / WARM_STRIDE).astype(int), 0, first.size - 1)]
-        out[rest] = _search(sub_test(rest), pbs[rest], rtol, hints=out[anchor])
+    done = np.zeros(K, dtype=bool)
+    for stride in WARM_STRIDES:
+        now = np.flatnonzero(~done & (np.arange(K) % stride == 0))
+        if now.size == 0:
+            continue
+        hints = None
+        solved = np.flatnonzero(done)
+        if solved.size:
+            pos = np.clip(np.searchsorted(solved, now), 1, max(solved.size - 1, 1))
+            left = solved[np.minimum(pos - 1, solved.size - 1)]
+            right = solved[np.minimum(pos, solved.size - 1)]
+            hints = out[np.where(now - left <= right - now, left, right)]
+
+        def sub_test(act, g, now=now):
+            return test(now[act], g)
+
+        out[now] = _search(sub_test, pbs[now], rtol, hints=hints)
+        done[now] = True
     return out
 
 
@@ -1179,8 +1189,9 @@ def synthesize_many(
     arrays and calls one batched eigen-decomposition, so the per-call Python
     overhead is paid once per step, not once per plant. The stable invariant
     subspace comes from the eigenvectors. Plants are taken to be listed in
-    envelope order: every 8th is solved first, the others then start from the
-    optimal gamma of the nearest solved one (warm start). Every gamma found is
+    envelope order: every 64th is solved first, then every 8th and then the
+    others, each starting from the optimal gamma of the nearest solved one (warm
+    start). Every gamma found is
     re-checked with the ordered-Schur solver of :func:`feasibility`, and the
     scalar :func:`optimal_gamma` is used where the two disagree.
     """
@@ -1215,7 +1226,7 @@ def synthesize_many(
         for idx in groups.values():
             Ps = [normalized[i] for i in idx]
             pbs = np.array([parrott_bound(P) for P in Ps])
-            found = _two_pass(Ps, pbs, rtol)
+            found = _passes(Ps, pbs, rtol)
             for i, g in zip(idx, found, strict=True):
                 P = normalized[i]
                 if np.isfinite(g) and not _solve_all(P, float(g), gains=False)[-1]:
