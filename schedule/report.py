@@ -59,6 +59,7 @@ STYLE = {
 INK = "#2b2b2b"
 ACCENT = "#c0392b"  # failing points
 DESIGN = "#1f4e79"  # design (grid) points
+EVIDENCE = "#d68910"  # leave-one-out evidence that does not gate the verdict
 
 
 class _AggFigures:
@@ -94,6 +95,12 @@ def _finite(x, cap: float) -> np.ndarray:
 
 
 def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
+    # Points that count in the verdict carry the colour scale; leave-one-out
+    # predictions shown as evidence only are marked where they fail, apart.
+    keep = result.gates
+    evidence_fail = ~result.passed & ~keep
+    evidence_pts = result.points[evidence_fail]
+    result = _subset(result, keep)
     v = result.values
     ratio = _finite(v["ratio"], np.nan)
     shown = np.where(np.isfinite(ratio), ratio, np.nanmax(ratio, initial=1.0) * 1.2)
@@ -122,13 +129,18 @@ def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
             fig.colorbar(sc, ax=ax, label="closed-loop norm / gamma")
             ax.scatter(result.points[grid, a], result.points[grid, b], marker="s", s=46,
                        facecolors="none", edgecolors=DESIGN, label="design points")
-            ax.scatter(result.points[fail, a], result.points[fail, b], marker="x", s=50,
-                       color=ACCENT, label="failing")
+            if fail.any():
+                ax.scatter(result.points[fail, a], result.points[fail, b], marker="x", s=50,
+                           color=ACCENT, label="failing")
+            if len(evidence_pts):
+                ax.scatter(evidence_pts[:, a], evidence_pts[:, b], marker="D", s=30,
+                           facecolors="none", edgecolors=EVIDENCE, linewidths=1.0,
+                           label="leave-one-out above gamma (evidence)")
             ax.set_ylabel(_label(result, b))
             name = f"ratio_{result.variable_names[a]}_{result.variable_names[b]}.png"
         ax.set_xlabel(_label(result, a))
         ax.set_title("Norm over gamma at frozen points")
-        ax.legend(loc="best")
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2)
         path = out / name
         _save_figure(fig, path)
         plt.close(fig)
@@ -178,7 +190,8 @@ def _subset(result: CheckResult, mask) -> CheckResult:
                    plant_source=result.plant_source[mask],
                    values={k: v[mask] for k, v in result.values.items()},
                    passed=result.passed[mask],
-                   reasons=[r for r, m in zip(result.reasons, mask, strict=True) if m])
+                   reasons=[r for r, m in zip(result.reasons, mask, strict=True) if m],
+                   gating=None if result.gating is None else np.asarray(result.gating)[mask])
 
 
 def _margins_plot(plt, result: CheckResult, out: Path) -> Path:

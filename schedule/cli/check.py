@@ -40,10 +40,12 @@ def print_result(result, quiet: bool = False) -> None:
     if quiet:
         return
     if result.rate is not None:
+        units = dict(zip(result.variable_names, result.units, strict=True))
         for n, a, b in zip(result.rate.names, result.rate.single, result.rate.joint,
                            strict=True):
-            click.echo(f"  rate bound {n}: |d{n}/dt| < {_fmt(a)} alone, {_fmt(b)} with all "
-                       "variables moving (sufficient)")
+            u = f" {units[n]}/s" if units.get(n) else ""
+            click.echo(f"  rate bound: |d {n}/dt| < {_fmt(a)}{u} alone, {_fmt(b)}{u} with all "
+                       "variables moving (sufficient, conservative)")
     gates = result.gates
     order = result.worst(len(result.passed))
     failing = [i for i in order if gates[i] and not result.passed[i]][:10]
