@@ -313,6 +313,9 @@ def read_family(path: str | os.PathLike) -> Family:
     except InputError:
         raise
     except Exception as exc:  # h5py raises OSError, KeyError, RuntimeError, ... on damage
+        if _starts_unlike_hdf5(path):
+            raise InputError(f"{path} is not an HDF5 file; give a family file written by "
+                             "'schedule design'") from None
         msg = " ".join(str(exc).split())[:120]
         raise InputError(f"{path} is corrupt or truncated ({type(exc).__name__}: {msg}); "
                          "re-run 'schedule design' or restore the file") from None
@@ -455,3 +458,12 @@ def read_partial(path: str | os.PathLike) -> tuple[dict, dict] | None:
         raise InputError(f"{path} is unreadable ({type(exc).__name__}); delete it and run "
                          "without --resume") from None
     return arrays, attrs
+
+
+def _starts_unlike_hdf5(path) -> bool:
+    """True when the file does not begin with the HDF5 signature (a text file, say)."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(8) != b"\x89HDF\r\n\x1a\n"
+    except OSError:
+        return False

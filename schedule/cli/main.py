@@ -29,6 +29,11 @@ _VERBS = [
 class _Group(click.Group):
     """A click group that turns ScheduleError into a one-line error and exit code 2."""
 
+    def list_commands(self, ctx):
+        """The verbs in the order of the job, not alphabetically."""
+        order = [name for name, _ in _VERBS]
+        return sorted(self.commands, key=lambda c: order.index(c) if c in order else len(order))
+
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)
@@ -54,13 +59,7 @@ def main() -> None:
 
 
 for _module, _attr in _VERBS:
-    try:
-        _mod = importlib.import_module(f".{_module}", __package__)
-    except ModuleNotFoundError as _exc:  # verb not written yet (development only)
-        if _exc.name != f"{__package__}.{_module}":
-            raise
-        continue
-    main.add_command(getattr(_mod, _attr))
+    main.add_command(getattr(importlib.import_module(f".{_module}", __package__), _attr))
 
 
 if __name__ == "__main__":  # python -m schedule.cli.main
