@@ -655,6 +655,9 @@ def propose_points(result: CheckResult, family: Family) -> tuple[np.ndarray, dic
 
 
 # ----------------------------------------------------------------------------- driver
+GAMMA_OPT_CHUNK = 32  # check points per gamma_opt work chunk, whatever the worker count
+
+
 def _gamma_opt(P: dict, idx: np.ndarray, jobs: int, cluster) -> np.ndarray:
     from .family import gamma_chunk
     from .parallel import run_chunks
@@ -662,7 +665,9 @@ def _gamma_opt(P: dict, idx: np.ndarray, jobs: int, cluster) -> np.ndarray:
     out = np.full(P["A"].shape[0], np.nan)
     if idx.size == 0:
         return out
-    size = max(1, int(np.ceil(idx.size / max(1, 4 * jobs))))
+    # Fixed chunks (not a function of jobs): warm starts inside a chunk then see
+    # the same neighbours whatever the number of workers, so results are identical.
+    size = GAMMA_OPT_CHUNK
     pieces = [idx[a:a + size] for a in range(0, idx.size, size)]
     chunks = [({k: P[k][c] for k in PLANT_KEYS}, 1e-3) for c in pieces]
     for i, (g, _reasons) in run_chunks(gamma_chunk, chunks, jobs=jobs, cluster=cluster):

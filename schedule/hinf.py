@@ -220,6 +220,12 @@ def normalize(plant: GeneralizedPlant) -> Normalized:
     ``Sz = [U(:, nu:)'; U(:, :nu)']``, ``Tu = V S^-1``,
     ``Sw = [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2'``.
     """
+    if isinstance(plant, GeneralizedPlant):  # kept on the plant (by content)
+        return plant.memo("normalized", lambda: _normalize(plant))
+    return _normalize(plant)
+
+
+def _normalize(plant: GeneralizedPlant) -> Normalized:
     nw, nu, nz, ny = plant.nw, plant.nu, plant.nz, plant.ny
     u, s, vt = np.linalg.svd(plant.D12)
     if s[-1] <= 1e-12 * max(s[0], 1e-300):
@@ -291,6 +297,8 @@ def parrott_bound(plant: GeneralizedPlant | Normalized) -> float:
 
 
 def _parrott_of(D11: np.ndarray, dims) -> float:
+    if not D11.any():
+        return 0.0
     d1111, d1112, d1121, _ = _d11_split(D11, dims)
     top = np.hstack([d1111, d1112])
     left = np.vstack([d1111, d1121])
@@ -490,27 +498,28 @@ class _QuickSide:
         self.dd = d[:, None] * d[None, :]
         return H * left[:, None] * right[None, :]
 
-    def solve(self, gamma: float) -> tuple[np.ndarray | None, float, float]:
-        """(X or None, psd measure, axis measure): X >= 0 stabilizing, else None; see
-        :func:`_side_measure` and :func:`schedule.riccati.stable_solution`."""
+    def solve(self, gamma: float) -> tuple[np.ndarray | None, float, float, float]:
+        """(X or None, psd measure, axis measure, largest eigenvalue of X): X >= 0
+        stabilizing, else None; see :func:`_side_measure` and
+        :func:`schedule.riccati.stable_solution`."""
         try:
             sol = np.linalg.solve(self.DtD - (gamma * gamma) * self.E, self.SBt)
         except np.linalg.LinAlgError:
-            return None, np.nan, np.nan
+            return None, np.nan, np.nan, np.nan
         H = self.H0 + self.W @ sol
         if self.first:
             H = self._scale(H)
         hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
         X, ev, code, _value, _margin, axis = stable_solution(H, self.n, hnorm)
         if code:
-            return None, np.nan, (axis if code == 1 and axis > 0 else np.nan)
+            return None, np.nan, (axis if code == 1 and axis > 0 else np.nan), np.nan
         if self.dd is not None:
             X = X / self.dd
             ev = np.linalg.eigvalsh(X)
         meas = _side_measure(ev)
         if ev[0] < -PSD_RTOL * max(1.0, abs(ev[-1])):
-            return None, (meas if meas > 0 else np.nan), np.nan
-        return X, meas, axis
+            return None, (meas if meas > 0 else np.nan), np.nan, np.nan
+        return X, meas, axis, float(ev[-1])
 
 
 class _Quick:
@@ -524,7 +533,9 @@ class _Quick:
     :func:`_side_measure` (X blowing up), ``rho(XY)/gamma^2 - 1``, and the
     imaginary-axis measures of the two Hamiltonians (``axis`` of
     :func:`schedule.riccati.stable_solution`). At an infeasible gamma only the
-    failing condition's measure is given (nan when it has none).
+    failing condition's measure is given (nan when it has none). When
+    ``lmax(X) lmax(Y) < gamma^2 / 4`` the coupling condition holds by the bound
+    ``rho(XY) <= lmax(X) lmax(Y)`` and its measure is not computed (nan).
     """
 
     __slots__ = ("pb", "x", "y")
@@ -538,13 +549,15 @@ class _Quick:
         nan = np.nan
         if not gamma > self.pb * (1 + 1e-12):
             return False, _NANS
-        X, mx, ax = quick_side_solve(self.x, gamma)
+        X, mx, ax, xmax = quick_side_solve(self.x, gamma)
         if X is None:
             return False, (mx, nan, nan, ax, nan)
-        Y, my, ay = quick_side_solve(self.y, gamma)
+        Y, my, ay, ymax = quick_side_solve(self.y, gamma)
         if Y is None:
             return False, (nan, my, nan, nan, ay)
         g2 = gamma * gamma
+        if xmax * ymax < 0.25 * g2:  # rho(XY) <= lmax(X) lmax(Y) (X, Y >= 0): far inside
+            return True, (mx, my, nan, ax, ay)
         mc = float(np.abs(np.linalg.eigvals(X @ Y)).max()) / g2 - 1.0
         if mc >= -COUPLING_RTOL:
             return False, (nan, nan, mc, nan, nan)
@@ -556,6 +569,14 @@ def quick_side_solve(side: _QuickSide, gamma: float):
     return side.solve(gamma)
 
 
+# regula falsi only once the bracket is this narrow in log(gamma) (25 %): on wider brackets
+# the measures are far from linear and bisection is faster
+SECANT_WIDTH = math.log(1.25)
+# extrapolate while stepping only with warm-start steps (at most 50 %): far from the
+# optimum (cold start) the measures are not linear enough to be worth it
+EXTRAPOLATE_STEP = 1.5
+
+
 def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> float:
     """Scalar twin of :func:`_search` (same steps, plain floats): ``test(gamma) ->
     (feasible, measures)``. Returns the feasible end, nan when nothing up to
@@ -564,6 +585,9 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
     hi = math.inf
     m_lo = list(_NANS)
     m_hi = list(_NANS)
+    # unhalved measures of the current and the previous end on each side, for extrapolation
+    r_lo, r_hi, p_lo, p_hi = list(_NANS), list(_NANS), list(_NANS), list(_NANS)
+    x_plo = x_phi = math.nan
     last = 0
     start, step = (2.0 * lo if lo > 0 else 1.0), 4.0
     if hint is not None and math.isfinite(hint) and hint > lo:
@@ -580,12 +604,30 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
             g = start
         elif up:
             g = lo * step
+            xl = math.log(lo) if lo > 0 else -math.inf
+            for m, mp in zip(r_lo if step <= EXTRAPOLATE_STEP else (), p_lo, strict=False):
+                if 0 < m < mp:  # false for nan: extrapolate to the root
+                    xs = xl + (xl - x_plo) * m / (mp - m)
+                    x = xs + 0.1 * (xs - xl) + close
+                    g = math.exp(min(max(x, xl + eps), xl + 2 * math.log(step)))
+                    break
         elif down:
             g = hi / step
+            xh = math.log(hi)
+            best = -math.inf
+            for m, mp in zip(r_hi if step <= EXTRAPOLATE_STEP else (), p_hi, strict=False):
+                if mp < m < 0:  # false for nan
+                    best = max(best, xh - m * (xh - x_phi) / (m - mp))
+            if best > -math.inf:
+                x = best - 0.1 * (xh - best) - close
+                x = min(max(x, xh - 2 * math.log(step)), xh - eps)
+                if lo > 0:
+                    x = max(x, math.log(lo) + eps)
+                g = math.exp(x)
         else:
             xl, xh = math.log(lo), math.log(hi)
             x = xl + 0.5 * (xh - xl)
-            if xh - xl > 2 * eps:
+            if 2 * eps < xh - xl <= SECANT_WIDTH:
                 for pl, ph in zip(m_lo, m_hi, strict=True):
                     if pl > 0 and ph < 0:  # false for nan
                         x = xl + pl / (pl - ph) * (xh - xl) + (-close if last == 1 else close)
@@ -599,11 +641,17 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
         if feas:
             if last == 1:
                 m_lo = [0.5 * v for v in m_lo]
-            hi, m_hi, last = g, list(meas), 1
+            if hi < math.inf:
+                x_phi, p_hi = math.log(hi), r_hi
+            hi, m_hi, r_hi, last = g, list(meas), list(meas), 1
         else:
             if last == -1:
                 m_hi = [0.5 * v for v in m_hi]
-            lo, m_lo, last = max(lo, g), list(meas), -1
+            if g > lo:
+                if lo > 0:
+                    x_plo, p_lo = math.log(lo), r_lo
+                lo, m_lo, r_lo = g, list(meas), list(meas)
+            last = -1
             if g > GAMMA_MAX:
                 return math.nan
     return hi if hi < math.inf else math.nan
@@ -1038,23 +1086,34 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     """Bracket and shrink in log(gamma) many problems in lockstep.
 
     ``test(indices, gammas) -> (feasible, measures)`` with ``measures`` of shape
-    ``(k, N_MEASURES)``: the continuous measures of :class:`_Quick` (a 1-D array is
-    taken as the coupling measure ``rho(XY)/gamma^2 - 1`` alone). Each problem starts at
-    its hint (a neighbour's optimal gamma) with a first step of 3 %, or at
-    ``2 * D11 bound`` (1 when the bound is 0) with a first step of 4; the step
-    is squared after every move (capped at 1e4) until the optimum is
-    bracketed. The bracket then shrinks by regula falsi in log(gamma) with the
-    Illinois modification (Dowell and Jarratt 1971) on the measure of the
-    condition that failed at the lower end, where it is known at both ends, and by
-    bisection elsewhere, until ``hi <= lo (1 + rtol)``. Every accepted point is a
-    feasibility test, so the answer is as safe as plain bisection. Returns the
-    feasible ends, nan where no gamma up to GAMMA_MAX is feasible.
+    ``(k, N_MEASURES)``: the continuous measures of :class:`_Quick` (a 1-D array
+    is taken as the coupling measure ``rho(XY)/gamma^2 - 1`` alone). Each problem
+    starts at its hint (a neighbour's optimal gamma) with a first step of 3 %, or
+    at ``2 * D11 bound`` (1 when the bound is 0) with a first step of 4; the step
+    is squared after every move (capped at 1e4) until the optimum is bracketed.
+    With warm-start steps (at most 50 %), once two tests lie on the same side the
+    measure of the failing condition (or, above the optimum, the first measure to
+    reach zero) is extrapolated linearly to its root and the next test is placed
+    just past it (within twice the current step). The bracket then shrinks by
+    regula falsi in log(gamma) with the Illinois modification (Dowell and Jarratt
+    1971) on the measure of the condition that failed at the lower end, where it
+    is known at both ends and the bracket is narrower than 25 %, and by bisection
+    elsewhere, until ``hi <= lo (1 + rtol)``. Each secant step aims 0.4 rtol past
+    its estimate, at the side of the end that stayed put, so that a good estimate
+    closes the bracket. Every accepted point is a feasibility test, so the answer
+    is as safe as plain bisection. Returns the feasible ends, nan where no gamma
+    up to GAMMA_MAX is feasible.
     """
     K = len(pbs)
     lo = np.asarray(pbs, dtype=float).copy()  # known infeasible (gamma must exceed the bound)
     hi = np.full(K, np.inf)  # known feasible
     m_lo = np.full((K, N_MEASURES), np.nan)
     m_hi = np.full((K, N_MEASURES), np.nan)
+    # unhalved measures of the current and the previous end on each side, for extrapolation
+    r_lo, r_hi = m_lo.copy(), m_hi.copy()
+    p_lo, p_hi = m_lo.copy(), m_hi.copy()
+    x_plo = np.full(K, np.nan)
+    x_phi = np.full(K, np.nan)
     last = np.zeros(K, dtype=int)  # +1: hi moved last, -1: lo moved last
     start = np.where(lo > 0, 2.0 * lo, 1.0)
     step = np.full(K, 4.0)
@@ -1078,6 +1137,30 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
         up = np.isinf(h)
         down = ~up & (l * st < h)  # bracket still wide: keep stepping down
         g = np.where(first, start[active], np.where(up, l * st, h / st))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            # stepping with two tests on the same side: extrapolate the measure to its root
+            xl = np.log(np.where(l > 0, l, 1.0))
+            xh = np.log(np.where(np.isfinite(h), h, 1.0))
+            lst = np.log(st)
+            m, mp = r_lo[active], p_lo[active]
+            usable = (m > 0) & (m < mp)
+            kk = usable.argmax(axis=1)
+            rows = np.arange(active.size)
+            mk, mpk = m[rows, kk], mp[rows, kk]
+            xs = xl + (xl - x_plo[active]) * mk / (mpk - mk)
+            x_up = np.minimum(np.maximum(xs + 0.1 * (xs - xl) + close, xl + eps), xl + 2 * lst)
+            near = st <= EXTRAPOLATE_STEP
+            ext_up = ~first & up & near & usable.any(axis=1)
+            m, mp = r_hi[active], p_hi[active]
+            usable = (mp < m) & (m < 0)
+            roots = np.where(usable, xh[:, None] - m * (xh - x_phi[active])[:, None] / (m - mp),
+                             -np.inf)
+            best = roots.max(axis=1)
+            x_dn = best - 0.1 * (xh - best) - close
+            x_dn = np.minimum(np.maximum(x_dn, xh - 2 * lst), xh - eps)
+            x_dn = np.where(l > 0, np.maximum(x_dn, xl + eps), x_dn)
+            ext_dn = ~first & down & near & usable.any(axis=1)
+        g = np.where(ext_up, np.exp(x_up), np.where(ext_dn, np.exp(x_dn), g))
         shrink = ~first & ~up & ~down
         if shrink.any():
             xl = np.log(np.where(shrink, l, 1.0))
@@ -1087,6 +1170,7 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
                 usable = (pl > 0) & (ph < 0)  # false where either is nan
             kk = usable.argmax(axis=1)
             secant = shrink & usable.any(axis=1) & ((xh - xl) > 2 * eps)
+            secant &= (xh - xl) <= SECANT_WIDTH
             rows = np.arange(active.size)
             pk, hk = pl[rows, kk], ph[rows, kk]
             with np.errstate(invalid="ignore", divide="ignore"):
@@ -1094,8 +1178,8 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
             x = xl + frac * (xh - xl)
             # aim just past the estimate, at the side of the end that stayed put, so
             # that a good estimate closes the bracket in one more step
-            x = x + np.where(last[active] == 1, -close, close)
-            x = np.where(secant, np.clip(x, xl + eps, xh - eps), x)
+            shifted = x + np.where(last[active] == 1, -close, close)
+            x = np.where(secant, np.clip(shifted, xl + eps, xh - eps), x)
             g = np.where(shrink, np.exp(x), g)
         moved = ~first & (up | down)
         step[active[moved]] = np.minimum(st[moved] ** 2, 1e4)
@@ -1115,10 +1199,18 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
         # Illinois: the end that stays put twice in a row has its measures halved
         m_lo[a_f[last[a_f] == 1]] *= 0.5
         m_hi[a_i[last[a_i] == -1]] *= 0.5
+        moved = a_f[np.isfinite(hi[a_f])]
+        x_phi[moved] = np.log(hi[moved])
+        p_hi[moved] = r_hi[moved]
         hi[a_f] = g[feas]
         m_hi[a_f] = meas[feas]
+        r_hi[a_f] = meas[feas]
+        moved = a_i[lo[a_i] > 0]
+        x_plo[moved] = np.log(lo[moved])
+        p_lo[moved] = r_lo[moved]
         lo[a_i] = np.maximum(lo[a_i], g[~feas])
         m_lo[a_i] = meas[~feas]
+        r_lo[a_i] = meas[~feas]
         last[a_f], last[a_i] = 1, -1
         failed[a_i[g[~feas] > GAMMA_MAX]] = True
     out = hi.copy()
@@ -1126,29 +1218,38 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     return out
 
 
-WARM_STRIDES = (64, 8, 1)  # plants solved in each pass (by list position)
+WARM_STRIDES = (64, 16, 4, 1)  # plants solved in each pass (by list position)
+
+
+def _features(Ps: list[Normalized]) -> np.ndarray:
+    """Plant data as points of a Euclidean space (each coordinate scaled by its spread
+    over the plants), to find the plant nearest to another: the operating points are
+    not known here, but plants of nearby points have nearby matrices."""
+    F = np.stack([np.concatenate([P.A.ravel(), P.B1.ravel(), P.B2.ravel(), P.C1.ravel(),
+                                  P.C2.ravel(), P.D11.ravel()]) for P in Ps])
+    spread = F.std(axis=0)
+    keep = spread > 1e-12 * (np.abs(F).max(axis=0) + 1e-300)
+    return F[:, keep] / spread[keep]
 
 
 def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
-    """Lockstep search in passes: every 64th plant from a cold start, then every 8th
-    and then all others, each warm-started from the nearest (by list position)
-    plant already solved. Plants are taken to be listed in envelope order, so list
-    neighbours are envelope neighbours with nearby optimal gammas."""
+    """Lockstep search in passes: every 64th plant from a cold start, then every 16th,
+    every 4th and all others, each warm-started from the optimum of the plant already
+    solved that is nearest in plant data (see :func:`_features`)."""
     K = len(Ps)
     test = _Stacked(Ps)
     out = np.full(K, np.nan)
     done = np.zeros(K, dtype=bool)
+    F = _features(Ps) if K > 1 else np.zeros((K, 0))
     for stride in WARM_STRIDES:
         now = np.flatnonzero(~done & (np.arange(K) % stride == 0))
         if now.size == 0:
             continue
         hints = None
-        solved = np.flatnonzero(done)
+        solved = np.flatnonzero(done & np.isfinite(out))
         if solved.size:
-            pos = np.clip(np.searchsorted(solved, now), 1, max(solved.size - 1, 1))
-            left = solved[np.minimum(pos - 1, solved.size - 1)]
-            right = solved[np.minimum(pos, solved.size - 1)]
-            hints = out[np.where(now - left <= right - now, left, right)]
+            d2 = ((F[now, None, :] - F[None, solved, :]) ** 2).sum(axis=2)
+            hints = out[solved[d2.argmin(axis=1)]]
 
         def sub_test(act, g, now=now):
             return test(now[act], g)
@@ -1188,10 +1289,9 @@ def synthesize_many(
     step stacks the Hamiltonians of the active plants into ``(K, 2n, 2n)``
     arrays and calls one batched eigen-decomposition, so the per-call Python
     overhead is paid once per step, not once per plant. The stable invariant
-    subspace comes from the eigenvectors. Plants are taken to be listed in
-    envelope order: every 64th is solved first, then every 8th and then the
-    others, each starting from the optimal gamma of the nearest solved one (warm
-    start). Every gamma found is
+    subspace comes from the eigenvectors. Every 64th plant is solved first, then
+    every 16th, every 4th and the others, each starting from the optimal gamma of
+    the solved plant with the nearest matrices (warm start). Every gamma found is
     re-checked with the ordered-Schur solver of :func:`feasibility`, and the
     scalar :func:`optimal_gamma` is used where the two disagree.
     """

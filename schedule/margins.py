@@ -581,11 +581,22 @@ def classical_margins(G, K, at: str = "input", omega=None,
             h = R(np.asarray(x, float)[:, None], index=q)[:, 0]
             return 1.0 / h[np.arange(len(q)), i, i] - 1.0
 
+    # Gain crossovers may lie below the lowest grid frequency (|L(0)| just above
+    # 1), so their scan starts at w = 0; phase crossings at w = 0 are handled
+    # with the ends below (Im L(0) = 0 for every real loop).
+    with np.errstate(all="ignore"):
+        L0 = 1.0 / R(np.zeros(1))[:, 0][:, np.arange(m), np.arange(m)] - 1.0  # (N, m)
+    at_zero = np.concatenate([np.ones((N, 1), bool), ~(w > 0)], axis=1)  # w = 0 (or unset)
+    w_gain = np.where(at_zero, 0.0, np.concatenate([np.zeros((N, 1)), w], axis=1))
+    L_gain = np.where(at_zero[:, :, None], L0[:, None, :],
+                      np.concatenate([L0[:, None, :], L], axis=1))
+    fin_gain = np.isfinite(L_gain)
     # phase crossovers (Im L = 0, Re L < 0) and gain crossovers (|L| = 1), all at once
-    for what, f in (("phase", lambda z: z.imag), ("gain", lambda z: np.abs(z) - 1.0)):
-        q, j, i = _brackets(f(L), fin)
+    for what, f, ww, LL, ff in (("phase", lambda z: z.imag, w, L, fin),
+                                ("gain", lambda z: np.abs(z) - 1.0, w_gain, L_gain, fin_gain)):
+        q, j, i = _brackets(f(LL), ff)
         roots = _bisect_many(lambda x, q=q, i=i, f=f: f(Lat(q, i, x)),
-                             w[q, j], w[q, j + 1]) if q.size else np.zeros(0)
+                             ww[q, j], ww[q, j + 1]) if q.size else np.zeros(0)
         Lx = Lat(q, i, roots) if q.size else np.zeros(0, complex)
         for qq, ii, x, z in zip(q, i, roots, Lx, strict=True):
             if not stable[qq]:

@@ -8,7 +8,8 @@ finish (in completion order, which may differ from submission order).
 Backends
 --------
 - ``jobs=1`` and no cluster: a plain loop in the calling process.
-- ``jobs=N > 1``: joblib with the loky process backend (N worker processes).
+- ``jobs=N > 1``: N local worker processes (loky's reusable process pool, the one
+  joblib uses), one BLAS thread each; :func:`prestart` starts them early.
 - ``cluster=ADDRESS``: a dask.distributed scheduler (``Client(ADDRESS)``); the
   optional ``cluster`` extra must be installed. A ``distributed.Client`` or
   ``LocalCluster`` object may be given instead of an address.
@@ -16,6 +17,7 @@ Backends
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
@@ -60,15 +62,72 @@ def _check_jobs(jobs) -> int:
     return value
 
 
-def _indexed(func, i, args):
+def _indexed(func, i, args, caller_pid: int = -1):
+    if os.getpid() != caller_pid:  # a worker process (not threads of the caller's process)
+        _limit_blas_threads()
     return i, func(*args)
 
 
-def _run_joblib(func, chunks, jobs) -> Iterator[tuple[int, Any]]:
-    from joblib import Parallel, delayed
+_BLAS_LIMITED = False
+_WORKER_ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+_IDLE_TIMEOUT = 60  # seconds an idle local worker lives before it exits
 
-    parallel = Parallel(n_jobs=jobs, backend="loky", return_as="generator_unordered")
-    yield from parallel(delayed(_indexed)(func, i, args) for i, args in enumerate(chunks))
+
+def _limit_blas_threads() -> None:
+    """One BLAS/OpenMP thread per worker process (two processes must not fight over two
+    cores with their thread pools); done once per worker process, never in the caller's
+    own process (``jobs=1`` and in-process dask workers keep the user's setting)."""
+    global _BLAS_LIMITED
+    if _BLAS_LIMITED:
+        return
+    _BLAS_LIMITED = True
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
+        return
+    threadpool_limits(1)
+
+
+def _executor(jobs: int):
+    from joblib.externals.loky import get_reusable_executor
+
+    return get_reusable_executor(max_workers=jobs, timeout=_IDLE_TIMEOUT, env=_WORKER_ENV)
+
+
+def _noop() -> None:
+    _limit_blas_threads()
+
+
+def prestart(jobs: int = 1, cluster: Any = None) -> None:
+    """Start the local worker processes now, in the background, so their start-up
+    (interpreter, numpy, scipy, this package) overlaps with work the caller still does
+    in its own process (e.g. building the plants). No effect for ``jobs=1`` or a cluster."""
+    jobs = _check_jobs(jobs)
+    if cluster is not None or jobs == 1:
+        return
+    executor = _executor(jobs)
+    for _ in range(jobs):
+        executor.submit(_noop)
+
+
+def _run_joblib(func, chunks, jobs) -> Iterator[tuple[int, Any]]:
+    """Local worker processes (loky's reusable process pool, as used by joblib).
+
+    Each chunk is one task; the pool is reused between calls (the gamma and the
+    controller phase of a family run share the workers) and the workers limit BLAS
+    to one thread.
+    """
+    from concurrent.futures import as_completed
+
+    executor = _executor(jobs)
+    pid = os.getpid()
+    futures = [executor.submit(_indexed, func, i, args, pid) for i, args in enumerate(chunks)]
+    try:
+        for future in as_completed(futures):
+            yield future.result()
+    finally:
+        for future in futures:
+            future.cancel()
 
 
 def _run_dask(func, chunks, cluster) -> Iterator[tuple[int, Any]]:
@@ -89,7 +148,8 @@ def _run_dask(func, chunks, cluster) -> Iterator[tuple[int, Any]]:
                              ) from None
         own_client = True
     try:
-        futures = [client.submit(_indexed, func, i, args, pure=False)
+        pid = os.getpid()
+        futures = [client.submit(_indexed, func, i, args, pid, pure=False)
                    for i, args in enumerate(chunks)]
         for future in as_completed(futures):
             yield future.result()

@@ -21,6 +21,8 @@ Doyle 1988; Zhou, Doyle and Glover 1996, section 14.1 / 17.1):
 
 from __future__ import annotations
 
+import hashlib
+from collections.abc import Callable
 from dataclasses import dataclass, fields
 
 import numpy as np
@@ -184,6 +186,33 @@ class GeneralizedPlant:
             raise PlantError(f"unknown plant arrays {', '.join(extra)}; use only {PLANT_KEYS}")
         return cls(**{k: d[k] for k in PLANT_KEYS})
 
+    # ----------------------------------------------------------------- memo
+    def _digest(self) -> bytes:
+        """Content digest of the nine matrices (BLAKE2b over shapes and bytes)."""
+        h = hashlib.blake2b(digest_size=16)
+        for key in PLANT_KEYS:
+            a = getattr(self, key)
+            h.update(repr(a.shape).encode())
+            h.update(np.ascontiguousarray(a, dtype=np.float64).tobytes())
+        return h.digest()
+
+    def memo(self, name: str, build: Callable[[], object]) -> object:
+        """``build()``, computed once per content of the plant and kept on it.
+
+        The value is keyed by a digest of the matrices, so it is recomputed if an
+        array was changed in place after it was stored. Used for work done by several
+        stages on the same plant (the condition checks, the normalization).
+        """
+        digest = self._digest()
+        cache = self.__dict__.get("_memo")
+        if cache is None or cache[0] != digest:
+            cache = (digest, {})
+            object.__setattr__(self, "_memo", cache)
+        store = cache[1]
+        if name not in store:
+            store[name] = build()
+        return store[name]
+
     # ------------------------------------------------------------ conditions
     def check_conditions(self) -> None:
         """Check the existence assumptions (A1)-(A4) of the Riccati route.
@@ -202,7 +231,12 @@ class GeneralizedPlant:
         ``[A - sI, B2; C1, D12]`` loses column rank exactly at the unobservable
         eigenvalues of ``(U' C1, A - B2 D12^+ C1)`` where the columns of U span
         the orthogonal complement of range(D12); (A4) is the dual statement.
+        A plant that passed is remembered (by content, see :meth:`memo`), so a second
+        call costs a digest of the matrices.
         """
+        self.memo("conditions", self._check_conditions)
+
+    def _check_conditions(self) -> bool:
         A, B1, B2, C1, C2 = self.A, self.B1, self.B2, self.C1, self.C2
         scale = max(1.0, float(np.linalg.norm(A, 2)))
         eigs = np.linalg.eigvals(A)
@@ -251,6 +285,7 @@ class GeneralizedPlant:
                 "measurement-noise weight or move the pure integrator/oscillator slightly into "
                 "the left half-plane (e.g. s -> s + 1e-4)"
             )
+        return True
 
 
 # ---------------------------------------------------------------- helpers

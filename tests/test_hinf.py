@@ -571,3 +571,146 @@ def test_stiff_plant_with_slow_and_fast_modes():
     assert abs(optimal_gamma(plant) / g_star - 1) < 2e-4
     K = central_controller(plant, 1.05 * g_star)
     assert_meets(plant, K.as_tuple(), 1.05 * g_star)
+
+
+# ------------------------------------------------------------------ quick tests and searches
+
+
+def _scalar_c(gamma):
+    return 1.0 - gamma**-2
+
+
+@pytest.mark.parametrize("a", [1.0, -3.0])
+def test_quick_measures_match_scalar_closed_form(a):
+    # Hand algebra (see test_scalar_problem_closed_form): the X Hamiltonian is
+    # [a, -c; -1, -a] with eigenvalues +-sqrt(a^2 + c), c = 1 - gamma^-2, and
+    # X = (a + sqrt(a^2 + c)) / c. So the imaginary-axis measure (-min Re(lambda)^2 above
+    # the collision, +(half gap)^2 below) is -(a^2 + c) on both sides, the blow-up
+    # measure is -1/X, and the coupling measure is X^2/gamma^2 - 1 (Y = X).
+    from schedule.hinf import (
+        M_COUPLING,
+        M_XAXIS,
+        M_XPSD,
+        M_YAXIS,
+        M_YPSD,
+        _Quick,
+        _Stacked,
+        normalize,
+    )
+
+    P = normalize(scalar_plant(a))
+    quick, stacked = _Quick(P), _Stacked([P])
+    g_fi = 1.0 if a >= 0 else 1.0 / np.sqrt(1.0 + a * a)
+    g_star = a + np.sqrt(a * a + 2.0)
+    for gamma in (0.9 * g_fi, 0.99 * g_fi, 1.01 * g_star, 1.5 * g_star, 4 * g_star):
+        c = _scalar_c(gamma)
+        feas, m = quick(gamma)
+        bf, bm = stacked(np.array([0]), np.array([gamma]))
+        assert feas == bool(bf[0]) == (gamma > g_star)
+        if gamma > g_star:
+            X = (a + np.sqrt(a * a + c)) / c
+            expect = {M_XPSD: -1 / X, M_YPSD: -1 / X, M_COUPLING: X * X / gamma**2 - 1,
+                      M_XAXIS: -(a * a + c), M_YAXIS: -(a * a + c)}
+        elif a < 0:  # below the full-information bound: eigenvalues on the axis
+            expect = {M_XAXIS: -(a * a + c)}
+        else:  # c < 0: X exists but is negative, -1/X > 0
+            expect = {M_XPSD: -c / (a + np.sqrt(a * a + c))}
+        for j, row in enumerate((np.asarray(m), bm[0])):
+            for k in range(len(row)):
+                if j == 0 and k == M_COUPLING and np.isnan(row[k]) and k in expect:
+                    # the quick test skips rho(XY) when lmax(X) lmax(Y) < gamma^2 / 4
+                    assert expect[k] + 1 < 0.25
+                elif k in expect:
+                    assert abs(row[k] - expect[k]) <= 1e-8 * max(1.0, abs(expect[k])), (k, row)
+                else:
+                    assert np.isnan(row[k]), (k, row)
+
+
+def _fake_test(g_star, kind, shape):
+    """Feasible iff gamma > g_star, with a measure of the given shape in column `kind`."""
+    from schedule.hinf import N_MEASURES
+
+    def meas(g):
+        m = np.full(N_MEASURES, np.nan)
+        m[kind] = {"log": np.log(g_star / g), "square": g_star**2 - g**2,
+                   "none": np.nan}[shape]
+        return g > g_star, m
+
+    return meas
+
+
+@pytest.mark.parametrize("shape", ["log", "square", "none"])
+@pytest.mark.parametrize("hint", [None, 0.97, 1.2])
+def test_scalar_and_lockstep_searches_find_analytic_root(shape, hint):
+    # Reference: the root g_star of the made-up test (known exactly). The scalar search and
+    # the lockstep search implement the same steps: both must bracket g_star to rtol,
+    # end on the feasible side, and agree with each other to rounding.
+    from schedule.hinf import M_YAXIS, _search, _search_one
+
+    rtol = 1e-4
+    for g_star, pb in ((2.5, 0.0), (0.013, 0.001), (3e4, 10.0)):
+        f = _fake_test(g_star, M_YAXIS, shape)
+        h = None if hint is None else hint * g_star
+        calls = []
+
+        def counted(g, f=f, calls=calls):
+            calls.append(g)
+            return f(g)
+
+        one = _search_one(counted, pb, rtol, h)
+        assert g_star < one <= g_star * (1 + rtol) ** 2
+        many = _search(lambda _i, gs, f=f: tuple(map(np.array, zip(*[f(g) for g in gs],
+                                                                     strict=True))),
+                       np.array([pb, pb]), rtol, None if h is None else np.array([h, h]))
+        np.testing.assert_allclose(many, one, rtol=1e-12)
+        if shape != "none":
+            # regula falsi on a smooth measure: once bracketed, a few tests instead of the
+            # >= 8 halvings of bisection (log2(0.03 / 1e-4) = 8.2 even from a 3 % bracket)
+            seen = [bool(g > g_star) for g in calls]
+            i = next(i for i in range(len(seen)) if len(set(seen[: i + 1])) == 2)
+            lo = max([pb] + [g for g in calls[: i + 1] if g <= g_star])
+            hi = min(g for g in calls[: i + 1] if g > g_star)
+            halvings = np.log2(np.log(hi / lo) / np.log1p(rtol))
+            # from a warm start (bracket of a few %) a handful; from a cold start (wide
+            # bracket, halved until it is 25 % wide) never more than plain bisection
+            limit = 5 if hint is not None else np.ceil(halvings)
+            assert len(calls) - (i + 1) <= limit, calls
+
+
+@pytest.mark.filterwarnings("ignore:Solution may be inaccurate")
+@pytest.mark.parametrize("seed", [21, 22])
+def test_quick_path_equals_careful_path_and_lmi(seed):
+    # The quick feasibility test (no residual, gamma-independent work done once) drives
+    # optimal_gamma; the careful test (full checks at every step) must give the same
+    # optimum, and both must match the LMI reference (Gahinet and Apkarian 1994).
+    from schedule import hinf
+
+    rng = np.random.default_rng(seed)
+    p = random_plant(rng, 4, 3, 2, 3, 2)
+    ref, status = lmi_optimal_gamma(p)
+    P = hinf.normalize(p)
+
+    def careful(_idx, gs):
+        out = [hinf._solve_all(P, float(g), gains=False) for g in gs]
+        return np.array([not r[-1] for r in out]), np.array(
+            [r[-2] / g**2 - 1 for r, g in zip(out, gs, strict=True)])
+
+    g_careful = float(hinf._search(careful, np.array([P.d11_bound]), 1e-5)[0])
+    g_quick = optimal_gamma(p, rtol=1e-5)
+    assert abs(g_quick / g_careful - 1) < 2e-5
+    if status == cp.OPTIMAL:
+        assert abs(g_quick / ref - 1) < 1e-3
+
+
+def test_checked_controller_is_the_central_controller():
+    # Same computation without the condition checks: identical bits (reference: the
+    # checked path, itself tested against frequency sweeps above).
+    from schedule.hinf import central_controller_checked
+
+    rng = np.random.default_rng(41)
+    p = random_plant(rng, 4, 3, 2, 3, 2)
+    g = 1.2 * optimal_gamma(p)
+    a, b = central_controller(p, g), central_controller_checked(p, g)
+    for x, y in zip(a.as_tuple(), b.as_tuple(), strict=True):
+        np.testing.assert_array_equal(x, y)
+    assert_meets(p, b.as_tuple(), g)

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy import signal
 
@@ -199,6 +199,7 @@ def test_unstable_loop_has_zero_margin_and_bad_shapes_raise():
 
 @settings(max_examples=20, deadline=None)
 @given(st.floats(1.2, 6.0), st.lists(st.floats(0.3, 4.0), min_size=2, max_size=3))
+@example(k=2.0, poles=[1.0, 1.99999])  # |L(0)| just above 1: crossover below the grid
 def test_classical_margins_match_brentq_on_scipy_response(k, poles):
     """Gain and phase crossovers of L = k / prod(s + p_i) against scipy.optimize.brentq run on
     scipy.signal.freqresp values (the classical definitions: PM = 180 - |angle L| where

@@ -67,3 +67,23 @@ def test_unreachable_cluster(small_spec):
     pytest.importorskip("distributed")
     with pytest.raises(InputError, match="dask scheduler"):
         run_design(small_spec, None, cluster="tcp://127.0.0.1:9", fit=False)
+
+
+def _blas_threads() -> list[int]:
+    from threadpoolctl import threadpool_info
+
+    return [int(d["num_threads"]) for d in threadpool_info() if d.get("user_api") == "blas"]
+
+
+def test_workers_use_one_blas_thread_and_prestart_is_harmless():
+    # Reference: threadpoolctl's own report of the BLAS pools inside each worker process.
+    from schedule.parallel import prestart
+
+    prestart(1)  # no-op in this process
+    prestart(2)
+    got = dict(run_chunks(_blas_threads, [()] * 4, jobs=2))
+    assert len(got) == 4
+    for threads in got.values():
+        assert threads and all(t == 1 for t in threads), threads
+    with pytest.raises(InputError, match="jobs"):
+        prestart(0)

@@ -206,3 +206,15 @@ def test_integrator_moved_into_left_half_plane_passes():
         A=np.array([[-1e-4]]),
     )
     p.check_conditions()
+
+
+def test_from_validated_skips_checks_but_holds_the_same_arrays():
+    # The trusted constructor must give a plant equal to the checked one (reference: the
+    # normal constructor) and must not copy (it is meant for slices of validated stacks).
+    d = {k: np.asarray(v, dtype=np.float64) for k, v in _good(3).items()}
+    p, q = GeneralizedPlant(**d), GeneralizedPlant.from_validated(d)
+    for k in PLANT_KEYS:
+        np.testing.assert_array_equal(getattr(p, k), getattr(q, k))
+        assert getattr(q, k) is d[k]
+    assert (q.n, q.nw, q.nu, q.nz, q.ny) == (p.n, p.nw, p.nu, p.nz, p.ny)
+    q.check_conditions()

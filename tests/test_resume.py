@@ -14,6 +14,7 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import h5py
 import numpy as np
@@ -24,6 +25,10 @@ from schedule.family import partial_path
 from schedule.store import read_partial
 
 CMD = [sys.executable, "-c", "from schedule.cli.main import main; main()"]
+# the model file (tests/test_family.py) imports tests/_helpers.py: the child needs tests/
+# on its path, else the design fails at once and nothing can be killed
+ENV = {**os.environ, "PYTHONPATH": os.pathsep.join(
+    [str(Path(__file__).resolve().parent)] + [p for p in [os.environ.get("PYTHONPATH")] if p])}
 
 
 def _contents(path) -> dict:
@@ -44,15 +49,19 @@ def _contents(path) -> dict:
 
 @pytest.mark.skipif(not hasattr(signal, "SIGKILL"), reason="needs POSIX signals")
 def test_sigkill_then_resume(tmp_path):
-    stiff = [1.0 + 0.25 * i for i in range(13)]
+    # steps of 1/16 and 1/4 are exact in binary, so the grid holds the two points where
+    # msd_flaky fails (stiffness 2 and 3); the run must last long enough to be killed
+    stiff = [1.0 + i / 16 for i in range(49)]
     damp = [0.5 + 0.25 * i for i in range(7)]
+    n_points, chunk = len(stiff) * len(damp), 8
+    n_chunks = -(-n_points // chunk)
     design = write_design(tmp_path, "msd_flaky", stiffness=stiff, damping=damp)
-    args = ["design", str(design), "--no-fit", "--quiet", "--json", "--chunk-size", "2"]
+    args = ["design", str(design), "--no-fit", "--quiet", "--json", "--chunk-size", str(chunk)]
     out = tmp_path / "family.h5"
     partial = partial_path(out)
 
     proc = subprocess.Popen(CMD + args + ["--out", str(out)], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE)
+                            stderr=subprocess.PIPE, env=ENV)
     killed = False
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline and proc.poll() is None:
@@ -68,13 +77,13 @@ def test_sigkill_then_resume(tmp_path):
     assert proc.returncode == -signal.SIGKILL
     assert not out.exists()  # never a half-written family file under the output name
     done_before = int(read_partial(partial)[0]["gamma/done"].sum())
-    assert 3 <= done_before < 46
+    assert 3 <= done_before < n_chunks
 
     res = subprocess.run(CMD + args + ["--out", str(out), "--resume"], capture_output=True,
-                         text=True, timeout=300)
+                         text=True, timeout=300, env=ENV)
     assert res.returncode == 0, res.stderr
     info = json.loads(res.stdout)
-    n_valid = 91 - 2  # two points fail in the model (see test_family.msd_flaky)
+    n_valid = n_points - 2  # two points fail in the model (see test_family.msd_flaky)
     assert info["resumed"]["gamma_opt"] > 0
     assert info["computed"]["gamma_opt"] + info["resumed"]["gamma_opt"] == n_valid
     assert info["computed"]["gamma_opt"] < n_valid
@@ -82,7 +91,7 @@ def test_sigkill_then_resume(tmp_path):
 
     ref = tmp_path / "reference.h5"
     res = subprocess.run(CMD + args + ["--out", str(ref)], capture_output=True, text=True,
-                         timeout=300)
+                         timeout=300, env=ENV)
     assert res.returncode == 0, res.stderr
     a, b = _contents(out), _contents(ref)
     assert a.keys() == b.keys()

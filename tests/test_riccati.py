@@ -98,3 +98,37 @@ def test_hamiltonian_and_residual_helpers():
     # Hamiltonian structure: J H is symmetric (definition of a Hamiltonian matrix).
     np.testing.assert_allclose(J @ H, (J @ H).T)
     assert relative_residual(A, R, Q, np.zeros((2, 2))) > 0.1
+
+
+@settings(max_examples=20, deadline=None)
+@given(seed=st.integers(0, 2**31 - 1), n=st.integers(1, 10))
+def test_ordered_schur_matches_scipy_sorted_schur(seed, n):
+    # Reference: scipy.linalg.schur(sort="lhp") (LAPACK dgees with its sort callback). Our
+    # direct dgees + dtrsen does the same LAPACK work, so the factors agree to rounding and
+    # the eigenvalues of negative real part lead.
+    from schedule.riccati import ordered_schur
+
+    rng = np.random.default_rng(seed)
+    H = rng.standard_normal((2 * n, 2 * n))
+    T, Z, wr, wi, k = ordered_schur(H)
+    Tr, Zr, kr = sla.schur(H, output="real", sort="lhp")
+    assert k == kr
+    np.testing.assert_allclose(Z @ T @ Z.T, H, atol=1e-10 * np.abs(H).sum())
+    np.testing.assert_allclose(np.abs(np.diag(T)), np.abs(np.diag(Tr)), rtol=1e-8, atol=1e-10)
+    assert np.all(wr[:k] < 0) and np.all(wr[k:] >= 0)
+    # the leading k Schur vectors span the same (stable) invariant subspace
+    P1, P2 = Z[:, :k] @ Z[:, :k].T, Zr[:, :kr] @ Zr[:, :kr].T
+    np.testing.assert_allclose(P1, P2, atol=1e-7)
+
+
+def test_axis_measure_of_scalar_hamiltonian():
+    # H = [a, r; -q, -a] has eigenvalues +-sqrt(a^2 - r q) (hand algebra). The signed
+    # measure is -(a^2 - r q) on both sides of the collision at the origin.
+    from schedule.riccati import hamiltonian, stable_solution
+
+    for a, r, q in [(0.5, -1.0, 1.0), (0.1, 1.0, 0.5), (0.0, 1.0, 2.0), (2.0, 1.0, 3.0)]:
+        H = hamiltonian(np.array([[a]]), np.array([[r]]), np.array([[q]]))
+        X, _ev, code, _v, _m, axis = stable_solution(H, 1, float(np.abs(H).sum(axis=0).max()))
+        disc = a * a - r * q
+        assert abs(axis + disc) <= 1e-12 * max(1.0, abs(disc))
+        assert (code == 0) == (disc > 0) and (X is None) == (disc < 0)
