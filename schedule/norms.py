@@ -679,7 +679,7 @@ def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
     M = idx.size
     eye = np.eye(n)
 
-    def sigma(sel: np.ndarray, w: np.ndarray) -> np.ndarray:
+    def sigma_max_of_selected(sel: np.ndarray, w: np.ndarray) -> np.ndarray:
         """sigma_max(G_sel(j w)) by direct stacked solves, sel and w of equal length."""
         Ms = 1j * w[:, None, None] * eye - A[sel]
         return _sv_max_stack(C[sel] @ np.linalg.solve(Ms, B[sel]) + D[sel])
@@ -699,7 +699,7 @@ def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
         pass
     k = cand.shape[1]
     sel = np.repeat(np.arange(M), k)
-    sig = sigma(sel, cand.ravel()).reshape(M, k)
+    sig = sigma_max_of_selected(sel, cand.ravel()).reshape(M, k)
     best = np.argmax(sig, axis=1)
     lb = sig[np.arange(M), best]
     pk = cand[np.arange(M), best]
@@ -739,7 +739,7 @@ def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
         done = np.ones(act.size, dtype=bool)
         if rows.size:
             sig = np.full(mid.shape, -np.inf)
-            sig[rows, cols] = sigma(act[rows], mid[rows, cols])
+            sig[rows, cols] = sigma_max_of_selected(act[rows], mid[rows, cols])
             j = np.argmax(sig, axis=1)
             s = sig[np.arange(act.size), j]
             up = s > gamma

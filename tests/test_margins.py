@@ -24,7 +24,7 @@ from schedule.margins import (
 NEG1 = (np.zeros((0, 0)), np.zeros((0, 1)), np.zeros((1, 0)), np.array([[-1.0]]))
 
 
-def ss(num, den):
+def realization(num, den):
     A, B, C, D = signal.tf2ss(num, den)
     return A, B, C, D
 
@@ -39,7 +39,7 @@ def test_disk_margin_unstable_first_order_closed_form():
     margin is exactly 0.5 (closed loop s - 1 + 2f is stable iff f > 1/2) and the
     phase margin 60 deg (|L| = 1 at w = sqrt 3, angle -120 deg).
     """
-    G = ss([2.0], [1.0, -1.0])
+    G = realization([2.0], [1.0, -1.0])
     dm = disk_margins(G, NEG1)
     assert dm.loop_alpha[0, 0] == pytest.approx(2.0 / 3.0, rel=1e-9)
     low, high = disk_gain_range(dm.loop_alpha[0, 0])
@@ -60,7 +60,7 @@ def test_integrator_loop(k):
     infinite, PM = 90 deg at w = k (textbook, e.g. Franklin, Powell and
     Emami-Naeini, from memory).
     """
-    G = ss([k], [1.0, 0.0])
+    G = realization([k], [1.0, 0.0])
     dm = disk_margins(G, NEG1)
     assert dm.loop_alpha[0, 0] == pytest.approx(2.0, rel=1e-9)
     assert dm.loop_phase_deg[0, 0] == pytest.approx(90.0)
@@ -78,7 +78,7 @@ def test_third_order_lag_classical_margins(k):
     So GM = 8/k (20 log10). |L| = 1 at w = sqrt(k^(2/3) - 1), PM = 180 - 3 atan(w) deg.
     (Closed forms derived here; the Routh test gives instability at k = 8.)
     """
-    G = ss([k], np.poly([-1.0, -1.0, -1.0]))
+    G = realization([k], np.poly([-1.0, -1.0, -1.0]))
     cm = classical_margins(G, NEG1)
     assert cm.gain_db[0, 0] == pytest.approx(20 * np.log10(8.0 / k), abs=1e-8)
     assert cm.gain_frequency[0, 0] == pytest.approx(np.sqrt(3.0), rel=1e-8)
@@ -112,7 +112,7 @@ def test_disk_margin_matches_scipy_dense_response(poles, k, zero):
     cl = np.polyadd(den, num)
     if np.any(np.roots(cl).real >= -1e-6):
         return  # unstable closed loop: no margin to compare
-    G = ss(num, den)
+    G = realization(num, den)
     dm = disk_margins(G, NEG1)
     w = np.concatenate([[0.0], np.logspace(-4, 4, 40000)])
     # S - 1/2 = (den - (den + num)/2) / (den + num) = (den - num) / (2 (den + num))
@@ -188,11 +188,11 @@ def test_disk_margin_guarantees_stability_for_gains_in_range():
 
 
 def test_unstable_loop_has_zero_margin_and_bad_shapes_raise():
-    G = ss([1.0], [1.0, -1.0])  # L = 1/(s - 1): closed loop s - 1 + 1 = s, not stable
+    G = realization([1.0], [1.0, -1.0])  # L = 1/(s - 1): closed loop s - 1 + 1 = s, not stable
     dm = disk_margins(G, NEG1)
     assert dm.loop_alpha[0, 0] == 0.0 and not dm.stable[0]
     with pytest.raises(PlantError, match="controller D"):
-        disk_margins(ss([1.0], [1.0, 1.0]), (np.zeros((0, 0)), np.zeros((0, 2)),
+        disk_margins(realization([1.0], [1.0, 1.0]), (np.zeros((0, 0)), np.zeros((0, 2)),
                                                np.zeros((1, 0)), np.zeros((1, 2))))
     assert disk_phase_margin(2.0) == pytest.approx(90.0)
 
@@ -209,7 +209,7 @@ def test_classical_margins_match_brentq_on_scipy_response(k, poles):
     den = np.poly(-np.asarray(poles))
     if np.any(np.roots(np.polyadd(den, [k])).real >= -1e-6):
         return
-    G = ss([k], den)
+    G = realization([k], den)
 
     def L(w):
         return signal.freqresp(([k], den), [w])[1][0]
