@@ -192,6 +192,24 @@ def _chunks(N: int, size: int) -> list[np.ndarray]:
     return [np.arange(s, min(s + size, N)) for s in range(0, N, size)]
 
 
+def _pending(chunks: list[np.ndarray], done, mask: np.ndarray, plants: Sequence, arg):
+    """Work items ``(stacked plants, arg)`` for the chunks not done yet, and their numbers.
+
+    Only the points of ``mask`` are sent; a chunk with none left is marked done.
+    """
+    tasks, numbers = [], []
+    for c, idx in enumerate(chunks):
+        if done[c]:
+            continue
+        idx = idx[mask[idx]]
+        if idx.size == 0:
+            done[c] = 1
+            continue
+        tasks.append((_stack_plants(plants, idx), arg))
+        numbers.append(c)
+    return tasks, numbers
+
+
 def _stack_plants(plants: Sequence, idx: Sequence[int]) -> dict[str, np.ndarray]:
     return {k: np.stack([np.asarray(getattr(plants[i], k)) for i in idx]) for k in PLANT_KEYS}
 
@@ -374,17 +392,9 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
     writer = _PartialWriter(partial, state)
 
     # ---- phase 1: optimal gamma per point
-    todo = [c for c, idx in enumerate(chunks) if not state.gamma_done[c]]
     run.resumed_gamma = int(sum(valid[chunks[c]].sum() for c in range(len(chunks))
                                 if state.gamma_done[c]))
-    tasks, task_chunks = [], []
-    for c in todo:
-        idx = chunks[c][valid[chunks[c]]]
-        if idx.size == 0:
-            state.gamma_done[c] = 1
-            continue
-        tasks.append((_stack_plants(plants, idx), rtol))
-        task_chunks.append(c)
+    tasks, task_chunks = _pending(chunks, state.gamma_done, valid, plants, rtol)
     total, done = int(valid.sum()), run.resumed_gamma
     if progress:
         progress("gamma", done, total)
@@ -432,16 +442,7 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
         state.ctrl_gamma = gamma
     run.resumed_controllers = int(sum(status_ok[chunks[c]].sum() for c in range(len(chunks))
                                       if state.ctrl_done[c]))
-    tasks, task_chunks = [], []
-    for c in range(len(chunks)):
-        if state.ctrl_done[c]:
-            continue
-        idx = chunks[c][status_ok[chunks[c]]]
-        if idx.size == 0:
-            state.ctrl_done[c] = 1
-            continue
-        tasks.append((_stack_plants(plants, idx), gamma))
-        task_chunks.append(c)
+    tasks, task_chunks = _pending(chunks, state.ctrl_done, status_ok, plants, gamma)
     total, done = int(status_ok.sum()), run.resumed_controllers
     if progress:
         progress("controllers", done, total)
