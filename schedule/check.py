@@ -48,7 +48,7 @@ from .margins import (
     disk_margins,
     sigma_max,
 )
-from .types import Family
+from .types import Family, point_text
 
 __all__ = [
     "CheckSettings",
@@ -761,7 +761,7 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
     all_pts, all_kinds, all_src, Ps, Ks = [pts[ok]], [kinds[ok]], [src[ok]], [
         {k: P[k][ok] for k in PLANT_KEYS}], [{k: K[k][ok] for k in K}]
     for i in np.flatnonzero(~ok):
-        notes.append(f"check point ({_ptxt(names, pts[i])}) skipped: {reasons[i]}")
+        notes.append(f"check point ({point_text(names, pts[i])}) skipped: {reasons[i]}")
     rows = np.flatnonzero(family.ok)
     if s.grid and rows.size:
         all_pts.append(np.asarray(family.points, float)[rows])
@@ -858,14 +858,10 @@ def scheduled_loop(family: Family, spec=None, controller=None):
         pts = np.asarray(p, dtype=float).reshape(1, -1)
         P, _src, ok, reasons = _plants_at(family, sc, spec, pts, names)
         if not ok[0]:
-            raise InputError(f"the model failed at ({_ptxt(names, pts[0])}): {reasons[0]}")
+            raise InputError(f"the model failed at ({point_text(names, pts[0])}): {reasons[0]}")
         return closed_loop_many(P, sc.evaluate(pts))[0][0]
 
     return state_matrix
-
-
-def _ptxt(names, row) -> str:
-    return ", ".join(f"{n}={x:g}" for n, x in zip(names, row, strict=True))
 
 
 def default_jobs() -> int:

@@ -40,7 +40,7 @@ import numpy as np
 from .errors import InputError, ScheduleError
 from .parallel import prestart, run_chunks
 from .store import CONTROLLER_KEYS, PLANT_KEYS, read_partial, write_family, write_partial
-from .types import Family, SchedulingVariable
+from .types import Family, SchedulingVariable, point_text
 
 __all__ = ["design_family", "run_design", "extend_family", "synthesize_family",
            "common_gamma", "partial_path", "DesignRun", "CHUNK_SIZE"]
@@ -367,7 +367,7 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
     for i in np.flatnonzero(valid):
         for k in PLANT_KEYS:
             if np.shape(getattr(plants[i], k)) != shapes[k]:
-                where = _point_text(variables, points[i])
+                where = point_text([v.name for v in variables], points[i])
                 raise InputError(f"generalized plant at point {i} ({where}) has {k} of shape "
                                  f"{np.shape(getattr(plants[i], k))}, other points {shapes[k]}; "
                                  "every point needs the same sizes")
@@ -502,10 +502,6 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
 
 def _mask(ok: np.ndarray, v: np.ndarray) -> np.ndarray:
     return ok.reshape((-1,) + (1,) * (np.ndim(v) - 1))
-
-
-def _point_text(variables, row) -> str:
-    return ", ".join(f"{v.name}={x:g}" for v, x in zip(variables, row, strict=False))
 
 
 # ----------------------------------------------------------------------------- from a design

@@ -26,7 +26,7 @@ import numpy as np
 
 from .errors import InputError
 from .h5util import atomic_h5, decode, read_variables, strings, write_variables
-from .types import LinearPlant, SchedulingVariable
+from .types import LinearPlant, SchedulingVariable, point_text
 
 FORMAT_NAME = "schedule-operating-points"
 FORMAT_VERSION = 1
@@ -140,7 +140,8 @@ def _validate(pts: OperatingPoints, where: str) -> None:
         if bad.any():
             k = int(np.argmax(bad))
             raise InputError(f"{where}: points/{name} holds NaN or inf at point {k} "
-                             f"({_point_text(pts.variables, values[k])}); fix the linearization")
+                             f"({point_text([v.name for v in pts.variables], values[k])}); "
+                             "fix the linearization")
     for label, names, size in (("states", pts.state_names, n), ("inputs", pts.input_names, m),
                                ("outputs", pts.output_names, p)):
         if len(names) != size:
@@ -159,6 +160,3 @@ def _validate(pts: OperatingPoints, where: str) -> None:
             raise InputError(f"{where}: point {k} has {v.name} = {col[k]:g} outside its bounds "
                              f"[{v.lower:g}, {v.upper:g}]; widen the bounds or drop the point")
 
-
-def _point_text(variables, row) -> str:
-    return ", ".join(f"{v.name}={x:g}" for v, x in zip(variables, row))

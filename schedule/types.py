@@ -7,6 +7,16 @@ from dataclasses import dataclass, field
 import numpy as np
 
 
+def point_text(names, values=None) -> str:
+    """``"name=value, ..."`` for messages that name an operating point.
+
+    ``names`` and ``values`` in order, or one mapping {name: value}.
+    """
+    if values is None:
+        names, values = list(names), list(names.values())
+    return ", ".join(f"{n}={float(x):g}" for n, x in zip(names, values))
+
+
 @dataclass(frozen=True)
 class SchedulingVariable:
     """One scheduling variable: a name, a unit and closed bounds ``lower <= p <= upper``."""

@@ -38,7 +38,7 @@ import numpy as np
 
 from .design_file import DesignSpec, WeightSpec, number_at
 from .errors import InputError
-from .types import LinearPlant
+from .types import LinearPlant, point_text
 
 __all__ = ["FirstOrderWeight", "NamedChannels", "first_order_weight", "static_weight",
            "weight_at", "channel_names", "build_generalized_plant",
@@ -154,7 +154,7 @@ def weight_at(w: WeightSpec, point: Mapping[str, float]) -> FirstOrderWeight:
     if w.kind == "static":
         g = number_at(w.gain, point)
         if not (np.isfinite(g) and g > 0):
-            raise InputError(f"{w.key}.gain is {g:g} at {_ptxt(point)}; give a gain > 0")
+            raise InputError(f"{w.key}.gain is {g:g} at {point_text(point)}; give a gain > 0")
         return static_weight(g)
     L = number_at(w.low_frequency_gain, point)
     wc = number_at(w.crossover, point)
@@ -162,11 +162,7 @@ def weight_at(w: WeightSpec, point: Mapping[str, float]) -> FirstOrderWeight:
     try:
         return first_order_weight(L, wc, H)
     except InputError as exc:
-        raise InputError(f"{w.key} at {_ptxt(point)}: {exc}") from None
-
-
-def _ptxt(point: Mapping[str, float]) -> str:
-    return ", ".join(f"{k}={v:g}" for k, v in point.items())
+        raise InputError(f"{w.key} at {point_text(point)}: {exc}") from None
 
 
 def channel_names(spec: DesignSpec, plant: LinearPlant) -> NamedChannels:
@@ -240,11 +236,11 @@ def build_generalized_plant_named(spec: DesignSpec, linear_plant: LinearPlant, p
     n = A.shape[0]
     if A.shape != (n, n) or B.shape[0] != n or C.shape[1] != n or D.shape != (C.shape[0],
                                                                                B.shape[1]):
-        raise InputError(f"plant at {_ptxt(pt)} has inconsistent shapes A{A.shape} B{B.shape} "
+        raise InputError(f"plant at {point_text(pt)} has inconsistent shapes A{A.shape} B{B.shape} "
                          f"C{C.shape} D{D.shape}; fix the model")
     for name, M in (("A", A), ("B", B), ("C", C), ("D", D)):
         if not np.isfinite(M).all():
-            raise InputError(f"plant matrix {name} at {_ptxt(pt)} holds NaN or inf; fix the "
+            raise InputError(f"plant matrix {name} at {point_text(pt)} holds NaN or inf; fix the "
                              "linearization")
     ch, ws = spec.channels, spec.weights
     ins, outs = list(linear_plant.input_names), list(linear_plant.output_names)

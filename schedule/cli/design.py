@@ -10,6 +10,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..family import CHUNK_SIZE
+from ..types import point_text
 
 
 def _summary(run, out: str) -> dict:
@@ -40,17 +41,13 @@ def _summary(run, out: str) -> dict:
     return info
 
 
-def _point_text(point: dict) -> str:
-    return ", ".join(f"{k}={v:g}" for k, v in point.items())
-
-
 def _print_table(info: dict) -> None:
     rows = [("family file", info["out"]),
             ("points", f"{info['points']} ({info['ok']} ok, {info['failed']} failed)")]
     if "gamma_opt_min" in info:
         lo, hi = info["gamma_opt_min"], info["gamma_opt_max"]
-        rows.append(("gamma_opt min", f"{lo['value']:.5g} at {_point_text(lo['point'])}"))
-        rows.append(("gamma_opt max", f"{hi['value']:.5g} at {_point_text(hi['point'])}"))
+        rows.append(("gamma_opt min", f"{lo['value']:.5g} at {point_text(lo['point'])}"))
+        rows.append(("gamma_opt max", f"{hi['value']:.5g} at {point_text(hi['point'])}"))
     rows.append(("common gamma", f"{info['gamma']:.5g}"))
     rows.append(("computed", f"{info['computed']['gamma_opt']} gamma_opt, "
                              f"{info['computed']['controllers']} controllers in "
@@ -73,7 +70,7 @@ def _print_table(info: dict) -> None:
     if info["failures"]:
         click.echo("failed points:")
         for item in info["failures"]:
-            click.echo(f"  [{item['index']}] {_point_text(item['point'])}: {item['reason']}")
+            click.echo(f"  [{item['index']}] {point_text(item['point'])}: {item['reason']}")
 
 
 @click.command("design")
