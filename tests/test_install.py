@@ -1,8 +1,9 @@
 """A plain (non-editable) install ships the demo crane and its data files.
 
 Builds the package from a copy of the sources into a fresh virtual environment
-(``python -m venv --system-site-packages``, ``pip install --no-deps
---no-build-isolation``: no downloads), then, from an unrelated working
+(``python -m venv --system-site-packages``, ``pip install --no-deps``: the
+build backend named in pyproject.toml is fetched into pip's isolated build
+environment, as on a user's fresh machine, whose venv has no ``wheel``), then, from an unrelated working
 directory, imports ``schedule.demo_crane`` from the installed copy and loads
 the envelope file and the design file through importlib.resources. The
 outside reference is pip/setuptools' own packaging: if package data or the
@@ -67,8 +68,7 @@ def test_plain_install_ships_demo_data(tmp_path):
     outer = [p for p in site.getsitepackages() if Path(p).is_dir()]
     (Path(purelib) / "zz_outer_site.pth").write_text("\n".join(outer) + "\n")
 
-    res = subprocess.run([str(py), "-m", "pip", "install", "-q", "--no-deps",
-                          "--no-build-isolation", "--no-index", str(src)],
+    res = subprocess.run([str(py), "-m", "pip", "install", "-q", "--no-deps", str(src)],
                          capture_output=True, text=True, cwd=tmp_path)
     assert res.returncode == 0, f"pip install failed: {res.stderr[-2000:]}"
 
