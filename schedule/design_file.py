@@ -39,7 +39,7 @@ else:  # pragma: no cover - exercised on Python 3.10 only
 __all__ = [
     "DesignSpec", "SourceSpec", "GridSpec", "ChannelSpec", "WeightSpec", "WeightsSpec",
     "ScheduledNumber", "GammaSpec", "InterpolationSpec", "CheckSpec", "ExportSpec",
-    "load_design", "parse_design", "validate_against_plant",
+    "LimitSpec", "load_design", "parse_design", "validate_against_plant",
     "GAMMA_POLICIES", "INTERPOLATION_FORMS", "INTERPOLATION_KINDS", "SAMPLERS",
     "EXPORT_METHODS", "EXPORT_FORMATS",
 ]
@@ -206,6 +206,21 @@ class ExportSpec:
     formats: tuple[str, ...] = ("csv", "json", "hdf5", "c")
 
 
+@dataclass(frozen=True)
+class LimitSpec:
+    """Actuator limits of one control, on the controller output (deviation from trim).
+
+    ``lower <= u <= upper`` (``-inf`` / ``inf`` when not given) and ``|du/dt| <= rate``
+    per second (``inf`` when not given). The exported controller limits its command and
+    feeds its observer the limited value (docs/tables.md, "Actuator limits").
+    """
+
+    control: str
+    lower: float = -math.inf
+    upper: float = math.inf
+    rate: float = math.inf
+
+
 @dataclass(frozen=True, eq=False)
 class DesignSpec:
     """Everything the design file says, validated. ``text`` is the raw TOML."""
@@ -223,6 +238,7 @@ class DesignSpec:
     check: CheckSpec = field(default_factory=CheckSpec)
     export: ExportSpec = field(default_factory=ExportSpec)
     name: str = "<design text>"
+    limits: tuple[LimitSpec, ...] = ()
 
     @property
     def variable_names(self) -> tuple[str, ...]:
@@ -376,7 +392,7 @@ def _first_duplicate(items) -> Any:
 # --------------------------------------------------------------------------- entry points
 ARRANGEMENTS = ("mixed_sensitivity", "generalized")
 TOP_KEYS = ("title", "variable", "source", "grid", "channels", "weights", "gamma",
-            "interpolation", "check", "export")
+            "interpolation", "check", "export", "limits")
 
 
 def load_design(path: str | os.PathLike) -> DesignSpec:
@@ -444,9 +460,11 @@ def parse_design(text: str, base_dir: str | os.PathLike, name: str = "<design te
     interp = _parse_interpolation(r, r.table(data.get("interpolation", {}), "interpolation"))
     check = _parse_check(r, r.table(data.get("check", {}), "check"))
     export = _parse_export(r, r.table(data.get("export", {}), "export"))
+    limits = _parse_limits(r, data.get("limits", []), channels)
     return DesignSpec(text=text, base_dir=base, title=title, variables=variables, source=source,
                       grid=grid, channels=channels, weights=weights, gamma=gamma,
-                      interpolation=interp, check=check, export=export, name=name)
+                      interpolation=interp, check=check, export=export, name=name,
+                      limits=limits)
 
 
 # --------------------------------------------------------------------------- the tables
@@ -824,6 +842,39 @@ def _parse_export(r: _Reader, t: dict) -> ExportSpec:
                      "choose a lower prewarp frequency or a shorter sample_time")
     return ExportSpec(sample_time=sample_time, method=method, prewarp=prewarp,
                       formats=formats if formats is not None else ExportSpec().formats)
+
+
+def _parse_limits(r: _Reader, items: Any, ch: ChannelSpec) -> tuple[LimitSpec, ...]:
+    """``[[limits]]``: per control ``lower``, ``upper`` (magnitude) and ``rate`` (per second)."""
+    if isinstance(items, dict):
+        items = [items]
+    if not isinstance(items, list):
+        raise r.fail("limits", f"expected [[limits]] tables, got {_tname(items)}",
+                     "write one [[limits]] table per limited control")
+    out: dict[str, LimitSpec] = {}
+    for i, item in enumerate(items):
+        key = f"limits[{i}]"
+        t = r.table(item, key)
+        r.keys(t, key, ("control", "lower", "upper", "rate"), required=("control",))
+        name = r.string(t, key, "control")
+        if name not in ch.controls:
+            raise r.fail(_join(key, "control"), f"'{name}' is not in channels.controls "
+                         f"({', '.join(ch.controls)})", "name one of the controls")
+        if name in out:
+            raise r.fail(_join(key, "control"), f"a second [[limits]] for '{name}'",
+                         "give one table per control")
+        if not any(k in t for k in ("lower", "upper", "rate")):
+            raise r.fail(key, "no limit given", "give lower, upper and/or rate")
+        lower = r.number(t, key, "lower", -math.inf)
+        upper = r.number(t, key, "upper", math.inf)
+        rate = r.number(t, key, "rate", math.inf, positive=True)
+        if not lower <= 0.0 <= upper or lower == upper:
+            raise r.fail(key, f"lower = {lower:g} and upper = {upper:g} must satisfy "
+                         "lower <= 0 <= upper with lower < upper",
+                         "limits apply to the controller output, the deviation from the trim "
+                         "control: subtract the trim value from the actuator's own limits")
+        out[name] = LimitSpec(name, lower, upper, rate)
+    return tuple(out[c] for c in ch.controls if c in out)
 
 
 # --------------------------------------------------------------------------- against a plant

@@ -11,7 +11,14 @@ The loop (sampled-data, sample time T of the table)::
 Signals given to the controller are deviations: each measured output minus its
 reference (for a position, the position error, so the controller regulates the error
 to zero) and controls are added to the trim controls. The controller state is
-carried across schedule changes (never reset). Rates of the scheduling variables that
+carried across schedule changes (never reset).
+
+Actuator limits: the command the controller returns is already limited (rate, then
+magnitude; :class:`schedule.export.TableController` with the table's limits, which come
+from the design file's ``[[limits]]``), so the drive receives at most what it can
+deliver. With ``anti_windup`` (the default) the controller's observer is fed the limited
+command; :func:`anti_windup_comparison` runs a reference step with and without that
+path to show the wound-up overshoot it removes. Rates of the scheduling variables that
 the model asks for (``<variable>_rate``, ``<variable>_accel`` in
 ``NonlinearModel.rate_terms``) are finite differences of the trajectory.
 
@@ -159,6 +166,92 @@ def read_trajectory(path: str | os.PathLike, variable_names, measured_names,
                       references={m: col[f"ref:{m}"] for m in measured_names
                                   if f"ref:{m}" in col},
                       inputs={u: col[u] for u in exogenous_names if u in col})
+
+
+def step_trajectory(variable_names, point, measured: str, size: float,
+                    duration: float = 120.0, sample_time: float = 0.02,
+                    step_time: float = 1.0) -> Trajectory:
+    """A reference step of ``size`` in output ``measured`` at ``step_time`` s, with the
+    scheduling point held at ``point`` (a mapping by name or a sequence) for ``duration`` s."""
+    names = tuple(variable_names)
+    if isinstance(point, dict):
+        point = [point[n] for n in names]
+    pt = np.asarray(point, dtype=float).reshape(-1)
+    if pt.shape != (len(names),) or not np.isfinite(pt).all():
+        raise InputError(f"step point must give {len(names)} finite values "
+                         f"({', '.join(names)})")
+    if not (math.isfinite(size) and size != 0.0):
+        raise InputError(f"step size {size!r} must be a finite non-zero number")
+    if not (math.isfinite(duration) and duration > step_time + sample_time):
+        raise InputError(f"step duration {duration!r} s must exceed the step time "
+                         f"{step_time:g} s")
+    t = np.arange(0.0, duration + 0.5 * sample_time, sample_time)
+    ref = np.where(t >= step_time, float(size), 0.0)
+    return Trajectory(time=t, points=np.tile(pt, (t.size, 1)), variable_names=names,
+                      references={measured: ref})
+
+
+def step_overshoot(result: SimulationResult, measured: str, size: float,
+                   step_time: float = 1.0) -> dict:
+    """Overshoot of a reference step, in percent of the step: ``100 max(sign (y - r_end)) /
+    |size|`` after ``step_time``, with the final error and the time spent at a limit."""
+    j = result.measured_names.index(measured)
+    after = result.time >= step_time
+    y = result.measured[after, j]
+    target = float(result.references[-1, j])
+    over = float(np.max(np.sign(size) * (y - target))) / abs(size)
+    return {"overshoot_percent": 100.0 * max(over, 0.0),
+            "final_error": float(result.measured[-1, j] - target)}
+
+
+#: the runs of :func:`anti_windup_comparison`
+COMPARISON_RUNS = ("anti_windup", "plain")
+
+
+def anti_windup_comparison(model, table, trajectory: Trajectory, substeps: int = 4,
+                           x0=None, u0=None) -> dict[str, SimulationResult]:
+    """Simulate ``trajectory`` twice under ``table`` with its actuator limits: with the
+    observer fed the limited command (``"anti_windup"``) and with the linear state update
+    of a controller that does not know its drive saturates (``"plain"``)."""
+    return {name: simulate(model, TableController(table, anti_windup=name == "anti_windup"),
+                           trajectory, x0=x0, u0=u0, substeps=substeps)
+            for name in COMPARISON_RUNS}
+
+
+def comparison_plot(runs: dict[str, SimulationResult], measured: str, title: str = "") -> bytes:
+    """PNG (Agg backend): the stepped output and the commands of the comparison runs."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    first = next(iter(runs.values()))
+    j = first.measured_names.index(measured)
+    fig, axes = plt.subplots(1 + len(first.control_names), 1, figsize=(8, 5.5), sharex=True,
+                             squeeze=False)
+    styles = {"anti_windup": "-", "plain": "--"}
+    labels = {"anti_windup": "with anti-windup", "plain": "without anti-windup"}
+    ax = axes[0, 0]
+    ax.plot(first.time, first.references[:, j], color="0.6", lw=1, label="reference")
+    for name, res in runs.items():
+        ax.plot(res.time, res.measured[:, j], styles.get(name, "-"), label=labels.get(name, name))
+    ax.set_ylabel(measured, fontsize=8)
+    ax.legend(fontsize=7, loc="best")
+    for k, control in enumerate(first.control_names, start=1):
+        ax = axes[k, 0]
+        for name, res in runs.items():
+            i = res.input_names.index(control)
+            ax.plot(res.time, res.inputs[:, i], styles.get(name, "-"), label=labels.get(name, name))
+        ax.set_ylabel(control + " (command)", fontsize=8)
+    for ax in axes[:, 0]:
+        ax.grid(True, alpha=0.3)
+    axes[-1, 0].set_xlabel("time [s]")
+    if title:
+        axes[0, 0].set_title(title, fontsize=9)
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=90)
+    plt.close(fig)
+    return buf.getvalue()
 
 
 def _index(names, wanted, what):

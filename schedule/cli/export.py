@@ -1,4 +1,4 @@
-"""``schedule export FAMILY --format csv|json|hdf5|c --out PATH``: write a scheduled table."""
+"""``schedule export FAMILY --format csv|json|hdf5|c|fmu --out PATH``: write a scheduled table."""
 
 from __future__ import annotations
 
@@ -10,7 +10,10 @@ import click
 
 from ..errors import InputError
 
-_SUFFIX = {"csv": ".csv", "json": ".json", "hdf5": ".h5"}
+_SUFFIX = {"csv": ".csv", "json": ".json", "hdf5": ".h5", "fmu": ".fmu"}
+# schedule.export.FORMATS, spelled out so that `--help` does not import numpy
+# (tests/test_export_cli.py checks that the two agree)
+_FORMATS = ("csv", "json", "hdf5", "c", "fmu")
 
 
 def export_settings(family) -> dict:
@@ -18,18 +21,22 @@ def export_settings(family) -> dict:
 
     Parsed with :func:`schedule.design_file.parse_design`; if the full design no longer
     parses on this machine (for example its operating-point file is elsewhere), only the
-    [export] table is read.
+    [export] and [[limits]] tables are read. ``limits`` maps a control to
+    ``(lower, upper, rate)`` (the design's actuator limits).
     """
-    defaults = {"sample_time": 0.0, "method": "tustin", "prewarp": 0.0, "formats": None}
+    defaults = {"sample_time": 0.0, "method": "tustin", "prewarp": 0.0, "formats": None,
+                "limits": {}}
     text = family.design_text or ""
     if not text.strip():
         return defaults
     base = family.design_base_dir or "."
     try:
         from ..design_file import parse_design
-        ex = parse_design(text, base, name="family design text").export
+        spec = parse_design(text, base, name="family design text")
+        ex = spec.export
         return {"sample_time": float(ex.sample_time), "method": str(ex.method),
-                "prewarp": float(ex.prewarp), "formats": tuple(ex.formats)}
+                "prewarp": float(ex.prewarp), "formats": tuple(ex.formats),
+                "limits": {s.control: (s.lower, s.upper, s.rate) for s in spec.limits}}
     except (ImportError, ValueError):
         pass
     try:
@@ -48,18 +55,39 @@ def export_settings(family) -> dict:
         out["method"] = t["method"]
     if isinstance(t.get("formats"), list):
         out["formats"] = tuple(str(f) for f in t["formats"])
+    out["limits"] = _raw_limits(tomllib.loads(text).get("limits", []))
+    return out
+
+
+def _raw_limits(items) -> dict:
+    """``[[limits]]`` read without the rest of the design (checked later by the table)."""
+    import math
+
+    out = {}
+    for item in items if isinstance(items, list) else [items]:
+        if not isinstance(item, dict) or not isinstance(item.get("control"), str):
+            raise InputError("the family's design text has a malformed [[limits]] entry; fix "
+                             "the design file and design again")
+        try:
+            out[item["control"]] = tuple(float(item.get(k, default)) for k, default in
+                                         (("lower", -math.inf), ("upper", math.inf),
+                                          ("rate", math.inf)))
+        except (TypeError, ValueError):
+            raise InputError(f"[[limits]] of {item['control']!r} in the family's design text "
+                             "are not numbers; fix the design file and design again") from None
     return out
 
 
 @click.command("export")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--format", "-f", "formats", multiple=True,
-              type=click.Choice(["csv", "json", "hdf5", "c"]),
-              help="Table format; repeat for several (then --out is a folder). Default: the "
-                   "design file's [export] formats.")
+              type=click.Choice(_FORMATS),
+              help="Table format; repeat for several (then --out is a folder). fmu: an FMI "
+                   "2.0 co-simulation unit. Default: the design file's [export] formats.")
 @click.option("--out", "-o", required=True, type=click.Path(),
-              help="Output file (csv/json/hdf5), folder (c: <prefix>_table.h and .c), or, "
-                   "for several formats, a folder receiving table.csv, table.json, table.h5, c/.")
+              help="Output file (csv/json/hdf5; fmu: NAME.fmu, NAME a C identifier), folder "
+                   "(c: <prefix>_table.h and .c), or, for several formats, a folder receiving "
+                   "table.csv, table.json, table.h5, c/, table.fmu.")
 @click.option("--sample-time", type=float, default=None,
               help="Sample time in s; 0 = continuous table. Default: design [export].")
 @click.option("--method", type=click.Choice(["tustin", "zoh"]), default=None,
@@ -73,12 +101,19 @@ def export_settings(family) -> dict:
                    "a file in that syntax.")
 @click.option("--prefix", default="sched", show_default=True,
               help="Prefix of all C names (format c).")
+@click.option("--no-binary", is_flag=True,
+              help="Format fmu: write a source-only unit (no host build).")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def export_command(family_file, formats, out, sample_time, method, prewarp, breakpoints,
-                   prefix, as_json):
-    """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md)."""
-    from ..export import build_table, file_sha256, write_table
+                   prefix, no_binary, as_json):
+    """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md).
+
+    Actuator limits ([[limits]] of the design file) and the anti-windup gain go into
+    every format.
+    """
+    from ..export import build_table, file_sha256, write_fmu, write_table
     from ..export.c_source import check_prefix
+    from ..export.fmu import model_identifier
     from ..store import read_family
 
     family = read_family(family_file)
@@ -95,14 +130,32 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                          "table)")
     if "c" in formats:
         check_prefix(prefix)
-        if sample_time == 0:
-            raise InputError("format c needs a discrete table; give --sample-time (seconds)")
+    for fmt in ("c", "fmu"):
+        if fmt in formats and sample_time == 0:
+            raise InputError(f"format {fmt} needs a discrete table; give --sample-time "
+                             "(seconds)")
+    if formats == ("fmu",):
+        model_identifier(out)
     table = build_table(family, breakpoints=breakpoints, sample_time=sample_time,
-                        method=method, prewarp=prewarp, source_sha256=file_sha256(family_file))
+                        method=method, prewarp=prewarp, source_sha256=file_sha256(family_file),
+                        limits=settings["limits"])
     out = Path(out)
     written = []
+    notes = []
+
+    def write(fmt: str, target: Path) -> list[Path]:
+        if fmt != "fmu":
+            return write_table(table, fmt, target, prefix=prefix)
+        outcome = write_fmu(target, table, binary=not no_binary)
+        if outcome.note:
+            notes.append(outcome.note)
+        else:
+            notes.append(f"FMU binary for {outcome.platform} built in "
+                         f"{outcome.build_seconds:.2f} s")
+        return [outcome.path]
+
     if len(formats) == 1:
-        written += write_table(table, formats[0], out, prefix=prefix)
+        written += write(formats[0], out)
     else:
         if out.exists() and not out.is_dir():
             raise InputError(f"--out {out} is a file; several formats need a folder")
@@ -117,14 +170,18 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                                  "--out") from None
         for fmt in formats:
             target = out / "c" if fmt == "c" else out / f"table{_SUFFIX[fmt]}"
-            written += write_table(table, fmt, target, prefix=prefix)
+            written += write(fmt, target)
     info = {"family": str(family_file), "formats": list(formats),
             "paths": [str(p) for p in written], "nodes": int(table.A.shape[0]),
             "shape": dict(zip([v.name for v in table.variables], table.shape, strict=True)),
             "inside": int(table.inside.sum()), "sample_time": table.sample_time,
             "method": table.method, "prewarp": table.prewarp, "gamma": table.gamma,
             "states": table.n_states, "inputs": list(table.measured_names),
-            "outputs": list(table.control_names), "source_sha256": table.source_sha256}
+            "outputs": list(table.control_names), "source_sha256": table.source_sha256,
+            "limits": table.actuator_limits.to_metadata(table.control_names),
+            "anti_windup": table.anti_windup, "notes": notes
+            + ([table.extra["anti_windup_note"]] if table.extra.get("anti_windup_note")
+               else [])}
     if as_json:
         click.echo(json.dumps(info, indent=1))
         return
@@ -137,5 +194,16 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     if info["inside"] < info["nodes"]:
         click.echo(f"note: {info['nodes'] - info['inside']} nodes lie outside the design "
                    "points' hull (inside = 0); they hold the nearest inside controller")
+    for item in info["limits"]:
+        if any(item[k] is not None for k in ("lower", "upper", "rate")):
+            click.echo(f"limits: {item['name']} from {_limit(item['lower'])} to "
+                       f"{_limit(item['upper'])}, rate {_limit(item['rate'])} per s"
+                       + (" (anti-windup)" if table.anti_windup else ""))
+    for note in info["notes"]:
+        click.echo(f"note: {note}")
     for p in written:
         click.echo(f"wrote {p}")
+
+
+def _limit(value) -> str:
+    return "none" if value is None else f"{value:g}"

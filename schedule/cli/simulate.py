@@ -34,6 +34,42 @@ def _load_model(entry: str):
                          "fix the model factory") from None
 
 
+#: the bundled crane's large step: trolley 60 m at the longest rope and the heaviest payload
+CRANE_STEP = ("trolley_position", 60.0, {"rope_length": 30.0, "payload_mass": 40000.0})
+STEP_DURATION = 120.0  # s
+
+
+def _parse_step(text: str, measured) -> tuple[str, float]:
+    name, sep, value = (text or "").partition("=")
+    name = name.strip()
+    if not sep or name not in measured:
+        raise InputError(f"--step {text!r}: write MEASURED=SIZE with MEASURED one of "
+                         f"{', '.join(measured)}")
+    try:
+        size = float(value)
+    except ValueError:
+        raise InputError(f"--step {text!r}: the size {value!r} is not a number") from None
+    return name, size
+
+
+def _parse_point(text: str, names) -> dict[str, float]:
+    out = {}
+    for tok in (t.strip() for t in (text or "").split(",") if t.strip()):
+        key, sep, value = tok.partition("=")
+        key = key.strip()
+        if not sep or key not in names:
+            raise InputError(f"--step-at {text!r}: write name=value,... with names from "
+                             f"{', '.join(names)}")
+        try:
+            out[key] = float(value)
+        except ValueError:
+            raise InputError(f"--step-at {text!r}: {value!r} is not a number") from None
+    missing = [n for n in names if n not in out]
+    if missing:
+        raise InputError(f"--step-at {text!r} lacks {', '.join(missing)}; give every variable")
+    return out
+
+
 def _looks_like_crane(model) -> bool:
     return (tuple(getattr(model, "variable_names", ())) == ("rope_length", "payload_mass")
             and "trolley_position" in model.output_names and "wind_speed" in model.input_names)
@@ -58,14 +94,22 @@ def _looks_like_crane(model) -> bool:
                    "source.nonlinear_model.")
 @click.option("--substeps", type=click.IntRange(1, 1000), default=4, show_default=True,
               help="Runge-Kutta steps per sample interval.")
+@click.option("--step", "step_text", default=None,
+              help="MEASURED=SIZE: also run a reference step with and without the anti-windup "
+                   "path (needs actuator limits). Default for the crane: trolley_position=60.")
+@click.option("--step-at", "step_at", default=None,
+              help="Scheduling point of the step, name=value,... Default: the trajectory's "
+                   "start (crane: rope_length=30,payload_mass=40000).")
+@click.option("--no-step", is_flag=True, help="Skip the anti-windup step comparison.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def simulate_command(family_file, out, trajectory, table_file, sample_time, method,
-                     model_entry, substeps, as_json):
+                     model_entry, substeps, step_text, step_at, no_step, as_json):
     """Simulate the nonlinear model of FAMILY_FILE under its scheduled discrete controller.
 
     The controller sees each measured output minus its reference (the position error
     for a position) and adds its output to the trim controls; its state is carried
-    across schedule changes.
+    across schedule changes. Its command is limited as the design's [[limits]] say, and
+    a large reference step is run with and without the anti-windup path (step.png).
     """
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
@@ -88,7 +132,8 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             raise InputError(f"--sample-time {T:g} must be > 0 s for a simulation")
         table = build_table(family, sample_time=T, method=method or settings["method"],
                             prewarp=settings["prewarp"] if (method or settings["method"])
-                            == "tustin" else 0.0, source_sha256=file_sha256(family_file))
+                            == "tustin" else 0.0, source_sha256=file_sha256(family_file),
+                            limits=settings["limits"])
         controller = TableController(table)
     names = tuple(v.name for v in controller.table.variables)
     exogenous = [u for u in model.input_names if u not in controller.table.control_names]
@@ -99,12 +144,33 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     else:
         raise InputError("no default trajectory for this model; give --trajectory CSV with "
                          f"columns time,{','.join(names)}")
+    table = controller.table
+    step = None
+    if not no_step and (step_text is not None or (_looks_like_crane(model) and trajectory is None
+                                                  and table.limits is not None)):
+        if table.limits is None:
+            raise InputError("--step compares the limited controller with and without "
+                             "anti-windup, but the table has no actuator limits; add "
+                             "[[limits]] to the design (or drop --step)")
+        if step_text is not None:
+            measured, size = _parse_step(step_text, table.measured_names)
+            at = (_parse_point(step_at, names) if step_at else
+                  dict(zip(names, map(float, traj.points[0]), strict=True)))
+        else:
+            measured, size, at = CRANE_STEP
+            at = _parse_point(step_at, names) if step_at else dict(at)
+        step = (measured, size, at)
     result = simulate(model, controller, traj, substeps=substeps)
     summary = result.summary()
     summary.update({"family": str(family_file), "model": entry,
-                    "sample_time": controller.sample_time, "method": controller.table.method})
-    files = {"simulation.csv": result_csv(result),
-             "summary.json": json.dumps(summary, indent=1) + "\n"}
+                    "sample_time": controller.sample_time, "method": controller.table.method,
+                    "limits": table.actuator_limits.to_metadata(table.control_names),
+                    "anti_windup": table.anti_windup})
+    files = {"simulation.csv": result_csv(result)}
+    if step is not None:
+        summary["step"], step_files = _step_comparison(model, table, step, substeps)
+        files.update(step_files)
+    files["summary.json"] = json.dumps(summary, indent=1) + "\n"
     files.update(result_plots(result, title=f"{entry} under the scheduled table "
                                             f"(T = {controller.sample_time:g} s)"))
     paths = write_dir_atomic(out, files, "simulation folder")
@@ -117,5 +183,52 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     for key, value in summary.items():
         if key.startswith(("max_abs", "final_error")):
             click.echo(f"  {key:<40} {value:.4g}")
+    if step is not None:
+        st = summary["step"]
+        where = ", ".join(f"{k}={v:g}" for k, v in st["at"].items())
+        over = st["overshoot_percent"]
+        click.echo(f"step {st['size']:g} in {st['output']} at {where}: overshoot "
+                   f"{over['anti_windup']:.1f} % with anti-windup, {over['plain']:.1f} % "
+                   f"without (step.png)")
     for p in paths:
         click.echo(f"wrote {p}")
+
+
+def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
+    """Run the step with and without anti-windup (and without limits); summary and files."""
+    import csv
+    import io
+
+    import numpy as np
+
+    from ..simulate import anti_windup_comparison, comparison_plot, step_overshoot, step_trajectory
+
+    measured, size, at = step
+    names = tuple(v.name for v in table.variables)
+    traj = step_trajectory(names, at, measured, size, duration=STEP_DURATION,
+                           sample_time=table.sample_time)
+    runs = anti_windup_comparison(model, table, traj, substeps=substeps)
+    info = {"output": measured, "size": size, "at": at, "duration": STEP_DURATION,
+            "overshoot_percent": {}, "final_error": {}, "peak_command": {}}
+    for name, res in runs.items():
+        o = step_overshoot(res, measured, size)
+        info["overshoot_percent"][name] = o["overshoot_percent"]
+        info["final_error"][name] = o["final_error"]
+        info["peak_command"][name] = {c: float(np.max(np.abs(res.inputs[:, res.input_names.index(
+            c)]))) for c in res.control_names}
+    j = runs["anti_windup"].measured_names.index(measured)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    controls = runs["anti_windup"].control_names
+    w.writerow(["time", f"ref:{measured}"] + [f"{run}:{measured}" for run in runs]
+               + [f"{run}:{c}" for run in runs for c in controls])
+    first = runs["anti_windup"]
+    for k in range(first.time.size):
+        row = [first.time[k], first.references[k, j]]
+        row += [res.measured[k, j] for res in runs.values()]
+        row += [res.inputs[k, res.input_names.index(c)] for res in runs.values() for c in controls]
+        w.writerow([repr(float(v)) for v in row])
+    where = ", ".join(f"{k} = {v:g}" for k, v in at.items())
+    png = comparison_plot(runs, measured, title=f"Step {size:g} in {measured} at {where} "
+                                                "(limited command)")
+    return info, {"step.csv": buf.getvalue(), "step.png": png}

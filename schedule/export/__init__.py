@@ -1,9 +1,10 @@
-"""Scheduled tables: build, discretize, write (CSV / JSON / HDF5 / C99) and run.
+"""Scheduled tables: build, discretize, write (CSV / JSON / HDF5 / C99 / FMU) and run.
 
 ``build_table(family, ...)`` makes a :class:`ScheduledTable`; ``write_table(table,
 fmt, out)`` writes it; ``read_table(path)`` reads CSV / JSON / HDF5 back;
-``TableController`` steps the scheduled discrete controller. Formats are described
-in docs/tables.md.
+``TableController`` steps the scheduled discrete controller (with actuator limits and
+the observer-form anti-windup, :mod:`schedule.export.antiwindup`); ``write_fmu``
+writes an FMI 2.0 co-simulation unit. Formats are described in docs/tables.md.
 """
 
 from __future__ import annotations
@@ -12,29 +13,33 @@ import os
 from pathlib import Path
 
 from ..errors import InputError
+from .antiwindup import ActuatorLimits
 from .c_source import c_source_text, write_c_source
 from .csv_table import read_csv_table, write_csv_table
 from .discretize import discretize
+from .fmu import write_fmu
 from .hdf5_table import read_hdf5_table, write_hdf5_table
 from .json_table import read_json_table, write_json_table
 from .runtime import TableController, interpolate_matrices, read_table
 from .table import ScheduledTable, build_table, file_sha256, parse_breakpoints
 
-FORMATS = ("csv", "json", "hdf5", "c")
+FORMATS = ("csv", "json", "hdf5", "c", "fmu")
 
-__all__ = ["FORMATS", "ScheduledTable", "TableController", "build_table", "c_source_text",
-           "discretize", "file_sha256", "interpolate_matrices", "parse_breakpoints",
+__all__ = ["FORMATS", "ActuatorLimits", "ScheduledTable", "TableController", "build_table",
+           "c_source_text", "discretize", "file_sha256", "interpolate_matrices", "parse_breakpoints",
            "read_csv_table", "read_hdf5_table", "read_json_table", "read_table",
            "write_c_source", "write_csv_table", "write_hdf5_table", "write_json_table",
-           "write_table"]
+           "write_fmu", "write_table"]
 
 
 def write_table(table: ScheduledTable, fmt: str, out: str | os.PathLike,
                 prefix: str = "sched") -> list[Path]:
-    """Write ``table`` in format ``fmt`` ("csv", "json", "hdf5" or "c") to ``out``.
+    """Write ``table`` in format ``fmt`` (one of :data:`FORMATS`) to ``out``.
 
     For "c", ``out`` is a folder that receives ``<prefix>_table.h`` and
-    ``<prefix>_table.c``; otherwise a file. Writes are atomic. Returns the paths written.
+    ``<prefix>_table.c``; for "fmu" a ``NAME.fmu`` file (:func:`write_fmu`, with the host
+    binary when a C compiler is found); otherwise a file. Writes are atomic. Returns the
+    paths written.
     """
     if fmt == "csv":
         return [write_csv_table(out, table)]
@@ -44,4 +49,6 @@ def write_table(table: ScheduledTable, fmt: str, out: str | os.PathLike,
         return [write_hdf5_table(out, table)]
     if fmt == "c":
         return write_c_source(out, table, prefix)
+    if fmt == "fmu":
+        return [write_fmu(out, table).path]
     raise InputError(f"unknown table format {fmt!r}; use one of {', '.join(FORMATS)}")

@@ -3,11 +3,12 @@
 Layout (see docs/tables.md)::
 
     # {"format": "schedule-table", "format_version": 1, ...metadata as one JSON line...}
-    rope_length,payload_mass,inside,A[0,0],A[0,1],...,B[0,0],...,C[0,0],...,D[0,0],...
+    rope_length,payload_mass,inside,A[0,0],A[0,1],...,B[0,0],...,C[0,0],...,D[0,0],...,H[0,0],...
     3.0,2000.0,1,...
 
-Rows follow the flat node order (first variable slowest). Numbers are written with
-Python's shortest round-trip representation, so reading gives the same doubles.
+The ``H`` columns (anti-windup gain) are present when the metadata says
+``"anti_windup": true``. Rows follow the flat node order (first variable slowest).
+Numbers are written with Python's shortest round-trip representation, so reading gives the same doubles.
 """
 
 from __future__ import annotations
@@ -25,13 +26,21 @@ from ..errors import InputError
 from .table import MATRICES, ScheduledTable, table_from_metadata
 
 
+def _stacks(table: ScheduledTable) -> dict[str, np.ndarray]:
+    """The stacked matrices written as columns: A, B, C, D and, when present, H."""
+    out = {k: getattr(table, k) for k in MATRICES}
+    if table.H is not None:
+        out["H"] = table.H
+    return out
+
+
 def entry_names(table_or_shapes) -> list[str]:
-    """Column names ``A[i,j]`` ... ``D[i,j]`` in row-major order."""
+    """Column names ``A[i,j]`` ... ``D[i,j]`` (then ``H[i,j]``) in row-major order."""
     if isinstance(table_or_shapes, ScheduledTable):
-        shapes = {k: getattr(table_or_shapes, k).shape[1:] for k in MATRICES}
+        shapes = {k: v.shape[1:] for k, v in _stacks(table_or_shapes).items()}
     else:
         shapes = table_or_shapes
-    return [f"{k}[{i},{j}]" for k in MATRICES for i in range(shapes[k][0])
+    return [f"{k}[{i},{j}]" for k in shapes for i in range(shapes[k][0])
             for j in range(shapes[k][1])]
 
 
@@ -43,7 +52,7 @@ def csv_text(table: ScheduledTable) -> str:
     w.writerow([v.name for v in table.variables] + ["inside"] + entry_names(table))
     nodes = table.nodes()
     M = nodes.shape[0]
-    flat = np.concatenate([getattr(table, k).reshape(M, -1) for k in MATRICES], axis=1)
+    flat = np.concatenate([v.reshape(M, -1) for v in _stacks(table).values()], axis=1)
     for j in range(M):
         w.writerow([repr(float(x)) for x in nodes[j]] + [int(table.inside[j])]
                    + [repr(float(x)) for x in flat[j]])
@@ -70,6 +79,8 @@ def read_csv_table(path: str | os.PathLike) -> ScheduledTable:
         rows = list(csv.reader(lines[1:]))
     except (json.JSONDecodeError, csv.Error) as exc:
         raise InputError(f"{path}: malformed CSV table ({exc}); re-export it") from None
+    if not isinstance(meta, dict):
+        raise InputError(f"{path}: the metadata line is not a JSON object; re-export the table")
     try:
         d = len(meta["variables"])
         n = int(meta["n_states"])
@@ -78,6 +89,8 @@ def read_csv_table(path: str | os.PathLike) -> ScheduledTable:
         raise InputError(f"{path}: metadata line lacks variables, inputs, outputs or "
                          "n_states; re-export the table") from None
     shapes = {"A": (n, n), "B": (n, ny), "C": (nu, n), "D": (nu, ny)}
+    if meta.get("anti_windup") is True:
+        shapes["H"] = (n, nu)
     expected = [v["name"] for v in meta["variables"]] + ["inside"] + entry_names(shapes)
     if not rows or rows[0] != expected:
         raise InputError(f"{path}: header row does not match the metadata (expected "
@@ -89,7 +102,7 @@ def read_csv_table(path: str | os.PathLike) -> ScheduledTable:
     if data.ndim != 2 or data.shape[1] != len(expected):
         raise InputError(f"{path}: rows do not all have {len(expected)} cells; re-export")
     mats, col = {}, d + 1
-    for k in MATRICES:
+    for k in shapes:
         size = shapes[k][0] * shapes[k][1]
         mats[k] = data[:, col:col + size].reshape((-1,) + shapes[k])
         col += size

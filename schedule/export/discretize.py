@@ -144,3 +144,76 @@ def discretize(A, B, C, D, sample_time: float, method: str = "tustin",
     if single:
         out = tuple(x[0] for x in out)
     return out
+
+
+def discretize_gain(A, C, H, sample_time: float, method: str = "tustin",
+                    prewarp: float = 0.0, labels=None) -> np.ndarray:
+    """Discrete anti-windup gain ``Hd`` of stacked continuous controllers.
+
+    The continuous controller with the anti-windup correction is
+    ``x' = A x + B y + H (u_lim - u)``, ``u = C x + D y`` (docs/tables.md, "Actuator
+    limits"); when the command is limited the state follows ``x' = (A - H C) x + ...``.
+    The discrete table keeps the nominal ``(Ad, Bd, Cd, Dd)`` of :func:`discretize`
+    unchanged and adds ``Hd``:
+
+    ``"tustin"`` (step ``T`` or the pre-warped ``T'``):
+        ``Hd = T M H (I + (T/2) Cd H)^-1`` with ``M = (I - (T/2) A)^-1``, ``Cd = C M``.
+        Then ``Ad - Hd Cd`` equals the Tustin image of ``A - H C`` exactly
+        (push-through identity; derivation in docs/tables.md), so the limited
+        controller's dynamics are Schur stable exactly when ``A - H C`` is Hurwitz.
+    ``"zoh"``:
+        ``Hd = integral_0^T expm(A s) ds H``: the correction held over the sample
+        interval like every other input of a zero-order-hold table (exact for that
+        hold; ``Ad - Hd Cd`` agrees with ``expm((A - H C) T)`` to first order in T).
+
+    Parameters
+    ----------
+    A, C, H : (M, n, n), (M, nu, n), (M, n, nu) continuous matrices (or unstacked).
+    sample_time, method, prewarp, labels : as for :func:`discretize`.
+
+    Returns
+    -------
+    Hd with the input's stacking.
+
+    Raises
+    ------
+    NumericalError
+        ``I + (T/2) Cd H`` singular, i.e. ``A - H C`` has an eigenvalue at ``2/T``.
+    """
+    A, H, C = (np.asarray(x, dtype=float) for x in (A, H, C))
+    single = A.ndim == 2
+    if single:
+        A, H, C = A[None], H[None], C[None]
+    M, n, nu = A.shape[0], A.shape[1], H.shape[2]
+    if H.shape[:2] != (M, n) or C.shape != (M, nu, n):
+        raise InputError(f"anti-windup shapes A{A.shape} C{C.shape} H{H.shape} do not fit "
+                         "together; fix the controller data")
+    if n == 0:
+        return np.zeros((0, nu)) if single else np.zeros((M, 0, nu))
+    if method == "zoh":
+        aug = np.zeros((M, n + nu, n + nu))
+        aug[:, :n, :n] = A * sample_time
+        aug[:, :n, n:] = H * sample_time
+        Hd = scipy.linalg.expm(aug)[:, :n, n:] if M else aug[:, :n, n:]
+    else:
+        T = prewarped_step(float(sample_time), float(prewarp))
+        Mm = np.eye(n) - (T / 2.0) * A
+        MH = np.linalg.solve(Mm, H)
+        Cd = np.swapaxes(np.linalg.solve(np.swapaxes(Mm, 1, 2), np.swapaxes(C, 1, 2)), 1, 2)
+        E = np.eye(nu) + (T / 2.0) * (Cd @ H)
+        cond = np.linalg.cond(E) if M else np.zeros(0)
+        bad = ~np.isfinite(cond) | (cond > _MAX_CONDITION)
+        if bad.any():
+            k = int(np.argmax(bad))
+            where = labels[k] if labels is not None else f"controller {k}"
+            raise NumericalError(
+                f"anti-windup gain at {where}: I + (T/2) Cd H has condition number "
+                f"{cond[k]:.3g} (A - H C has an eigenvalue near 2/T); change the sample time")
+        # Hd = T M H E^-1, i.e. solve E' Hd' = (T M H)'
+        Hd = np.swapaxes(np.linalg.solve(np.swapaxes(E, 1, 2), np.swapaxes(T * MH, 1, 2)), 1, 2)
+    if not np.isfinite(Hd).all():
+        k = int(np.argmax(~np.isfinite(Hd.reshape(M, -1)).all(axis=1)))
+        where = labels[k] if labels is not None else f"controller {k}"
+        raise NumericalError(f"anti-windup gain at {where} is not finite; check the controller "
+                             "and the sample time")
+    return Hd[0] if single else Hd

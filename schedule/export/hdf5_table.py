@@ -6,6 +6,7 @@ Layout (see docs/tables.md)::
     /breakpoints/<variable>   (n_k,) float64, attrs unit
     /inside           (M,) uint8
     /A (M, n, n)   /B (M, n, ny)   /C (M, nu, n)   /D (M, nu, ny)   float64
+    /H (M, n, nu)  float64, present when the metadata says "anti_windup": true
 """
 
 from __future__ import annotations
@@ -38,6 +39,8 @@ def write_hdf5_table(path: str | os.PathLike, table: ScheduledTable) -> Path:
             f["inside"] = np.asarray(table.inside, dtype=np.uint8)
             for k in MATRICES:
                 f[k] = np.asarray(getattr(table, k), dtype=float)
+            if table.H is not None:
+                f["H"] = np.asarray(table.H, dtype=float)
 
     return write_file_atomic(path, writer, "HDF5 table")
 
@@ -51,7 +54,12 @@ def read_hdf5_table(path: str | os.PathLike) -> ScheduledTable:
                 raise InputError(f"{path} is not a scheduled table (attribute 'format' should "
                                  f"be '{FORMAT_NAME}')")
             meta = json.loads(f.attrs["metadata"])
+            if not isinstance(meta, dict):
+                raise InputError(f"{path}: the 'metadata' attribute is not a JSON object; "
+                                 "re-export the table")
             mats = {k: f[k][()] for k in MATRICES}
+            if meta.get("anti_windup") is True:
+                mats["H"] = f["H"][()]
             inside = f["inside"][()] != 0
     except InputError:
         raise

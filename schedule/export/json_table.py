@@ -2,7 +2,8 @@
 
 Layout (see docs/tables.md): the keys of :meth:`ScheduledTable.metadata` plus
 ``"inside"`` (list of M booleans) and ``"A"``, ``"B"``, ``"C"``, ``"D"`` (lists of M
-matrices, each a list of rows), nodes in flat order (first variable slowest).
+matrices, each a list of rows; ``"H"`` too when ``"anti_windup"`` is true), nodes in
+flat order (first variable slowest).
 Floats round-trip exactly (shortest representation).
 """
 
@@ -23,6 +24,8 @@ def json_text(table: ScheduledTable) -> str:
     obj["inside"] = [bool(x) for x in table.inside]
     for k in MATRICES:
         obj[k] = getattr(table, k).tolist()
+    if table.H is not None:
+        obj["H"] = table.H.tolist()
     return json.dumps(obj, indent=1) + "\n"
 
 
@@ -45,8 +48,12 @@ def read_json_table(path: str | os.PathLike) -> ScheduledTable:
         n = int(obj["n_states"])
         ny, nu = len(obj["inputs"]), len(obj["outputs"])
         shapes = {"A": (n, n), "B": (n, ny), "C": (nu, n), "D": (nu, ny)}
+        if obj.get("anti_windup") is True:
+            if "H" not in obj:
+                raise KeyError("H")
+            shapes["H"] = (n, nu)
         mats = {k: np.asarray(obj[k], dtype=float).reshape((-1,) + shapes[k])
-                for k in MATRICES}
+                for k in shapes}
     except (KeyError, TypeError, ValueError) as exc:
         raise InputError(f"{path}: matrices do not fit the metadata ({exc}); re-export") \
             from None

@@ -19,10 +19,12 @@ point only changes the matrices, never the state (no reset, no bump).
 from __future__ import annotations
 
 import os
+from collections.abc import Mapping
 
 import numpy as np
 
 from ..errors import InputError
+from .antiwindup import ActuatorLimits, bumpless_state, limit_command
 from .table import ScheduledTable, validate_table
 
 
@@ -74,11 +76,42 @@ def corners(breakpoints, point) -> tuple[np.ndarray, np.ndarray]:
     return flat, weight
 
 
+def point_values(names, point) -> np.ndarray:
+    """Scheduling values in variable order from a mapping ``name -> value`` (the documented
+    way) or a sequence already in variable order."""
+    if isinstance(point, Mapping):
+        missing = [n for n in names if n not in point]
+        if missing:
+            raise InputError(f"scheduling point lacks {', '.join(missing)}; give every "
+                             f"variable of {', '.join(names)}")
+        unknown = [k for k in point if k not in names]
+        if unknown:
+            raise InputError(f"scheduling point names unknown variable {unknown[0]!r}; the "
+                             f"table's variables are {', '.join(names)}")
+        point = [point[n] for n in names]
+    try:
+        p = np.asarray(point, dtype=float).reshape(-1)
+    except (TypeError, ValueError):
+        raise InputError(f"scheduling point {point!r} is not numbers; give a mapping "
+                         f"{{name: value}} for {', '.join(names)}") from None
+    if p.shape != (len(names),):
+        raise InputError(f"scheduling point has {p.size} values; expected {len(names)} "
+                         f"({', '.join(names)})")
+    return p
+
+
 def interpolate_matrices(table: ScheduledTable, point) -> dict[str, np.ndarray]:
-    """The table's matrices at ``point`` by clamped multilinear interpolation."""
-    flat, weight = corners(table.breakpoints, point)
+    """The table's matrices at ``point`` by clamped multilinear interpolation.
+
+    ``point`` is a mapping ``variable name -> value`` (as for :meth:`TableController.step`);
+    a sequence in the table's variable order is accepted too. Returns ``"A"``, ``"B"``,
+    ``"C"``, ``"D"`` and, when the table carries it, the anti-windup gain ``"H"``.
+    """
+    p = point_values([v.name for v in table.variables], point)
+    flat, weight = corners(table.breakpoints, p)
     out = {}
-    for k in ("A", "B", "C", "D"):
+    keys = ("A", "B", "C", "D", "H") if table.H is not None else ("A", "B", "C", "D")
+    for k in keys:
         T = getattr(table, k)
         acc = np.zeros(T.shape[1:])
         for f, w in zip(flat, weight, strict=True):
@@ -87,13 +120,12 @@ def interpolate_matrices(table: ScheduledTable, point) -> dict[str, np.ndarray]:
     return out
 
 
-def _ordered_matvec(M1: np.ndarray, v1: np.ndarray, M2: np.ndarray, v2: np.ndarray):
-    """``M1 v1 + M2 v2`` summed column by column from zero (the C loop order)."""
-    s = np.zeros(M1.shape[0])
-    for j in range(v1.shape[0]):
-        s = s + M1[:, j] * v1[j]
-    for j in range(v2.shape[0]):
-        s = s + M2[:, j] * v2[j]
+def _ordered_matvec(*pairs) -> np.ndarray:
+    """``sum_k M_k v_k`` summed column by column from zero, pair after pair (the C loop order)."""
+    s = np.zeros(pairs[0][0].shape[0])
+    for M, v in pairs:
+        for j in range(v.shape[0]):
+            s = s + M[:, j] * v[j]
     return s
 
 
@@ -122,11 +154,19 @@ def read_table(path: str | os.PathLike) -> ScheduledTable:
 
 
 class TableController:
-    """A scheduled discrete controller stepped from a table.
+    """A scheduled discrete controller stepped from a table, with actuator limits.
 
     Parameters
     ----------
     table : ScheduledTable or path of a CSV / JSON / HDF5 table (discrete time).
+    anti_windup : feed the observer the limited command (default); False keeps the
+        linear controller's state update (the command is limited either way), which is
+        what a controller that does not know its drive saturates does.
+
+    Attributes
+    ----------
+    limits : :class:`~schedule.export.antiwindup.ActuatorLimits` applied to the command
+        (from the table; replace it to change them).
 
     Examples
     --------
@@ -135,7 +175,7 @@ class TableController:
     >>> u = ctl.step(y, {"rope_length": 12.0, "payload_mass": 8000.0})  # doctest: +SKIP
     """
 
-    def __init__(self, table: ScheduledTable | str | os.PathLike):
+    def __init__(self, table: ScheduledTable | str | os.PathLike, anti_windup: bool = True):
         if not isinstance(table, ScheduledTable):
             table = read_table(table)
         validate_table(table, "table")
@@ -144,7 +184,10 @@ class TableController:
                              "step it")
         self.table = table
         self.names = tuple(v.name for v in table.variables)
+        self.anti_windup = bool(anti_windup)
+        self.limits: ActuatorLimits = table.actuator_limits
         self._x = np.zeros(table.n_states)
+        self._u_last = np.zeros(table.n_outputs)
 
     @property
     def sample_time(self) -> float:
@@ -155,46 +198,85 @@ class TableController:
         """A copy of the controller state."""
         return self._x.copy()
 
-    def reset(self, x0=None) -> None:
-        """Set the state to ``x0`` (default zero)."""
-        n = self.table.n_states
-        if x0 is None:
-            self._x = np.zeros(n)
-            return
-        x0 = np.asarray(x0, dtype=float).reshape(-1)
-        if x0.shape != (n,) or not np.isfinite(x0).all():
-            raise InputError(f"initial state must hold {n} finite numbers, got shape "
-                             f"{x0.shape}")
-        self._x = x0.copy()
+    @property
+    def last_command(self) -> np.ndarray:
+        """A copy of the last command sent (after the limits)."""
+        return self._u_last.copy()
+
+    def reset(self, x0=None, u_last=None) -> None:
+        """Set the state to ``x0`` (default zero) and the last command to ``u_last``
+        (default zero, the trim; the rate limit starts from it)."""
+        n, nu = self.table.n_states, self.table.n_outputs
+        x = np.zeros(n) if x0 is None else self._finite(x0, n, "initial state")
+        u = np.zeros(nu) if u_last is None else self._finite(u_last, nu, "last command")
+        self._x, self._u_last = x, u
+
+    def reset_steady(self, y, u, point) -> None:
+        """Bumpless start: the state for switching in while ``y`` and the command ``u`` are
+        held (:func:`schedule.export.antiwindup.bumpless_state`); the next command is ``u``.
+
+        Raises
+        ------
+        InputError
+            Non-finite values, or a table without the anti-windup gain H.
+        NumericalError
+            The steady-state equations are singular at ``point``.
+        """
+        y = self._finite(y, self.table.n_inputs, "held measurement")
+        u = self._finite(u, self.table.n_outputs, "held command")
+        p = self._point(point)
+        if self.table.H is None:
+            raise InputError("this table has no anti-windup gain H (exported from a family "
+                             "without a fitting generalized plant), so it cannot start "
+                             "bumpless; use reset()")
+        m = interpolate_matrices(self.table, p)
+        self._x = bumpless_state(m["A"], m["B"], m["C"], m["D"], m["H"], y, u)
+        self._u_last = u.copy()
+
+    @staticmethod
+    def _finite(values, size: int, what: str) -> np.ndarray:
+        try:
+            v = np.asarray(values, dtype=float).reshape(-1)
+        except (TypeError, ValueError):
+            raise InputError(f"{what} must hold {size} finite numbers, got {values!r}") from None
+        if v.shape != (size,) or not np.isfinite(v).all():
+            raise InputError(f"{what} must hold {size} finite numbers, got shape {v.shape}"
+                             + ("" if v.shape != (size,) else " with NaN or inf"))
+        return v.copy()
 
     def _point(self, point) -> np.ndarray:
-        if isinstance(point, dict):
-            missing = [n for n in self.names if n not in point]
-            if missing:
-                raise InputError(f"scheduling point lacks {', '.join(missing)}; give every "
-                                 f"variable of {', '.join(self.names)}")
-            point = [point[n] for n in self.names]
-        p = np.asarray(point, dtype=float).reshape(-1)
-        if p.shape != (len(self.names),):
-            raise InputError(f"scheduling point has {p.size} values; expected "
-                             f"{len(self.names)} ({', '.join(self.names)})")
+        p = point_values(self.names, point)
+        if not np.isfinite(p).all():
+            raise InputError(f"scheduling point holds NaN or inf ({', '.join(self.names)} = "
+                             f"{', '.join(f'{x:g}' for x in p)}); the state is unchanged")
         return p
 
     def matrices(self, point) -> dict[str, np.ndarray]:
-        """The interpolated discrete matrices at ``point`` (clamped to the table)."""
-        return interpolate_matrices(self.table, self._point(point))
+        """The interpolated discrete matrices at ``point`` (clamped to the table; NaN goes
+        to the first breakpoint, as in the C lookup)."""
+        return interpolate_matrices(self.table, point_values(self.names, point))
 
     def step(self, y, point) -> np.ndarray:
-        """One sample: ``u = Cm x + Dm y``, then ``x <- Am x + Bm y``; returns u.
+        """One sample; returns the command sent (after the limits).
 
-        ``y`` holds the controller inputs (measured minus reference/trim) in the table's
-        input order; ``point`` is a dict by name or a sequence in variable order.
+        ``u = Cm x + Dm y``; ``u_lim`` = ``u`` limited in rate and magnitude; then
+        ``x <- Am x + Bm y + Hm (u_lim - u)`` (the last term only with anti-windup and when
+        a limit acted). ``y`` holds the controller inputs (measured minus reference/trim)
+        in the table's input order; ``point`` is a mapping by name (or a sequence in
+        variable order). Non-finite ``y`` or ``point`` raise InputError and leave the state
+        unchanged (the C step returns an error code in the same case).
         """
         y = np.asarray(y, dtype=float).reshape(-1)
         if y.shape != (self.table.n_inputs,) or not np.isfinite(y).all():
             raise InputError(f"controller input must hold {self.table.n_inputs} finite "
-                             f"numbers ({', '.join(self.table.measured_names)}), got {y}")
-        m = self.matrices(point)
-        u = _ordered_matvec(m["C"], self._x, m["D"], y)
-        self._x = _ordered_matvec(m["A"], self._x, m["B"], y)
-        return u
+                             f"numbers ({', '.join(self.table.measured_names)}), got {y}; "
+                             "the state is unchanged")
+        m = interpolate_matrices(self.table, self._point(point))
+        u = _ordered_matvec((m["C"], self._x), (m["D"], y))
+        u_lim = limit_command(u, self._u_last, self.limits, self.table.sample_time)
+        pairs = [(m["A"], self._x), (m["B"], y)]
+        if self.anti_windup and "H" in m and np.any(u_lim != u):
+            pairs.append((m["H"], u_lim - u))
+        self._x = _ordered_matvec(*pairs)
+        self._u_last = u_lim
+        return u_lim.copy()

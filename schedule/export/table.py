@@ -23,18 +23,22 @@ import hashlib
 import math
 import os
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, NumericalError
 from ..types import Family, SchedulingVariable
-from .discretize import discretize
+from .antiwindup import ActuatorLimits, observer_input_gain, saturated_dynamics_radius
+from .discretize import discretize, discretize_gain
 
 FORMAT_NAME = "schedule-table"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+#: table format versions this tool reads (1: no limits, no anti-windup gain)
+READABLE_VERSIONS = (1, 2)
 MATRICES = ("A", "B", "C", "D")
+PLANT_INPUTS = ("B2", "D22")
 
 
 @dataclass(frozen=True)
@@ -56,6 +60,9 @@ class ScheduledTable:
     measured_units, control_units : units of those signals ("" when unknown).
     source_sha256 : SHA-256 of the family file the table came from ("" if in memory).
     tool_version : version of this package that wrote the table.
+    H : (M, n, nu) anti-windup gain (``x <- ... + H (u_lim - u)``, see
+        :mod:`schedule.export.antiwindup`), or None when the family gives none.
+    limits : actuator limits on the controller outputs (None: no limits).
     """
 
     variables: tuple[SchedulingVariable, ...]
@@ -76,6 +83,8 @@ class ScheduledTable:
     source_sha256: str = ""
     tool_version: str = ""
     extra: dict = field(default_factory=dict)
+    H: np.ndarray | None = None
+    limits: ActuatorLimits | None = None
 
     @property
     def shape(self) -> tuple[int, ...]:
@@ -99,6 +108,16 @@ class ScheduledTable:
     @property
     def discrete(self) -> bool:
         return self.sample_time > 0
+
+    @property
+    def actuator_limits(self) -> ActuatorLimits:
+        """The limits, with ``inf`` where a control has none."""
+        return self.limits if self.limits is not None else ActuatorLimits.none(self.n_outputs)
+
+    @property
+    def anti_windup(self) -> bool:
+        """True when the table carries the anti-windup gain H."""
+        return self.H is not None
 
     def nodes(self) -> np.ndarray:
         """(M, d) scheduling values of the nodes, in flat (C) order."""
@@ -126,6 +145,8 @@ class ScheduledTable:
                         zip(self.control_names, _units(self.control_units,
                                                        self.control_names), strict=True)],
             "n_states": self.n_states,
+            "limits": self.actuator_limits.to_metadata(self.control_names),
+            "anti_windup": self.anti_windup,
         }
 
 
@@ -145,10 +166,11 @@ def table_from_metadata(meta: dict, mats: dict, inside, where: str) -> Scheduled
         if meta.get("format") != FORMAT_NAME:
             raise InputError(f"{where} is not a scheduled table (format should be "
                              f"'{FORMAT_NAME}'); export it with `schedule export`")
-        version = int(meta.get("format_version", -1))
-        if version != FORMAT_VERSION:
-            raise InputError(f"{where} has table format version {version}; this tool reads "
-                             f"version {FORMAT_VERSION}")
+        version = meta.get("format_version", -1)
+        if isinstance(version, bool) or not isinstance(version, int) \
+                or version not in READABLE_VERSIONS:
+            raise InputError(f"{where} has table format version {version!r}; this tool reads "
+                             f"versions {', '.join(map(str, READABLE_VERSIONS))}")
         variables = tuple(SchedulingVariable(str(v["name"]), str(v["unit"]), float(v["lower"]),
                                              float(v["upper"])) for v in meta["variables"])
         bps = tuple(np.asarray(b, dtype=float) for b in meta["breakpoints"])
@@ -166,7 +188,15 @@ def table_from_metadata(meta: dict, mats: dict, inside, where: str) -> Scheduled
             measured_units=tuple(str(s.get("unit", "")) for s in meta["inputs"]),
             control_units=tuple(str(s.get("unit", "")) for s in meta["outputs"]),
             source_sha256=str(meta.get("source_sha256", "")),
-            tool_version=str(meta.get("tool_version", "")))
+            tool_version=str(meta.get("tool_version", "")),
+            H=None if mats.get("H") is None else np.asarray(mats["H"], dtype=float))
+        if version >= 2:
+            limits = ActuatorLimits.from_metadata(meta.get("limits"), table.control_names, where)
+            if bool(meta.get("anti_windup")) != (table.H is not None):
+                raise InputError(f"{where}: metadata says anti_windup = "
+                                 f"{bool(meta.get('anti_windup'))} but the gain H is "
+                                 f"{'absent' if table.H is None else 'present'}; re-export")
+            table = replace(table, limits=limits if limits.any else None)
     except InputError:
         raise
     except (KeyError, TypeError, ValueError) as exc:
@@ -201,6 +231,11 @@ def validate_table(table: ScheduledTable, where: str = "table") -> None:
             raise InputError(f"{where}: {name} holds NaN or inf; re-export the table")
     if not np.isfinite(A).all():
         raise InputError(f"{where}: A holds NaN or inf; re-export the table")
+    if table.H is not None:
+        if table.H.shape != (M, n, nu):
+            raise InputError(f"{where}: H has shape {table.H.shape}, expected {(M, n, nu)}")
+        if not np.isfinite(table.H).all():
+            raise InputError(f"{where}: H holds NaN or inf; re-export the table")
     if table.inside.shape != (M,):
         raise InputError(f"{where}: inside mask has shape {table.inside.shape}, expected ({M},)")
     if len(table.measured_names) != ny or len(table.control_names) != nu:
@@ -212,6 +247,8 @@ def validate_table(table: ScheduledTable, where: str = "table") -> None:
     if (table.method == "continuous") != (table.sample_time == 0):
         raise InputError(f"{where}: method {table.method!r} does not fit sample time "
                          f"{table.sample_time:g}")
+    if table.limits is not None:
+        table.limits.validate(where, table.control_names)
 
 
 # --------------------------------------------------------------------------- breakpoints
@@ -323,6 +360,54 @@ def _evaluate_interpolant(family: Family, nodes: np.ndarray) -> dict[str, np.nda
     return {k: np.asarray(vals[k], dtype=float) for k in MATRICES}
 
 
+def _plant_inputs_at(family: Family, nodes: np.ndarray) -> dict[str, np.ndarray]:
+    """The interpolated generalized plant's B2 and D22 at ``nodes`` (for the anti-windup gain)."""
+    from ..interpolate import ScheduledController
+
+    plant = ScheduledController.from_family(family).plant_at(np.asarray(nodes, dtype=float))
+    return {k: np.asarray(plant[k], dtype=float) for k in PLANT_INPUTS}
+
+
+def _fitting_plant(family: Family, n: int, ny: int, nu: int) -> dict[str, np.ndarray] | None:
+    """The family's B2 (N, n, nu) and D22 (N, ny, nu) if they fit the controllers, else None."""
+    plant = family.plant or {}
+    N = np.asarray(family.points).shape[0]
+    want = {"B2": (N, n, nu), "D22": (N, ny, nu)}
+    got = {k: np.asarray(plant[k], dtype=float) for k in PLANT_INPUTS if k in plant}
+    if len(got) != 2 or any(got[k].shape != want[k] for k in PLANT_INPUTS):
+        return None
+    return got
+
+
+def _anti_windup_gain(table: ScheduledTable, H: np.ndarray | None, continuous: dict,
+                      labels, limits_given: bool) -> tuple[np.ndarray | None, str]:
+    """Discretize the anti-windup gain like the table and check the limited dynamics.
+
+    Returns ``(H, note)``: H None with a reason when the family gives no usable gain.
+    A limited-operation state matrix ``A - H C`` that is not stable at some node is an
+    error when limits are given, otherwise the gain is dropped with the reason.
+    """
+    if H is None:
+        return None, ("the family holds no generalized plant that fits its controllers, so "
+                      "the table carries no anti-windup gain")
+    if table.discrete:
+        H = discretize_gain(continuous["A"], continuous["C"], H, table.sample_time,
+                            table.method, table.prewarp, labels=labels)
+    radius = saturated_dynamics_radius(table.A, table.C, H, table.discrete)
+    bound = 1.0 if table.discrete else 0.0
+    bad = ~(radius < bound)
+    if bad.any():
+        j = int(np.argmax(np.where(bad, radius, -np.inf)))
+        what = "spectral radius" if table.discrete else "spectral abscissa"
+        reason = (f"the controller limited at {labels[j]} would be unstable (A - H C has "
+                  f"{what} {radius[j]:.6g})")
+        if limits_given:
+            raise NumericalError(f"{reason}; the observer-form anti-windup does not apply "
+                                 "there: check the design or drop the [[limits]]")
+        return None, reason
+    return H, ""
+
+
 def _match_index(values: np.ndarray, design: np.ndarray) -> np.ndarray:
     """Index into ``design`` of each value (relative match 1e-12), -1 where none."""
     out = np.full(values.shape, -1, dtype=int)
@@ -336,7 +421,7 @@ def _match_index(values: np.ndarray, design: np.ndarray) -> np.ndarray:
 
 def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
                 method: str = "tustin", prewarp: float = 0.0, source_sha256: str = "",
-                tool_version: str | None = None) -> ScheduledTable:
+                tool_version: str | None = None, limits=None) -> ScheduledTable:
     """Build the scheduled table of ``family``.
 
     Parameters
@@ -349,6 +434,13 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
     sample_time : 0 for a continuous table, else T > 0 seconds.
     method, prewarp : discretization (see :func:`schedule.export.discretize.discretize`).
     source_sha256 : hash of the family file, stored in the metadata.
+    limits : actuator limits of the controls: ``[[limits]]`` entries of the design file
+        (:class:`schedule.design_file.LimitSpec`), a mapping ``control -> (lower, upper,
+        rate)``, an :class:`~schedule.export.antiwindup.ActuatorLimits` or None.
+
+    The table also carries the anti-windup gain H at every node (from the family's
+    generalized plant, :func:`schedule.export.antiwindup.observer_input_gain`), so the
+    exported controller can feed its observer the limited command.
 
     Raises
     ------
@@ -397,6 +489,12 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
     n, ny, nu = ctrl["A"].shape[1], ctrl["B"].shape[2], ctrl["C"].shape[1]
     mats = {"A": np.zeros((M, n, n)), "B": np.zeros((M, n, ny)),
             "C": np.zeros((M, nu, n)), "D": np.zeros((M, nu, ny))}
+    plant = _fitting_plant(family, n, ny, nu)
+    if plant is not None:
+        # the plant's B2 and D22 travel with the controllers: the anti-windup gain needs them
+        ctrl.update(plant)
+        mats.update({"B2": np.zeros((M, n, nu)), "D22": np.zeros((M, ny, nu))})
+    keys = tuple(mats)
     have = np.zeros(M, dtype=bool)
     inside = np.ones(M, dtype=bool)
 
@@ -412,7 +510,7 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
             key = tuple(int(match[a][node_idx[j, a]]) for a in range(d))
             k = lookup.get(key, None) if min(key) >= 0 else None
             if k is not None:
-                for name in MATRICES:
+                for name in keys:
                     mats[name][j] = ctrl[name][k]
                 have[j] = True
     else:
@@ -425,13 +523,15 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
             dist = np.max(np.abs(points[ok] - nodes[j]) / scale, axis=1)
             k = int(np.argmin(dist))
             if dist[k] <= 1e-12:
-                for name in MATRICES:
+                for name in keys:
                     mats[name][j] = ctrl[name][np.flatnonzero(ok)[k]]
                 have[j] = True
     todo = np.flatnonzero(~have & inside)
     if todo.size:
         vals = _evaluate_interpolant(family, nodes[todo])
-        for name in MATRICES:
+        if plant is not None:
+            vals.update(_plant_inputs_at(family, nodes[todo]))
+        for name in keys:
             arr = vals[name].reshape((todo.size,) + mats[name].shape[1:])
             bad = ~np.isfinite(arr.reshape(todo.size, -1)).all(axis=1)
             if bad.any():
@@ -447,11 +547,14 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
         for j in np.flatnonzero(~inside):
             k = idx_in[int(np.argmin(np.sum(((nodes[idx_in] - nodes[j]) / scale) ** 2,
                                             axis=1)))]
-            for name in MATRICES:
+            for name in keys:
                 mats[name][j] = mats[name][k]
 
+    continuous = {k: mats[k] for k in MATRICES}
+    H = None if plant is None else observer_input_gain(mats["B2"], mats["D22"], mats["B"],
+                                                       mats["D"])
+    labels = [_node_label(variables, row) for row in nodes]
     if sample_time:
-        labels = [_node_label(variables, row) for row in nodes]
         disc = discretize(mats["A"], mats["B"], mats["C"], mats["D"], sample_time, method,
                           prewarp, labels=labels)
         mats = dict(zip(MATRICES, disc, strict=True))
@@ -472,7 +575,14 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
         control_units=tuple(str(units.get(s, "")) for s in family.control_names),
         source_sha256=source_sha256,
         tool_version=__version__ if tool_version is None else tool_version,
-        **mats)
+        **{k: mats[k] for k in MATRICES})
+    if isinstance(limits, ActuatorLimits):
+        limits.validate("limits", table.control_names)
+    else:
+        limits = ActuatorLimits.from_specs(table.control_names, limits)
+    H, note = _anti_windup_gain(table, H, continuous, labels, limits.any)
+    extra = {"anti_windup_note": note} if note else {}
+    table = replace(table, H=H, limits=limits if limits.any else None, extra=extra)
     validate_table(table, "table")
     return table
 
