@@ -26,7 +26,8 @@ from .table import ScheduledTable, build_table, file_sha256, parse_breakpoints
 FORMATS = ("csv", "json", "hdf5", "c", "fmu")
 
 __all__ = ["FORMATS", "ActuatorLimits", "ScheduledTable", "TableController", "build_table",
-           "c_source_text", "discretize", "file_sha256", "interpolate_matrices", "parse_breakpoints",
+           "c_source_text", "discretize", "file_sha256", "interpolate_matrices",
+           "parse_breakpoints",
            "read_csv_table", "read_hdf5_table", "read_json_table", "read_table",
            "write_c_source", "write_csv_table", "write_hdf5_table", "write_json_table",
            "write_fmu", "write_table"]

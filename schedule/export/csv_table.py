@@ -8,7 +8,8 @@ Layout (see docs/tables.md)::
 
 The ``H`` columns (anti-windup gain) are present when the metadata says
 ``"anti_windup": true``. Rows follow the flat node order (first variable slowest).
-Numbers are written with Python's shortest round-trip representation, so reading gives the same doubles.
+Numbers are written with Python's shortest round-trip representation, so reading gives
+the same doubles.
 """
 
 from __future__ import annotations
