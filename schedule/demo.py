@@ -3,7 +3,8 @@
 :func:`run_demo` designs the crane family at a common gamma (with the
 interpolant chosen by leave-one-out evidence), checks it at in-between points
 against the crane model, writes the report, exports the scheduled tables
-(CSV, JSON, C99), simulates the nonlinear crane under the exported discrete
+(CSV, JSON, C99 and an FMI 2.0 co-simulation unit, with the drive's 90 kN limit
+and the anti-windup gain), simulates the nonlinear crane under the exported discrete
 controller while hoisting and travelling, and returns a short summary.
 
 The crane is an invented scenario (see ``operating_points/README.md``). A
@@ -35,6 +36,7 @@ REPORT_DIR = "report"
 TABLE_DIR = "tables"
 SIMULATION_DIR = "simulation"
 SUMMARY_FILE = "summary.json"
+FMU_FILE = "crane_table.fmu"  # the stem is the FMI model identifier: a C identifier
 
 
 @dataclass
@@ -71,7 +73,7 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     from .atomic import write_dir_atomic
     from .check import CheckSettings, check_family
     from .design_file import load_design
-    from .export import build_table, file_sha256, write_table
+    from .export import build_table, file_sha256, write_fmu, write_table
     from .family import design_family
     from .report import write_report
     from .simulate import crane_trajectory, result_csv, result_plots, simulate
@@ -101,13 +103,16 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
 
     announce("export")
     table = build_table(family, sample_time=spec.export.sample_time, method=spec.export.method,
-                        prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path))
+                        prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path),
+                        limits=spec.limits)
     tables = out / TABLE_DIR
     tables.mkdir(exist_ok=True)
     files["csv"] = write_table(table, "csv", tables / "crane-table.csv")[0]
     files["json"] = write_table(table, "json", tables / "crane-table.json")[0]
     c_files = write_table(table, "c", tables / "c", prefix="crane")
     files["c_header"], files["c_source"] = sorted(c_files, key=lambda p: p.suffix != ".h")
+    fmu = write_fmu(tables / FMU_FILE, table)
+    files["fmu"] = fmu.path
 
     announce("simulate")
     from .export import TableController
@@ -123,6 +128,7 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
 
     summary = _summary(family, result, sim.summary(), names, units, files, out,
                        time.perf_counter() - t0)
+    summary["fmu"] = {"platform": fmu.platform, "note": fmu.note}
     summary_path = out / SUMMARY_FILE
     summary_path.write_text(json.dumps(summary, indent=1, default=str) + "\n")
     files["summary"] = summary_path
@@ -194,7 +200,9 @@ def _lines(s: dict) -> list[str]:
     lines += [
         f"family file           {s['files']['family']}",
         f"report                {s['files']['report']}",
-        f"tables                {Path(s['files']['csv']).parent} (CSV, JSON, c/)",
+        f"tables                {Path(s['files']['csv']).parent} (CSV, JSON, c/, FMU"
+        + (f" for {s['fmu']['platform']})" if s.get("fmu", {}).get("platform") else
+           ", source only)"),
         f"simulation            {s['files']['simulation']}",
         f"done in {s['seconds']:.0f} s. {CAUTION}",
     ]

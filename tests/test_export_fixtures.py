@@ -25,8 +25,13 @@ def controller_at(p: np.ndarray, n: int = 3, ny: int = 2, nu: int = 1, seed: int
 
 
 def make_family(breakpoints=((3.0, 10.0, 30.0), (2000.0, 20000.0)), n=3, ny=2, nu=1,
-                failed=(), scattered_points=None) -> Family:
-    """A rectangular (or, with ``scattered_points``, scattered) family of analytic controllers."""
+                failed=(), scattered_points=None, with_plant=False) -> Family:
+    """A rectangular (or, with ``scattered_points``, scattered) family of analytic controllers.
+
+    With ``with_plant`` the family also holds a generalized plant whose B2 (small, so that
+    A - B2 C stays stable) and D22 (zero) fit the controllers: the table then carries the
+    anti-windup gain H = B2.
+    """
     names = ("rope_length", "payload_mass", "wind")[: len(breakpoints)]
     units = ("m", "kg", "m/s")[: len(breakpoints)]
     if scattered_points is None:
@@ -50,6 +55,13 @@ def make_family(breakpoints=((3.0, 10.0, 30.0), (2000.0, 20000.0)), n=3, ny=2, n
     controller = {k: np.stack([m[i] for m in mats]) for i, k in enumerate("ABCD")}
     plant = {k: np.zeros((N, 1, 1)) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12",
                                                "D21", "D22")}
+    if with_plant:
+        rng = np.random.default_rng(11)
+        plant.update({"A": np.zeros((N, n, n)), "B1": np.zeros((N, n, 1)),
+                      "B2": np.repeat(0.1 * rng.standard_normal((1, n, nu)), N, axis=0),
+                      "C1": np.zeros((N, 1, n)), "C2": np.zeros((N, ny, n)),
+                      "D11": np.zeros((N, 1, 1)), "D12": np.zeros((N, 1, nu)),
+                      "D21": np.zeros((N, ny, 1)), "D22": np.zeros((N, ny, nu))})
     return Family(
         variables=variables, points=points, status=status.astype(str),
         reasons=tuple("" if s == "ok" else "synthetic failure" for s in status),

@@ -31,19 +31,26 @@ CC = shutil.which("cc") or shutil.which("gcc")
 
 
 def _table(**kw):
-    fam_kw = {k: kw.pop(k) for k in ("breakpoints", "n", "ny", "nu") if k in kw}
+    fam_kw = {k: kw.pop(k) for k in ("breakpoints", "n", "ny", "nu", "with_plant") if k in kw}
     return build_table(make_family(**fam_kw), sample_time=kw.pop("sample_time", 0.05),
                        method=kw.pop("method", "tustin"), source_sha256="ab" * 32, **kw)
 
 
 @pytest.mark.parametrize("fmt,name", [("csv", "t.csv"), ("json", "t.json"), ("hdf5", "t.h5")])
-def test_round_trip_is_exact(tmp_path, fmt, name):
-    tab = _table()
+@pytest.mark.parametrize("limited", [False, True])
+def test_round_trip_is_exact(tmp_path, fmt, name, limited):
+    tab = _table(with_plant=True, limits={"act0": (-0.3, 0.5, 2.0)}) if limited else _table()
+    assert (tab.H is not None) == limited
     out = tmp_path / name
     write_table(tab, fmt, out)
     back = read_table(out)
-    for k in "ABCD":
+    for k in "ABCDH" if limited else "ABCD":
         np.testing.assert_array_equal(getattr(back, k), getattr(tab, k))
+    if limited:
+        for k in ("lower", "upper", "rate"):
+            np.testing.assert_array_equal(getattr(back.limits, k), getattr(tab.limits, k))
+        assert back.metadata()["limits"] == [{"name": "act0", "lower": -0.3, "upper": 0.5,
+                                              "rate": 2.0}]
     for b1, b2 in zip(back.breakpoints, tab.breakpoints, strict=True):
         np.testing.assert_array_equal(b1, b2)
     np.testing.assert_array_equal(back.inside, tab.inside)
@@ -131,6 +138,17 @@ def test_c_folder_is_replaced_atomically_and_never_clobbers_user_files(tmp_path)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["ctab"]
 
 
+def c_state_type(tab):
+    """The ctypes mirror of ``<prefix>_state`` (docs/tables.md, C99)."""
+    n, nu = max(tab.n_states, 1), tab.n_outputs
+
+    class State(ctypes.Structure):
+        _fields_ = [("x", ctypes.c_double * n), ("u_last", ctypes.c_double * nu),
+                    ("lower", ctypes.c_double * nu), ("upper", ctypes.c_double * nu),
+                    ("rate", ctypes.c_double * nu), ("anti_windup", ctypes.c_int)]
+    return State
+
+
 def _compile(tmp_path, tab, prefix):
     out = tmp_path / f"c_{prefix}"
     write_table(tab, "c", out, prefix=prefix)
@@ -140,30 +158,38 @@ def _compile(tmp_path, tab, prefix):
     res = subprocess.run(cmd, capture_output=True, text=True)
     assert res.returncode == 0, res.stderr
     so = ctypes.CDLL(str(lib))
-    n = max(tab.n_states, 1)
-
-    class State(ctypes.Structure):
-        _fields_ = [("x", ctypes.c_double * n)]
-
+    State = c_state_type(tab)
     dp = ctypes.POINTER(ctypes.c_double)
-    getattr(so, f"{prefix}_init").argtypes = [ctypes.POINTER(State), dp]
-    getattr(so, f"{prefix}_step").argtypes = [ctypes.POINTER(State), dp, dp, dp]
+    sp = ctypes.POINTER(State)
+    getattr(so, f"{prefix}_init").argtypes = [sp, dp]
+    getattr(so, f"{prefix}_init_steady").argtypes = [sp, dp, dp, dp]
+    getattr(so, f"{prefix}_step").argtypes = [sp, dp, dp, dp]
     getattr(so, f"{prefix}_lookup").argtypes = [dp, dp, dp, dp, dp]
+    getattr(so, f"{prefix}_lookup_gain").argtypes = [dp, dp]
     return so, State
 
 
 def _ptr(a):
-    return a.ctypes.data_as(ctypes.POINTER(ctypes.c_double))
+    if a is None:
+        return None
+    return np.ascontiguousarray(a, dtype=float).ctypes.data_as(ctypes.POINTER(ctypes.c_double))
+
+
+C_CASES = [
+    dict(breakpoints=((3.0, 10.0, 30.0), (2000.0, 20000.0)), method="tustin"),
+    dict(breakpoints=((3.0, 6.0, 10.0, 20.0, 30.0),), n=2, ny=1, nu=2, method="zoh",
+         with_plant=True, limits={"act0": (-0.5, 0.8, 3.0), "act1": (-0.3, 0.3, float("inf"))}),
+    dict(breakpoints=((0.0, 1.0), (5.0,), (-1.0, 0.0, 2.0)), n=4, ny=3, nu=2, method="tustin",
+         prewarp=3.0, with_plant=True, limits={"act1": (-0.4, 0.2, 2.0)}),
+]
 
 
 @pytest.mark.skipif(CC is None, reason="no C compiler")
-@pytest.mark.parametrize("case", [
-    dict(breakpoints=((3.0, 10.0, 30.0), (2000.0, 20000.0)), method="tustin"),
-    dict(breakpoints=((3.0, 6.0, 10.0, 20.0, 30.0),), n=2, ny=1, nu=2, method="zoh"),
-    dict(breakpoints=((0.0, 1.0), (5.0,), (-1.0, 0.0, 2.0)), n=4, ny=3, nu=2, method="tustin",
-         prewarp=3.0),
-])
+@pytest.mark.parametrize("case", C_CASES)
 def test_c_matches_python_runtime(tmp_path, case):
+    # Reference: the Python runtime, itself checked against scipy.signal.dlsim and against
+    # the scipy reference loop of tests/test_antiwindup.py. Limits that act often (the
+    # second and third cases) exercise the limiter and the anti-windup path in both.
     tab = _table(**case)
     prefix = "tab"
     so, State = _compile(tmp_path, tab, prefix)
@@ -176,32 +202,98 @@ def test_c_matches_python_runtime(tmp_path, case):
     x0 = rng.standard_normal(tab.n_states)
     py.reset(x0)
     st = State()
-    getattr(so, f"{prefix}_init")(ctypes.byref(st), _ptr(np.ascontiguousarray(x0)))
+    getattr(so, f"{prefix}_init")(ctypes.byref(st), _ptr(x0))
+    assert st.anti_windup == int(tab.H is not None)
     # random walk of the scheduling point that leaves the table's range (clamping) at times
     p = lo + 0.5 * (hi - lo)
     u_c = np.zeros(tab.n_outputs)
-    worst = 0.0
+    worst, limited = 0.0, 0
     for k in range(400):
         p = p + rng.normal(0, 0.08, d) * span
         if k % 97 == 0:
             p = rng.uniform(lo - 0.3 * span, hi + 0.3 * span)
         y = rng.standard_normal(tab.n_inputs)
         u_py = py.step(y, p)
-        getattr(so, f"{prefix}_step")(ctypes.byref(st), _ptr(np.ascontiguousarray(y)),
-                                      _ptr(np.ascontiguousarray(p, dtype=float)), _ptr(u_c))
+        rc = getattr(so, f"{prefix}_step")(ctypes.byref(st), _ptr(y), _ptr(p),
+                                           u_c.ctypes.data_as(ctypes.POINTER(ctypes.c_double)))
+        assert rc == 0
         x_c = np.array(st.x[: tab.n_states])
         scale = max(1.0, np.max(np.abs(u_py)))
         worst = max(worst, np.max(np.abs(u_c - u_py)) / scale)
+        limited += int(np.any(np.abs(u_py) >= np.abs(tab.actuator_limits.upper).min()))
         np.testing.assert_allclose(x_c, py.state, rtol=1e-12, atol=1e-12)
+        np.testing.assert_array_equal(np.array(st.u_last[:]), py.last_command)
     assert worst <= 1e-12
+    if tab.limits is not None:
+        assert limited > 20  # the limiter really acted
     # the lookup alone, at nodes, midpoints and outside the range
     mats = {k: np.zeros(getattr(tab, k).shape[1:]) for k in "ABCD"}
+    H = np.zeros((tab.n_states, tab.n_outputs))
     for p in list(tab.nodes()) + [lo - 1.0, hi + 1.0, (lo + hi) / 2.0]:
         p = np.ascontiguousarray(p, dtype=float)
-        getattr(so, f"{prefix}_lookup")(_ptr(p), *(_ptr(mats[k]) for k in "ABCD"))
+        getattr(so, f"{prefix}_lookup")(_ptr(p), *(mats[k].ctypes.data_as(
+            ctypes.POINTER(ctypes.c_double)) for k in "ABCD"))
+        getattr(so, f"{prefix}_lookup_gain")(_ptr(p), H.ctypes.data_as(
+            ctypes.POINTER(ctypes.c_double)))
         ref = py.matrices(p)
         for k in "ABCD":
             np.testing.assert_allclose(mats[k], ref[k], rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(H, ref.get("H", np.zeros_like(H)), rtol=1e-12, atol=1e-14)
+
+
+@pytest.mark.skipif(CC is None, reason="no C compiler")
+def test_c_lookup_is_null_safe_and_step_rejects_non_finite_input(tmp_path):
+    # The header says any matrix argument may be NULL; issue 12: a NaN measurement or
+    # scheduling value is refused with a return code and leaves the state unchanged, as
+    # the Python runtime raises and leaves its state unchanged.
+    tab = _table(with_plant=True, limits={"act0": (-0.2, 0.2, 1.0)})
+    so, State = _compile(tmp_path, tab, "nul")
+    p = np.array([12.0, 8000.0])
+    A = np.zeros((tab.n_states, tab.n_states))
+    so.nul_lookup(_ptr(p), A.ctypes.data_as(ctypes.POINTER(ctypes.c_double)), None, None, None)
+    np.testing.assert_allclose(A, TableController(tab).matrices(p)["A"], rtol=1e-12)
+    so.nul_lookup(_ptr(p), None, None, None, None)
+    so.nul_lookup_gain(_ptr(p), None)
+    st, py = State(), TableController(tab)
+    so.nul_init(ctypes.byref(st), None)
+    u = np.zeros(1)
+    up = u.ctypes.data_as(ctypes.POINTER(ctypes.c_double))
+    for _ in range(5):
+        y = np.array([0.3, -0.1])
+        assert so.nul_step(ctypes.byref(st), _ptr(y), _ptr(p), up) == 0
+        py.step(y, p)
+    before = bytes(st)
+    for y, q, code in (([np.nan, 0.0], p, 1), ([np.inf, 0.0], p, 1),
+                       ([0.1, 0.0], [np.nan, 8000.0], 2), ([0.1, 0.0], [12.0, -np.inf], 2)):
+        u[:] = 7.0
+        assert so.nul_step(ctypes.byref(st), _ptr(y), _ptr(q), up) == code
+        assert bytes(st) == before and u[0] == 7.0  # nothing written, nothing changed
+        x_py = py.state
+        with pytest.raises(InputError, match="unchanged"):
+            py.step(y, q)
+        np.testing.assert_array_equal(py.state, x_py)
+    np.testing.assert_allclose(np.array(st.x[:tab.n_states]), py.state, rtol=1e-12, atol=1e-14)
+
+
+@pytest.mark.skipif(CC is None, reason="no C compiler")
+def test_c_bumpless_start_matches_python(tmp_path):
+    # Reference: schedule.export.antiwindup.bumpless_state (numpy solves); the C solves
+    # with its own Gaussian elimination, so agreement is to rounding (1e-9 relative).
+    tab = _table(with_plant=True, n=4, ny=2, nu=1, limits={"act0": (-5.0, 5.0, 50.0)})
+    so, State = _compile(tmp_path, tab, "bump")
+    p, y0, u0 = np.array([7.0, 15000.0]), np.array([0.4, -0.2]), np.array([0.7])
+    st, py = State(), TableController(tab)
+    assert so.bump_init_steady(ctypes.byref(st), _ptr(y0), _ptr(u0), _ptr(p)) == 0
+    py.reset_steady(y0, u0, p)
+    np.testing.assert_allclose(np.array(st.x[:4]), py.state, rtol=1e-9, atol=1e-12)
+    assert st.u_last[0] == 0.7
+    u = np.zeros(1)
+    so.bump_step(ctypes.byref(st), _ptr(y0), _ptr(p), u.ctypes.data_as(
+        ctypes.POINTER(ctypes.c_double)))
+    np.testing.assert_allclose(u, u0, rtol=1e-9)  # no jump at switch-in
+    assert so.bump_init_steady(ctypes.byref(st), _ptr([np.nan, 0.0]), _ptr(u0), _ptr(p)) == 1
+    assert so.bump_init_steady(ctypes.byref(st), _ptr(y0), _ptr([np.inf]), _ptr(p)) == 3
+    assert so.bump_init_steady(ctypes.byref(st), _ptr(y0), _ptr(u0), _ptr([np.nan, 1.0])) == 2
 
 
 @pytest.mark.skipif(CC is None, reason="no C compiler")
