@@ -112,6 +112,15 @@ def test_tables_load_with_general_readers(demo_run):
     assert (tables / "c" / "crane_table.h").exists()
 
 
+def test_demo_writes_a_valid_fmu(demo_run):
+    # Reference: fmpy's validation (an independent FMI importer) finds no problem.
+    fmpy_validation = pytest.importorskip("fmpy.validation")
+    out, text = demo_run
+    fmu = out / "tables" / "crane_table.fmu"
+    assert fmpy_validation.validate_fmu(str(fmu)) == []
+    assert "FMU" in text
+
+
 @pytest.mark.skipif(shutil.which("cc") is None, reason="no system C compiler")
 def test_exported_c_compiles(demo_run, tmp_path):
     out, _ = demo_run

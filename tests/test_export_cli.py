@@ -113,3 +113,9 @@ def test_exported_table_reproduces_family_controllers(tmp_path, family_file):
     fam = make_family()
     for k in "ABCD":
         np.testing.assert_array_equal(getattr(tab, k), fam.controller[k])
+
+
+def test_cli_format_list_is_the_library_list():
+    from schedule.cli.export import _FORMATS
+    from schedule.export import FORMATS
+    assert _FORMATS == FORMATS

@@ -90,3 +90,27 @@ def test_runtime_errors():
         ctl.step([1.0, 0.0], [5.0])
     with pytest.raises(InputError, match="initial state"):
         ctl.reset([1.0])
+
+
+def test_interpolate_matrices_takes_a_mapping():
+    # Issue 13: the same point by name (documented) and as a sequence in variable order.
+    from schedule.export import interpolate_matrices
+    tab = _ctl().table
+    by_name = interpolate_matrices(tab, {"payload_mass": 9000.0, "rope_length": 6.5})
+    by_order = interpolate_matrices(tab, [6.5, 9000.0])
+    for k in "ABCD":
+        np.testing.assert_array_equal(by_name[k], by_order[k])
+    with pytest.raises(InputError, match="lacks payload_mass"):
+        interpolate_matrices(tab, {"rope_length": 6.5})
+    with pytest.raises(InputError, match="unknown variable 'speed'"):
+        interpolate_matrices(tab, {"rope_length": 6.5, "payload_mass": 1.0, "speed": 2.0})
+
+
+def test_step_rejects_non_finite_point_and_keeps_state():
+    ctl = _ctl()
+    ctl.step([1.0, 0.5], [5.0, 3000.0])
+    x = ctl.state
+    for p in ([float("nan"), 3000.0], [5.0, float("inf")]):
+        with pytest.raises(InputError, match="NaN or inf"):
+            ctl.step([1.0, 0.5], p)
+        np.testing.assert_array_equal(ctl.state, x)

@@ -191,3 +191,34 @@ def test_simulate_command(tmp_path, monkeypatch):
     write_family(fam_path, fam)
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2)])
     assert res.exit_code == 2 and "nonlinear_model" in res.output
+
+
+def test_simulate_step_comparison_with_limits(tmp_path, monkeypatch):
+    # The [[limits]] of the design text reach the simulated controller: the force never
+    # exceeds them (the limiter is the drive's), and --step runs the comparison runs.
+    import json
+    (tmp_path / "h4_testmodel.py").write_text(MODULE)
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.delitem(sys.modules, "h4_testmodel", raising=False)
+    fam = _controller_family(1)
+    fam.design_text += '[[limits]]\ncontrol = "force"\nlower = -2.0\nupper = 2.0\n'
+    fam_path = tmp_path / "fam.h5"
+    write_family(fam_path, fam)
+    traj = tmp_path / "traj.csv"
+    traj.write_text("time,speed,ref:pos,gust\n0,0,0,0\n0.5,2,1,0\n4,10,1,0.5\n")
+    out = tmp_path / "sim"
+    res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out),
+                                    "--trajectory", str(traj), "--sample-time", "0.05",
+                                    "--step", "pos=3", "--step-at", "speed=5"])
+    assert res.exit_code == 0, res.output
+    assert {"step.png", "step.csv"} <= {p.name for p in out.iterdir()}
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["max_abs:force"] <= 2.0
+    assert summary["limits"] == [{"name": "force", "lower": -2.0, "upper": 2.0, "rate": None}]
+    assert set(summary["step"]["overshoot_percent"]) == {"anti_windup", "plain"}
+    assert summary["step"]["peak_command"]["plain"]["force"] <= 2.0
+    # a step needs limits to compare with and without anti-windup
+    write_family(fam_path, _controller_family(1))
+    res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(tmp_path / "s2"),
+                                    "--trajectory", str(traj), "--step", "pos=3"])
+    assert res.exit_code == 2 and "no actuator limits" in res.output
