@@ -10,10 +10,15 @@ generated C (``c_source.py``), so both give the same numbers:
 2. for the 2^d corners ``c`` (bit k of c chooses ``i_k`` or ``i_k + 1``), in increasing
    order: weight ``w_c = prod_k (t_k or 1 - t_k)`` (product in variable order), and
    accumulate ``M += w_c M[corner]`` from zero;
-3. ``u = Cm x + Dm y`` and ``x <- Am x + Bm y``, each sum in column order from zero.
+3. ``u = Cm x + Dm y``; ``u_lim`` = ``u`` limited in rate, then in magnitude
+   (:func:`schedule.export.antiwindup.limit_command`); ``x <- Am x + Bm y + Hm (u_lim -
+   u)`` (the last term only when a limit acted and anti-windup is on), each sum in
+   column order from zero.
 
 The controller state is carried across schedule changes: moving the scheduling
-point only changes the matrices, never the state (no reset, no bump).
+point only changes the matrices, never the state (no reset, no bump). A NaN or
+infinite measurement or scheduling value is refused before anything changes (the C
+step returns an error code in the same case). ``reset_steady`` starts bumpless.
 """
 
 from __future__ import annotations
