@@ -244,6 +244,13 @@ def comparison_plot(runs: dict[str, SimulationResult], measured: str, title: str
         ax.set_ylabel(control + " (command)", fontsize=8)
     for ax in axes[:, 0]:
         ax.grid(True, alpha=0.3)
+    return _finish(fig, axes, title)
+
+
+def _finish(fig, axes, title: str) -> bytes:
+    """Time axis label, title, layout; the figure as PNG bytes (closed)."""
+    import matplotlib.pyplot as plt
+
     axes[-1, 0].set_xlabel("time [s]")
     if title:
         axes[0, 0].set_title(title, fontsize=9)
@@ -430,12 +437,5 @@ def result_plots(result: SimulationResult, title: str = "") -> dict[str, bytes]:
             ax.grid(True, alpha=0.3)
             if len(lines) > 1:
                 ax.legend(fontsize=7, loc="best")
-        axes[-1, 0].set_xlabel("time [s]")
-        if title:
-            axes[0, 0].set_title(title, fontsize=9)
-        fig.tight_layout()
-        buf = io.BytesIO()
-        fig.savefig(buf, format="png", dpi=90)
-        plt.close(fig)
-        out[fname] = buf.getvalue()
+        out[fname] = _finish(fig, axes, title)
     return out

@@ -116,6 +116,7 @@ def test_limiter_rate_then_magnitude():
 def crane():
     """The bundled crane design at one point: generalized plant, central controller, table."""
     from schedule.demo_crane.crane import linear_plant_at
+
     from schedule.hinf import central_controller, optimal_gamma
     from schedule.sources import operating_points_for
     from schedule.weights import build_generalized_plant

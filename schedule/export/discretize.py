@@ -37,6 +37,19 @@ def _stack(A, B, C, D):
     return A, B, C, D, single
 
 
+def _check_condition(mats: np.ndarray, labels, message) -> None:
+    """NumericalError ``message(where, condition)`` at the first of the stacked matrices
+    whose condition number is not finite or above the Tustin bound."""
+    if not mats.shape[0]:
+        return
+    cond = np.linalg.cond(mats)
+    bad = ~np.isfinite(cond) | (cond > _MAX_CONDITION)
+    if bad.any():
+        k = int(np.argmax(bad))
+        raise NumericalError(message(labels[k] if labels is not None else f"controller {k}",
+                                     cond[k]))
+
+
 def prewarped_step(sample_time: float, prewarp: float) -> float:
     """The step ``T' = 2 tan(w0 T / 2) / w0`` that makes Tustin exact at ``w0``.
 
@@ -120,14 +133,9 @@ def discretize(A, B, C, D, sample_time: float, method: str = "tustin",
         eye = np.eye(n)
         Mm = eye - (T / 2.0) * A
         if n:
-            cond = np.linalg.cond(Mm)
-            bad = ~np.isfinite(cond) | (cond > _MAX_CONDITION)
-            if bad.any():
-                k = int(np.argmax(bad))
-                where = labels[k] if labels is not None else f"controller {k}"
-                raise NumericalError(
-                    f"Tustin at {where}: I - (T/2) A has condition number {cond[k]:.3g} "
-                    f"(A has an eigenvalue near 2/T = {2.0 / T:g}); change the sample time")
+            _check_condition(Mm, labels, lambda where, c: (
+                f"Tustin at {where}: I - (T/2) A has condition number {c:.3g} (A has an "
+                f"eigenvalue near 2/T = {2.0 / T:g}); change the sample time"))
             Ad = np.linalg.solve(Mm, eye + (T / 2.0) * A)
             Bd = np.linalg.solve(Mm, T * B)
             Cd = np.swapaxes(np.linalg.solve(np.swapaxes(Mm, 1, 2), np.swapaxes(C, 1, 2)), 1, 2)
@@ -201,14 +209,9 @@ def discretize_gain(A, C, H, sample_time: float, method: str = "tustin",
         MH = np.linalg.solve(Mm, H)
         Cd = np.swapaxes(np.linalg.solve(np.swapaxes(Mm, 1, 2), np.swapaxes(C, 1, 2)), 1, 2)
         E = np.eye(nu) + (T / 2.0) * (Cd @ H)
-        cond = np.linalg.cond(E) if M else np.zeros(0)
-        bad = ~np.isfinite(cond) | (cond > _MAX_CONDITION)
-        if bad.any():
-            k = int(np.argmax(bad))
-            where = labels[k] if labels is not None else f"controller {k}"
-            raise NumericalError(
-                f"anti-windup gain at {where}: I + (T/2) Cd H has condition number "
-                f"{cond[k]:.3g} (A - H C has an eigenvalue near 2/T); change the sample time")
+        _check_condition(E, labels, lambda where, c: (
+            f"anti-windup gain at {where}: I + (T/2) Cd H has condition number {c:.3g} "
+            "(A - H C has an eigenvalue near 2/T); change the sample time"))
         # Hd = T M H E^-1, i.e. solve E' Hd' = (T M H)'
         Hd = np.swapaxes(np.linalg.solve(np.swapaxes(E, 1, 2), np.swapaxes(T * MH, 1, 2)), 1, 2)
     if not np.isfinite(Hd).all():
