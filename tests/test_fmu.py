@@ -126,13 +126,38 @@ def test_bumpless_start_and_tuned_limits(unit):
 
 
 @pytest.mark.skipif(CC is None, reason="no C compiler")
-def test_non_finite_input_stops_the_step(unit):
+def test_non_finite_input_is_refused_and_the_state_kept(unit, tmp_path):
+    # Driven step by step through fmpy's FMU2Slave: a NaN measurement or scheduling value
+    # makes fmi2DoStep fail (fmi2Error) without touching the state, exactly as the Python
+    # runtime raises and keeps its state; afterwards both go on identically.
+    from fmpy import extract, read_model_description
+    from fmpy.fmi2 import FMU2Slave
     tab, outcome = unit
-    sig, _, _ = _signals(tab, 20, seed=5)
-    sig["meas1"][10] = np.nan
-    with pytest.raises(Exception, match="status 3|fmi2Error|Error"):
-        simulate_fmu(str(outcome.path), start_time=0.0, stop_time=19 * tab.sample_time,
-                     output_interval=tab.sample_time, input=sig, output=["act0"])
+    md = read_model_description(str(outcome.path))
+    slave = FMU2Slave(guid=md.guid, unzipDirectory=extract(str(outcome.path), str(tmp_path)),
+                      modelIdentifier="ctrl_unit", instanceName="nan")
+    slave.instantiate()
+    slave.setupExperiment(startTime=0.0)
+    slave.enterInitializationMode()
+    slave.exitInitializationMode()
+    ctl = TableController(tab)
+    rng = np.random.default_rng(8)
+    T, t = tab.sample_time, 0.0
+    for k in range(30):
+        y, p = rng.standard_normal(2), [12.0, 9000.0]
+        if k in (10, 20):
+            bad_y, bad_p = ([np.nan, 0.0], p) if k == 10 else (y, [12.0, np.inf])
+            slave.setReal([0, 1, 2, 3], [*bad_y, *bad_p])
+            with pytest.raises(Exception, match="status 3"):
+                slave.doStep(t, T)
+            with pytest.raises(InputError, match="unchanged"):
+                ctl.step(bad_y, bad_p)
+        slave.setReal([0, 1, 2, 3], [*y, *p])
+        slave.doStep(t, T)
+        t += T
+        np.testing.assert_allclose(slave.getReal([4]), ctl.step(y, p), rtol=1e-12, atol=1e-14)
+    slave.terminate()
+    slave.freeInstance()
 
 
 def test_source_only_unit_without_compiler(tmp_path, monkeypatch):
