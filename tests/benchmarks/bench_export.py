@@ -24,7 +24,6 @@ from test_export_formats import c_state_type  # noqa: E402
 
 from schedule.demo import bundled_design_path  # noqa: E402
 from schedule.design_file import load_design  # noqa: E402
-
 from schedule.export import TableController, build_table, write_fmu, write_table  # noqa: E402
 
 
