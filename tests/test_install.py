@@ -3,7 +3,8 @@
 Builds the package from a copy of the sources into a fresh virtual environment
 (``python -m venv --system-site-packages``, ``pip install --no-deps``: the
 build backend named in pyproject.toml is fetched into pip's isolated build
-environment, as on a user's fresh machine, whose venv has no ``wheel``), then, from an unrelated working
+environment, as on a user's fresh machine, whose venv has no ``wheel``), then,
+from an unrelated working
 directory, imports ``schedule.demo_crane`` from the installed copy and loads
 the envelope file and the design file through importlib.resources. The
 outside reference is pip/setuptools' own packaging: if package data or the
