@@ -76,11 +76,15 @@ from schedule.linearize import NonlinearModel, linearize, trim
 from schedule.types import LinearPlant, SchedulingVariable
 
 __all__ = ["CraneParameters", "VARIABLES", "STATE_NAMES", "INPUT_NAMES", "OUTPUT_NAMES",
+           "STATE_UNITS", "INPUT_UNITS", "OUTPUT_UNITS",
            "crane_model", "trim_at_rest", "linear_plant_at", "energy", "horizontal_momentum"]
 
 STATE_NAMES = ("trolley_position", "trolley_velocity", "sway_angle", "sway_rate", "motor_force")
 INPUT_NAMES = ("force_command", "wind_speed", "disturbance_force")
 OUTPUT_NAMES = ("trolley_position", "sway_angle", "motor_force")
+STATE_UNITS = ("m", "m/s", "rad", "rad/s", "kN")
+INPUT_UNITS = ("kN", "m/s", "kN")
+OUTPUT_UNITS = ("m", "rad", "kN")
 
 VARIABLES = (
     SchedulingVariable("rope_length", "m", 3.0, 30.0),
@@ -187,7 +191,8 @@ def crane_model(params: CraneParameters | None = None) -> NonlinearModel:
     Returns
     -------
     NonlinearModel
-        States, inputs and outputs as in the module docstring; complex-safe,
+        States, inputs and outputs as in the module docstring, with their units
+        (m, m/s, rad, rad/s, kN; wind in m/s); complex-safe,
         so ``linearize(..., method="complex")`` applies. Reads
         ``rope_length`` and ``payload_mass`` from the point, and the optional
         ``rope_length_rate`` / ``rope_length_accel`` for hoisting.
@@ -200,7 +205,8 @@ def crane_model(params: CraneParameters | None = None) -> NonlinearModel:
         variable_names=tuple(v.name for v in VARIABLES),
         rate_terms=("rope_length_rate", "rope_length_accel"),
         state_scales=(1.0, 1.0, 0.1, 0.1, 10.0), input_scales=(10.0, 1.0, 10.0),
-        complex_safe=True,
+        complex_safe=True, state_units=STATE_UNITS, input_units=INPUT_UNITS,
+        output_units=OUTPUT_UNITS,
         description="invented container gantry crane: trolley, hoist rope, payload, wind")
 
 

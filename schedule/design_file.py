@@ -18,6 +18,7 @@ The full reference of keys is in docs/design-file.md.
 
 from __future__ import annotations
 
+import itertools
 import math
 import os
 import sys
@@ -59,7 +60,16 @@ WEIGHT_GROUPS = {
     "noise": ("output", "measured"),
     "disturbance": ("input", "disturbances"),
 }
-WEIGHT_NUMBERS = ("gain", "low_frequency_gain", "crossover", "high_frequency_gain")
+# The requirement form of each group: kind -> the numbers it takes (required ones first)
+REQUIREMENT_FORMS = {
+    "performance": ("performance", ("peak_sensitivity", "bandwidth", "low_frequency_error"),
+                    ()),
+    "effort": ("effort", ("limit",), ("bandwidth", "high_frequency_limit")),
+    "noise": ("level", ("level",), ()),
+    "disturbance": ("level", ("level",), ()),
+}
+WEIGHT_NUMBERS = ("gain", "peak_sensitivity", "bandwidth", "low_frequency_error", "limit",
+                  "high_frequency_limit", "level")
 
 
 # --------------------------------------------------------------------------- dataclasses
@@ -109,20 +119,37 @@ def number_at(value: Number, point: Mapping[str, float]) -> float:
 
 @dataclass(frozen=True)
 class WeightSpec:
-    """One diagonal weight on one channel.
+    """One diagonal weight on one channel, in the terms of its requirement.
 
-    ``kind`` is ``"static"`` (``gain``) or ``"first_order"`` (``low_frequency_gain``,
-    ``crossover``, ``high_frequency_gain``); numbers not used by the kind are None.
-    ``key`` is the key path in the design file, used in error messages.
+    ``kind`` is one of (numbers not used by the kind are None):
+
+    - ``"performance"``: ``peak_sensitivity``, ``bandwidth`` (rad/s), ``low_frequency_error``;
+    - ``"effort"``: ``limit`` and optionally ``bandwidth`` (rad/s) with
+      ``high_frequency_limit``;
+    - ``"level"``: ``level`` (noise or disturbance size);
+    - ``"static"``: ``gain``;
+    - ``"transfer"``: ``zeros``, ``poles`` (constant) and the leading ``gain``.
+
+    ``key`` is the key path in the design file, used in error messages. The
+    transfer functions are in :mod:`schedule.weights`.
     """
 
     channel: str
     kind: str
     gain: Number | None = None
-    low_frequency_gain: Number | None = None
-    crossover: Number | None = None
-    high_frequency_gain: Number | None = None
+    peak_sensitivity: Number | None = None
+    bandwidth: Number | None = None
+    low_frequency_error: Number | None = None
+    limit: Number | None = None
+    high_frequency_limit: Number | None = None
+    level: Number | None = None
+    zeros: tuple[complex, ...] = ()
+    poles: tuple[complex, ...] = ()
     key: str = ""
+
+    def numbers(self) -> dict[str, Number]:
+        """The numbers this weight uses, by key."""
+        return {k: getattr(self, k) for k in WEIGHT_NUMBERS if getattr(self, k) is not None}
 
 
 @dataclass(frozen=True)
@@ -164,6 +191,9 @@ class ChannelSpec:
     "generalized" (the source already gives the generalized plant: disturbances
     are its exogenous inputs w, performance its error outputs z, taken as they
     are, and [weights] must be absent).
+
+    ``units`` pairs (signal name, unit) from ``channels.units``; the plant's own
+    units fill in the rest (:meth:`unit_of`).
     """
 
     controls: tuple[str, ...]
@@ -171,6 +201,14 @@ class ChannelSpec:
     measured: tuple[str, ...]
     performance: tuple[str, ...]
     arrangement: str = "mixed_sensitivity"
+    units: tuple[tuple[str, str], ...] = ()
+
+    def unit_of(self, name: str, plant: LinearPlant | None = None, kind: str = "") -> str:
+        """Unit of signal ``name``: the design file's, else the plant's ``kind`` signal's."""
+        given = dict(self.units)
+        if name in given:
+            return given[name]
+        return plant.unit_of(kind, name) if plant is not None and kind else ""
 
 
 @dataclass(frozen=True)
@@ -633,7 +671,8 @@ def _duplicate_row(arr: np.ndarray) -> tuple[int, int] | None:
 
 def _parse_channels(r: _Reader, t: dict) -> ChannelSpec:
     key = "channels"
-    r.keys(t, key, ("controls", "disturbances", "measured", "performance", "arrangement"))
+    r.keys(t, key, ("controls", "disturbances", "measured", "performance", "arrangement",
+                    "units"))
     arrangement = r.string(t, key, "arrangement", "mixed_sensitivity")
     if arrangement not in ARRANGEMENTS:
         raise r.fail("channels.arrangement", f"unknown value {arrangement!r}",
@@ -655,7 +694,27 @@ def _parse_channels(r: _Reader, t: dict) -> ChannelSpec:
         n = sorted(both)[0]
         raise r.fail("channels.disturbances", f"'{n}' is also listed in channels.controls",
                      "a plant input is either a control or a disturbance")
-    return ChannelSpec(controls, disturbances, measured, performance, arrangement)
+    units = _parse_units(r, t.get("units", {}), controls + disturbances + measured + performance)
+    return ChannelSpec(controls, disturbances, measured, performance, arrangement, units)
+
+
+def _parse_units(r: _Reader, t: Any, names: tuple[str, ...]) -> tuple[tuple[str, str], ...]:
+    """``channels.units``: {signal name = "unit"} for signals named in the channel lists."""
+    key = "channels.units"
+    if not isinstance(t, dict):
+        raise r.fail(key, f"expected a table, got {_tname(t)}",
+                     'write units = { signal = "unit", ... }')
+    out = []
+    for name, unit in t.items():
+        if name not in names:
+            known = ", ".join(dict.fromkeys(names))
+            raise r.fail(_join(key, name), f"'{name}' is not a channel",
+                         f"give units of the signals in [channels] ({known})")
+        if not isinstance(unit, str):
+            raise r.fail(_join(key, name), f"expected a string, got {_tname(unit)}",
+                         'write the unit in "quotes" ("" for none)')
+        out.append((name, unit))
+    return tuple(out)
 
 
 def _parse_weights(r: _Reader, t: dict, ch: ChannelSpec, variables) -> WeightsSpec:
@@ -672,7 +731,7 @@ def _parse_weights(r: _Reader, t: dict, ch: ChannelSpec, variables) -> WeightsSp
         by_name: dict[str, WeightSpec] = {}
         for i, item in enumerate(items):
             key = f"weights.{group}[{i}]"
-            w = _parse_weight(r, r.table(item, key), key, chan_key, variables)
+            w = _parse_weight(r, r.table(item, key), key, group, chan_key, variables)
             if w.channel not in channels:
                 raise r.fail(_join(key, chan_key), f"'{w.channel}' is not in "
                              f"channels.{list_name} ({', '.join(channels) or 'empty'})",
@@ -689,42 +748,99 @@ def _parse_weights(r: _Reader, t: dict, ch: ChannelSpec, variables) -> WeightsSp
     return WeightsSpec(**out)
 
 
-def _parse_weight(r: _Reader, t: dict, key: str, chan_key: str, variables) -> WeightSpec:
-    r.keys(t, key, (chan_key,) + WEIGHT_NUMBERS, required=(chan_key,))
+def _parse_weight(r: _Reader, t: dict, key: str, group: str, chan_key: str,
+                  variables) -> WeightSpec:
+    kind, required, optional = REQUIREMENT_FORMS[group]
+    own = required + optional
+    r.keys(t, key, (chan_key,) + own + ("gain", "zeros", "poles"), required=(chan_key,))
     name = r.string(t, key, chan_key)
     nums = {k: _parse_number(r, t[k], _join(key, k), variables) for k in WEIGHT_NUMBERS
             if k in t}
-    three = ("low_frequency_gain", "crossover", "high_frequency_gain")
-    if "gain" in nums:
-        extra = [k for k in three if k in nums]
+    forms = f"{', '.join(required)} (the {group} requirement), gain, or zeros/poles/gain"
+    if "zeros" in t or "poles" in t:
+        kind = "transfer"
+        extra = [k for k in nums if k != "gain"]
+        if extra:
+            raise r.fail(_join(key, extra[0]), "given together with zeros/poles",
+                         "a transfer weight takes zeros, poles and gain only")
+        if "gain" not in nums:
+            raise r.fail(_join(key, "gain"), "missing (a transfer weight needs it)",
+                         "add gain = <leading coefficient k of k prod(s - z) / prod(s - p)>")
+        # the gain may be scheduled; zeros and poles stay constant (fixed state coordinates)
+        zeros = _parse_roots(r, t.get("zeros", []), _join(key, "zeros"))
+        poles = _parse_roots(r, t.get("poles", []), _join(key, "poles"))
+        w = WeightSpec(channel=name, kind=kind, gain=nums["gain"], zeros=zeros, poles=poles,
+                       key=key)
+    elif "gain" in nums:
+        extra = [k for k in nums if k != "gain"]
         if extra:
             raise r.fail(_join(key, extra[0]), "given together with gain",
-                         "give either gain (static) or the three first-order numbers")
-        _check_positive(r, nums["gain"], _join(key, "gain"))
-        return WeightSpec(channel=name, kind="static", gain=nums["gain"], key=key)
-    missing = [k for k in three if k not in nums]
-    if len(missing) == 3:
-        raise r.fail(key, "no weight numbers", "give gain = ... or low_frequency_gain, "
-                     "crossover and high_frequency_gain")
-    if missing:
-        raise r.fail(_join(key, missing[0]), "missing (first-order weights need all three "
-                     "numbers)", f"add {missing[0]} = ...")
-    _check_positive(r, nums["low_frequency_gain"], _join(key, "low_frequency_gain"))
-    _check_positive(r, nums["crossover"], _join(key, "crossover"))
-    _check_positive(r, nums["high_frequency_gain"], _join(key, "high_frequency_gain"),
-                    allow_zero=True)
-    lo, hi = nums["low_frequency_gain"], nums["high_frequency_gain"]
-    # Constant numbers are checked now; scheduled ones where they are evaluated.
-    if not isinstance(lo, ScheduledNumber) and not isinstance(hi, ScheduledNumber):
-        if not ((lo > 1.0 > hi) or (lo < 1.0 < hi)):
-            raise r.fail(key, f"low_frequency_gain = {lo:g} and high_frequency_gain = {hi:g} "
-                         "do not straddle 1, so |W| never crosses 1",
-                         "make one gain > 1 and the other < 1 (or use a static gain)")
-    return WeightSpec(channel=name, kind="first_order", low_frequency_gain=lo,
-                      crossover=nums["crossover"], high_frequency_gain=hi, key=key)
+                         f"give either gain (a static weight) or {', '.join(own)}")
+        w = WeightSpec(channel=name, kind="static", gain=nums["gain"], key=key)
+    else:
+        if not nums:
+            raise r.fail(key, "no weight numbers", f"give {forms}")
+        missing = [k for k in required if k not in nums]
+        if missing:
+            raise r.fail(_join(key, missing[0]), f"missing (the {group} weight needs "
+                         f"{', '.join(required)})", f"add {missing[0]} = ...")
+        if optional and 0 < sum(k in nums for k in optional) < len(optional):
+            have = next(k for k in optional if k in nums)
+            lack = next(k for k in optional if k not in nums)
+            raise r.fail(_join(key, lack), f"missing (given {have})",
+                         f"give {' and '.join(optional)} together, or neither")
+        w = WeightSpec(channel=name, kind=kind, key=key, **nums)
+    for k, v in w.numbers().items():
+        _check_positive(r, v, _join(key, k))
+    # Build the weight now, so that its errors name the key. A scheduled number is
+    # multilinear between its breakpoints, and so is any difference of two numbers on the
+    # cells of the union of their breakpoints: the conditions (positive, A < M,
+    # u_hf < u_max) hold everywhere when they hold at the vertices of that grid.
+    from .weights import weight_at
+
+    axes: dict[str, set] = {}
+    for v in w.numbers().values():
+        if isinstance(v, ScheduledNumber):
+            for name, bp in zip(v.over, v.breakpoints, strict=True):
+                axes.setdefault(name, set()).update(bp.tolist())
+    names = list(axes)
+    for combo in itertools.islice(itertools.product(*(sorted(axes[n]) for n in names)),
+                                  10000):
+        try:
+            weight_at(w, dict(zip(names, combo, strict=True)))
+        except InputError as exc:
+            raise InputError(f"{r.name}: {exc}") from None
+    return w
+
+
+def _parse_roots(r: _Reader, v: Any, key: str) -> tuple[complex, ...]:
+    """Zeros or poles: numbers (real roots) or [real, imaginary] pairs (with the conjugate)."""
+    if not isinstance(v, list):
+        raise r.fail(key, f"expected a list, got {_tname(v)}",
+                     "write [-1.0, [-0.5, 2.0]] (a real root, then a complex pair)")
+    out: list[complex] = []
+    for i, item in enumerate(v):
+        if isinstance(item, list):
+            if len(item) != 2 or _has_non_number(item):
+                raise r.fail(f"{key}[{i}]", "a complex root must be [real, imaginary]",
+                             "write two numbers; the conjugate is added for you")
+            re, im = float(item[0]), float(item[1])
+            if not (math.isfinite(re) and math.isfinite(im)) or im == 0:
+                raise r.fail(f"{key}[{i}]", f"[{re:g}, {im:g}] is not a finite complex pair",
+                             "give finite numbers with a non-zero imaginary part (or a plain "
+                             "number for a real root)")
+            out += [complex(re, im), complex(re, -im)]
+        elif isinstance(item, bool) or not isinstance(item, (int, float)) \
+                or not math.isfinite(item):
+            raise r.fail(f"{key}[{i}]", "expected a finite number or [real, imaginary]",
+                         "write numbers")
+        else:
+            out.append(complex(float(item), 0.0))
+    return tuple(out)
 
 
 def _check_positive(r: _Reader, v: Number, key: str, allow_zero: bool = False) -> None:
+    """Every value of a constant or scheduled number is > 0 (>= 0 with ``allow_zero``)."""
     vals = v.values.ravel() if isinstance(v, ScheduledNumber) else np.array([v])
     bad = vals < 0 if allow_zero else vals <= 0
     if bad.any():
@@ -903,3 +1019,8 @@ def validate_against_plant(spec: DesignSpec, plant: LinearPlant) -> None:
             if n not in plant_names:
                 raise InputError(f"{spec.name}: channels.{list_name}: '{n}' is not a plant "
                                  f"{kind}; the plant's {kind}s are {', '.join(plant_names)}")
+            given, own = dict(c.units).get(n, ""), plant.unit_of(kind, n)
+            if given and own and given != own:
+                raise InputError(f"{spec.name}: channels.units.{n} = \"{given}\" but the model "
+                                 f"gives {kind} '{n}' in \"{own}\"; use the model's unit (the "
+                                 "matrices are in it) or convert the model")

@@ -322,7 +322,7 @@ class _PartialWriter:
 # ----------------------------------------------------------------------------- the core
 def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Sequence[str], *,
                       variables: Sequence[SchedulingVariable],
-                      names: dict[str, tuple[str, ...]],
+                      names: dict[str, Any],
                       policy: str = "common", margin: float = 0.05,
                       gamma_value: float | None = None,
                       breakpoints: tuple[np.ndarray, ...] | None = None,
@@ -338,7 +338,8 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
     points : (N, d) scheduling values.
     plants : N GeneralizedPlant objects, ``None`` where the plant could not be
         built (then ``build_reasons[k]`` says why).
-    names : "measured", "controls", "exogenous", "performance", "states" name tuples.
+    names : "measured", "controls", "exogenous", "performance", "states" name tuples;
+        optional "units": the same groups -> unit tuples (``Family.units``).
     policy, margin, gamma_value : the common-gamma policy (see :func:`common_gamma`).
     partial : sidecar partial-result file (None: keep nothing on disk).
     resume : take finished chunks from ``partial`` (it must belong to the same
@@ -494,7 +495,7 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
         performance_names=tuple(names.get("performance", ())),
         state_names=tuple(names.get("states", ())),
         breakpoints=breakpoints, grid_index=grid_index, design_text=design_text,
-        design_base_dir=str(base_dir) if base_dir else "")
+        design_base_dir=str(base_dir) if base_dir else "", units=dict(names.get("units") or {}))
     run.family = family
     run.seconds = time.perf_counter() - t0
     return run
@@ -562,7 +563,7 @@ def _generalized(spec, points: np.ndarray, linear: Sequence, reasons: Sequence[s
         if names is None:
             names = {"measured": tuple(ch.measured), "controls": tuple(ch.controls),
                      "exogenous": tuple(ch.exogenous), "performance": tuple(ch.performance),
-                     "states": tuple(ch.states)}
+                     "states": tuple(ch.states), "units": dict(ch.units or {})}
         plants.append(gp)
         out_reasons.append("")
     return plants, out_reasons, names or {}
@@ -793,7 +794,7 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
         control_names=family.control_names, exogenous_names=family.exogenous_names,
         performance_names=family.performance_names, state_names=family.state_names,
         breakpoints=None, grid_index=None, design_text=family.design_text,
-        extra=extra, interpolant=None)
+        extra=extra, interpolant=None, units=dict(family.units))
 
 
 def _plant_from_family(family: Family, i: int):

@@ -79,6 +79,10 @@ class NonlinearModel:
         analytic in them, which enables ``linearize(..., method="complex")``.
     description : str
         One line for reports.
+    state_units, input_units, output_units : tuple of str, optional
+        One unit per state, input and output ("m", "kN", "rad/s"); they travel
+        with the linearized plants into the family, the tables and the
+        simulation plots. Empty (the default) when not given.
     """
 
     state_names: tuple[str, ...]
@@ -92,6 +96,9 @@ class NonlinearModel:
     input_scales: tuple[float, ...] | None = None
     complex_safe: bool = False
     description: str = ""
+    state_units: tuple[str, ...] = ()
+    input_units: tuple[str, ...] = ()
+    output_units: tuple[str, ...] = ()
 
     @property
     def n_states(self) -> int:
@@ -168,6 +175,10 @@ def _check_model(model: NonlinearModel) -> tuple[np.ndarray, np.ndarray]:
             raise InputError(f"model has no {label} names; give at least one")
         if len(set(names)) != len(names):
             raise InputError(f"model {label} names {list(names)} have duplicates; make them unique")
+        units = getattr(model, f"{label}_units", ())
+        if units and (len(units) != len(names) or not all(isinstance(u, str) for u in units)):
+            raise InputError(f"model {label}_units {list(units)!r} must be {len(names)} strings, "
+                             f"one per {label} name; give one unit each (\"\" for none)")
     return (_scales(model.state_scales, model.n_states, "state_scales"),
             _scales(model.input_scales, model.n_inputs, "input_scales"))
 
@@ -365,7 +376,7 @@ def linearize(model: NonlinearModel, x, u, point: Mapping[str, float],
     -------
     LinearPlant
         ``A = df/dx``, ``B = df/du``, ``C = dg/dx``, ``D = dg/du`` with the
-        model's names.
+        model's names and units.
 
     Raises
     ------
@@ -429,7 +440,9 @@ def linearize(model: NonlinearModel, x, u, point: Mapping[str, float],
     return LinearPlant(A=J[:n, :n].copy(), B=J[:n, n:].copy(), C=J[n:n + p, :n].copy(),
                        D=J[n:n + p, n:].copy(), state_names=tuple(model.state_names),
                        input_names=tuple(model.input_names),
-                       output_names=tuple(model.output_names))
+                       output_names=tuple(model.output_names),
+                       state_units=tuple(model.state_units), input_units=tuple(model.input_units),
+                       output_units=tuple(model.output_units))
 
 
 def trim_and_linearize(model: NonlinearModel, point: Mapping[str, float], x0=None, u0=None,

@@ -96,9 +96,11 @@ def as_linear_plant(result) -> LinearPlant:
         wrong type, inconsistent shapes, NaN/inf, or names that do not match
         the sizes; the message is the reason reported for the point.
     """
+    units = ((), (), ())
     if isinstance(result, LinearPlant):
         A, B, C, D = result.A, result.B, result.C, result.D
         names = (result.state_names, result.input_names, result.output_names)
+        units = (result.state_units, result.input_units, result.output_units)
     elif isinstance(result, (tuple, list)) and len(result) == 4:
         A, B, C, D = result
         names = None
@@ -133,7 +135,12 @@ def as_linear_plant(result) -> LinearPlant:
                              f"{label}s; give one name per {label}")
         if len(set(nm)) != len(nm):
             raise InputError(f"the model returned duplicate {label} names; make them unique")
-    return LinearPlant(A, B, C, D, states, ins, outs)
+    for label, un, size in zip(("state", "input", "output"), units, (n, m, p), strict=True):
+        if len(un) not in (0, size):
+            raise InputError(f"the model returned {len(un)} {label} units for {size} "
+                             f"{label}s; give one unit per {label} (\"\" for none) or none")
+    return LinearPlant(A, B, C, D, states, ins, outs, *(tuple(str(u) for u in un)
+                                                        for un in units))
 
 
 def load_model(spec: DesignSpec) -> ModelFn:

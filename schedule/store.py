@@ -13,6 +13,7 @@ documented with shapes and units in docs/format.md)::
     /controller/<A, B, C, D>                        (N, rows, cols)
     /pieces/<name>                                  (N, ...)
     /names/<measured, controls, exogenous, performance, states>
+    /names/units/<measured, controls, ...>          one unit per name (optional)
     /interpolant  attrs = interpolant["attrs"];  /interpolant/arrays/<name>
     /extra/<name>                                   arrays or UTF-8 strings
 
@@ -228,6 +229,10 @@ def write_family(path: str | os.PathLike, family: Family) -> None:
         n = f.create_group("names", track_order=True)
         for label, attr in _NAME_FIELDS:
             n[label] = _strings(getattr(family, attr))
+        if any(any(family.units_of(label)) for label, _ in _NAME_FIELDS):
+            u = n.create_group("units", track_order=True)
+            for label, _ in _NAME_FIELDS:
+                u[label] = _strings(family.units_of(label))
         if family.interpolant is not None:
             _write_interpolant(f, family.interpolant)
         e = f.create_group("extra", track_order=True)
@@ -353,8 +358,17 @@ def _read_open_family(f: h5py.File) -> Family:
         design_base_dir=base_dir,
         interpolant=_read_interpolant(f["interpolant"]) if "interpolant" in f else None,
         extra=extra,
+        units=_read_units(f),
     )
     return family
+
+
+def _read_units(f: h5py.File) -> dict[str, tuple[str, ...]]:
+    """``/names/units/<group>`` (absent in files written before units existed: no units)."""
+    g = f["names"].get("units")
+    if not isinstance(g, h5py.Group):
+        return {}
+    return {label: _decode(g[label]) for label, _ in _NAME_FIELDS if label in g}
 
 
 def _decode_names(f: h5py.File, label: str) -> tuple[str, ...]:
@@ -400,6 +414,11 @@ def _validate_family(family: Family, where: str) -> None:
     n = A.shape[1]
     if family.state_names and len(family.state_names) != n:
         raise InputError(f"{where}: {len(family.state_names)} state names for {n} states")
+    for label, attr in _NAME_FIELDS:
+        units = family.units.get(label)
+        if units is not None and len(units) != len(getattr(family, attr)):
+            raise InputError(f"{where}: {len(units)} units for {len(getattr(family, attr))} "
+                             f"{label} signals; give one unit per signal")
 
 
 # ----------------------------------------------------------------------------- partial results

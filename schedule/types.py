@@ -34,6 +34,10 @@ class LinearPlant:
     ``input_names`` names the columns of B and D, ``output_names`` the rows of C
     and D, ``state_names`` the states. Every plant of one envelope must use the
     same state coordinates (same names, same meaning, same order).
+
+    ``state_units``, ``input_units``, ``output_units`` (optional) give one unit
+    per state, input and output ("m", "kN", "rad/s"; "" when unknown); empty
+    tuples when the model gives none. The matrices are in these units.
     """
 
     A: np.ndarray
@@ -43,6 +47,17 @@ class LinearPlant:
     state_names: tuple[str, ...] = ()
     input_names: tuple[str, ...] = ()
     output_names: tuple[str, ...] = ()
+    state_units: tuple[str, ...] = ()
+    input_units: tuple[str, ...] = ()
+    output_units: tuple[str, ...] = ()
+
+    def unit_of(self, kind: str, name: str) -> str:
+        """Unit of the ``kind`` ("state", "input" or "output") signal ``name`` ("" if unknown)."""
+        names = getattr(self, f"{kind}_names")
+        units = getattr(self, f"{kind}_units")
+        if name in names and len(units) == len(names):
+            return str(units[list(names).index(name)])
+        return ""
 
 
 @dataclass
@@ -69,6 +84,10 @@ class Family:
     measured_names, control_names : controller inputs (y) and outputs (u).
     exogenous_names, performance_names : generalized plant w and z names.
     state_names : generalized-plant (and controller) state names.
+    units : group ("measured", "controls", "exogenous", "performance", "states")
+        -> one unit per signal of that group ("" when unknown; an absent group:
+        no units). For w and z, the unit of the plant signal behind the
+        channel (w and z themselves are weighted, normalized signals).
     design_text : the design file's text; tool_version, created : provenance.
     design_base_dir : folder the design file's relative paths refer to.
     interpolant : plain arrays and attributes of the fitted interpolant, or None.
@@ -97,6 +116,7 @@ class Family:
     design_base_dir: str = ""
     interpolant: dict | None = None
     extra: dict = field(default_factory=dict)
+    units: dict = field(default_factory=dict)
 
     @property
     def ok(self) -> np.ndarray:
@@ -106,3 +126,14 @@ class Family:
     @property
     def variable_names(self) -> tuple[str, ...]:
         return tuple(v.name for v in self.variables)
+
+    def units_of(self, group: str) -> tuple[str, ...]:
+        """One unit per signal of ``group`` (see ``units``); "" for each when unknown."""
+        names = getattr(self, _NAME_ATTR[group])
+        units = tuple(self.units.get(group, ()))
+        return units if len(units) == len(names) else ("",) * len(names)
+
+
+_NAME_ATTR = {"measured": "measured_names", "controls": "control_names",
+              "exogenous": "exogenous_names", "performance": "performance_names",
+              "states": "state_names"}

@@ -59,10 +59,11 @@ def toml_weights(performance: Sequence[tuple] = (), effort: Sequence[tuple] = ()
                  noise: Sequence[tuple] = (), disturbance: Sequence[tuple] = ()) -> str:
     """``[[weights.<group>]]`` tables, one per entry.
 
-    An entry is ``(channel, gain)`` for a static weight or ``(channel,
-    low_frequency_gain, crossover, high_frequency_gain)`` for a first-order
-    weight; a number given as a string (for example a scheduled inline table)
-    is written verbatim.
+    An entry is ``(channel, gain)`` for a static weight or ``(channel, {key:
+    number, ...})`` for any other form of docs/design-file.md (for example
+    ``{"peak_sensitivity": 2.0, "bandwidth": 0.5, "low_frequency_error": 0.01}``);
+    a number given as a string (for example a scheduled inline table) is
+    written verbatim.
     """
     out = []
     for group, key, entries in (("performance", "output", performance),
@@ -70,15 +71,15 @@ def toml_weights(performance: Sequence[tuple] = (), effort: Sequence[tuple] = ()
                                 ("noise", "output", noise),
                                 ("disturbance", "input", disturbance)):
         for entry in entries:
-            channel, *numbers = entry
+            channel, numbers = entry
             out.append(f'[[weights.{group}]]\n{key} = "{channel}"\n')
-            if len(numbers) == 1:
-                out.append(f"gain = {_value(numbers[0])}\n")
-            elif len(numbers) == 3:
-                low, crossover, high = numbers
-                out.append(f"low_frequency_gain = {_value(low)}\ncrossover = {_value(crossover)}"
-                           f"\nhigh_frequency_gain = {_value(high)}\n")
+            if isinstance(numbers, dict):
+                out += [f"{k} = {_value(v)}\n" for k, v in numbers.items()]
             else:
-                raise ValueError(f"weight entry {entry!r} needs (channel, gain) or (channel, "
-                                 "low_frequency_gain, crossover, high_frequency_gain)")
+                out.append(f"gain = {_value(numbers)}\n")
     return "".join(out)
+
+
+def performance_numbers(peak: float, bandwidth, low_error: float) -> dict:
+    """The keys of a performance weight (``bandwidth`` may be a scheduled inline table)."""
+    return {"peak_sensitivity": peak, "bandwidth": bandwidth, "low_frequency_error": low_error}

@@ -7,7 +7,13 @@ import json
 
 import numpy as np
 import pytest
-from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+from _helpers import (
+    SCHEDULED_MATRICES,
+    performance_numbers,
+    toml_channels,
+    toml_variables,
+    toml_weights,
+)
 from click.testing import CliRunner
 
 from schedule.check import (
@@ -43,7 +49,8 @@ stiffness = STIFF
 gain = [0.0, 1.0]
 """
           + toml_channels(["force"], ["pos"], ["push"], ["pos"])
-          + toml_weights(performance=[("pos", 100.0, 0.5, 0.5)], effort=[("force", 0.1)],
+          + toml_weights(performance=[("pos", performance_numbers(2.0, 0.433, 0.01))],
+                         effort=[("force", 0.1)],
                          noise=[("pos", 0.01)], disturbance=[("push", 1.0)])
           + SCHEDULED_MATRICES
           + """[check]

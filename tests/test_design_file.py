@@ -54,9 +54,9 @@ performance = ["y"]
 
 [[weights.performance]]
 output = "y"
-low_frequency_gain = 100.0
-crossover = { over = ["speed"], breakpoints = [[1.0, 10.0]], values = [0.5, 2.0] }
-high_frequency_gain = 0.5
+peak_sensitivity = 2.0
+bandwidth = { over = ["speed"], breakpoints = [[1.0, 10.0]], values = [0.5, 2.0] }
+low_frequency_error = 0.01
 
 [[weights.effort]]
 input = "u"
@@ -111,7 +111,7 @@ def test_valid_file_and_defaults():
 
 def test_scheduled_number_is_multilinear():
     spec = parse(VALID)
-    wc = spec.weights.performance[0].crossover
+    wc = spec.weights.performance[0].bandwidth
     assert isinstance(wc, ScheduledNumber)
     # linear interpolation between (1, 0.5) and (10, 2.0): analytic
     for s in (1.0, 4.0, 7.3, 10.0):
@@ -122,10 +122,10 @@ def test_scheduled_number_is_multilinear():
 
 def test_two_dimensional_scheduled_number_bilinear():
     text = VALID.replace(
-        'crossover = { over = ["speed"], breakpoints = [[1.0, 10.0]], values = [0.5, 2.0] }',
-        'crossover = { over = ["speed", "load"], breakpoints = [[1.0, 10.0], [0.0, 5.0]], '
+        'bandwidth = { over = ["speed"], breakpoints = [[1.0, 10.0]], values = [0.5, 2.0] }',
+        'bandwidth = { over = ["speed", "load"], breakpoints = [[1.0, 10.0], [0.0, 5.0]], '
         'values = [[1.0, 2.0], [3.0, 5.0]] }')
-    wc = parse(text).weights.performance[0].crossover
+    wc = parse(text).weights.performance[0].bandwidth
     # bilinear at the cell centre = mean of the four corners (analytic)
     assert math.isclose(wc.at({"speed": 5.5, "load": 2.5}), (1 + 2 + 3 + 5) / 4)
 
@@ -234,19 +234,60 @@ def test_allowed_sets(table, needle):
 
 
 def test_weights_match_channels():
-    unknown = VALID.replace('output = "y"\nlow_frequency_gain', 'output = "z"\nlow_frequency_gain')
+    unknown = VALID.replace('output = "y"\npeak_sensitivity', 'output = "z"\npeak_sensitivity')
     msg = error_of(unknown)
     assert "weights.performance[0].output" in msg and "'z'" in msg
     missing = VALID.replace('[[weights.noise]]\noutput = "y"\ngain = 0.01\n', "")
     msg = error_of(missing)
     assert "no weight for channels.measured 'y'" in msg and "[[weights.noise]]" in msg
-    mixed = VALID.replace("gain = 0.1", "gain = 0.1\ncrossover = 2.0")
+
+
+def test_weight_forms_in_requirement_terms():
+    """Each group takes its requirement form (schema), a static gain or a transfer function."""
+    mixed = VALID.replace("input = \"u\"\ngain = 0.1", "input = \"u\"\ngain = 0.1\nlimit = 2.0")
     assert "given together with gain" in error_of(mixed)
-    partial = VALID.replace("high_frequency_gain = 0.5\n", "")
-    assert "weights.performance[0].high_frequency_gain: missing" in error_of(partial)
-    # |W| must cross 1 for the crossover to exist (both gains above 1 cannot)
-    nocross = VALID.replace("high_frequency_gain = 0.5", "high_frequency_gain = 2.0")
-    assert "do not straddle 1" in error_of(nocross)
+    partial = VALID.replace("low_frequency_error = 0.01\n", "")
+    assert "weights.performance[0].low_frequency_error: missing" in error_of(partial)
+    # the weight must fall with frequency: A < M
+    rising = VALID.replace("low_frequency_error = 0.01", "low_frequency_error = 3.0")
+    assert "not below peak_sensitivity" in error_of(rising)
+    # a requirement key of another group is an unknown key here
+    assert "unknown key 'limit'" in error_of(VALID.replace("low_frequency_error = 0.01",
+                                                           "low_frequency_error = 0.01\nlimit = 1"))
+    effort = VALID.replace("input = \"u\"\ngain = 0.1", "input = \"u\"\nlimit = 20.0\n"
+                           "bandwidth = 5.0\nhigh_frequency_limit = 0.5")
+    w = parse(effort).weights.effort[0]
+    assert (w.kind, w.limit, w.bandwidth, w.high_frequency_limit) == ("effort", 20.0, 5.0, 0.5)
+    half = effort.replace("high_frequency_limit = 0.5\n", "")
+    assert "weights.effort[0].high_frequency_limit: missing (given bandwidth)" in error_of(half)
+    level = VALID.replace("output = \"y\"\ngain = 0.01", "output = \"y\"\nlevel = 0.01")
+    assert parse(level).weights.noise[0].kind == "level"
+    tf = VALID.replace("input = \"d\"\ngain = 1.0", "input = \"d\"\nzeros = [-3.0]\n"
+                       "poles = [-10.0, [-1.0, 2.0]]\ngain = 4.0")
+    w = parse(tf).weights.disturbance[0]
+    assert w.kind == "transfer" and w.zeros == (-3.0,)
+    assert w.poles == (-10.0, complex(-1.0, 2.0), complex(-1.0, -2.0))  # conjugate implied
+    unstable = tf.replace("poles = [-10.0,", "poles = [10.0,")
+    assert "weights.disturbance[0]: pole 10" in error_of(unstable)
+    assert "weights.disturbance[0].gain: missing" in error_of(tf.replace("gain = 4.0\n", ""))
+
+
+def test_channel_units():
+    text = VALID.replace('performance = ["y"]\n', 'performance = ["y"]\n'
+                         'units = { u = "kN", y = "m" }\n', 1)
+    ch = parse(text).channels
+    assert ch.unit_of("u") == "kN" and ch.unit_of("y") == "m" and ch.unit_of("d") == ""
+    bad = VALID.replace('performance = ["y"]\n', 'performance = ["y"]\nunits = { q = "m" }\n', 1)
+    assert "channels.units.q: 'q' is not a channel" in error_of(bad)
+    # a plant that gives another unit for the same signal is refused (the matrices are
+    # in the plant's units)
+    plant = LinearPlant(np.array([[-1.0]]), np.array([[1.0, 1.0]]), np.array([[1.0]]),
+                        np.zeros((1, 2)), ("x",), ("u", "d"), ("y",), ("m",), ("N", ""), ("m",))
+    with pytest.raises(InputError, match=r'channels.units.u = "kN" but the model gives input '
+                                         r"'u' in \"N\""):
+        validate_against_plant(parse(text), plant)
+    # the plant's unit fills in where the design gives none
+    assert parse(VALID).channels.unit_of("u", plant, "input") == "N"
 
 
 def test_missing_required_keys():

@@ -17,7 +17,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 import pytest
-from _helpers import toml_channels, toml_variables, toml_weights
+from _helpers import performance_numbers, toml_channels, toml_variables, toml_weights
 from click.testing import CliRunner
 
 from schedule.cli.main import main
@@ -65,7 +65,8 @@ damping = {damping}
 
 """
           + toml_channels(["u"], ["pos", "vel"], ["d"], ["pos"])
-          + toml_weights(performance=[("pos", 10.0, 0.5, 0.5)], effort=[("u", 0.1)],
+          + toml_weights(performance=[("pos", performance_numbers(2.0, 0.435, 0.1))],
+                         effort=[("u", 0.1)],
                          noise=[("pos", 0.01), ("vel", 0.01)], disturbance=[("d", 1.0)])
           + """
 [gamma]

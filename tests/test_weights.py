@@ -1,10 +1,15 @@
-"""Tests of schedule/weights.py: first-order weights and the mixed-sensitivity plant.
+"""Tests of schedule/weights.py: weights in requirement terms and the mixed-sensitivity plant.
 
 Outside references:
-- the first-order weight W(s) = (H s + a L)/(s + a): |W(0)| = L, |W(j inf)| = H
-  and |W(j wc)| = 1 follow analytically from |W(jw)|^2 = (H^2 w^2 + a^2 L^2) /
-  (w^2 + a^2) (derived by hand); compared also with scipy.signal.freqresp of
-  the transfer function built from its coefficients;
+- the performance weight against the textbook formula W_P(s) = (s/M + wB) /
+  (s + wB A) (Skogestad and Postlethwaite, Multivariable Feedback Control,
+  2nd ed. 2005, sec. 2.8, eq. 2.72; from memory): |W_P(0)| = 1/A,
+  |W_P(j inf)| = 1/M and |W_P(j wB)|^2 = (1 + 1/M^2)/(1 + A^2), derived by hand
+  below, and scipy.signal.freqresp of that transfer function;
+- the effort weight W_u(s) = (s + wa)/(u_hf s + u_max wa): |W_u(0)| = 1/u_max,
+  |W_u(j inf)| = 1/u_hf, |W_u(j wa)|^2 = 2/(u_hf^2 + u_max^2) (derived by hand),
+  and scipy.signal.freqresp;
+- transfer weights against scipy.signal.freqresp of the (zeros, poles, gain) form;
 - the generalized plant is checked against the frequency-domain
   interconnection built independently from scipy.signal.freqresp of each
   piece, and its closed loop with a static controller against the lower LFT
@@ -16,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from _helpers import toml_channels, toml_variables, toml_weights
+from _helpers import performance_numbers, toml_channels, toml_variables, toml_weights
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal
@@ -27,8 +32,10 @@ from schedule.types import LinearPlant
 from schedule.weights import (
     build_generalized_plant,
     build_generalized_plant_named,
-    first_order_weight,
+    effort_weight,
+    performance_weight,
     static_weight,
+    transfer_weight,
 )
 
 
@@ -41,40 +48,85 @@ def ss_response(a, b, c, d, omega):
                      for w in omega])
 
 
+def performance_tf(M, wB, A):
+    """The textbook weight (s/M + wB)/(s + wB A) as (numerator, denominator)."""
+    return [1.0 / M, wB], [1.0, wB * A]
+
+
+def effort_tf(u_max, wa, u_hf):
+    """(s + wa)/(u_hf s + u_max wa) as (numerator, denominator)."""
+    return [1.0, wa], [u_hf, u_max * wa]
+
+
 @settings(max_examples=30, deadline=None)
-@given(L=st.floats(1.5, 1e4), H=st.floats(0.0, 0.9), wc=st.floats(1e-2, 1e2),
-       flip=st.booleans())
-def test_first_order_magnitudes(L, H, wc, flip):
-    if flip:  # an effort-type weight: small at low frequency, large at high frequency
-        L, H = 1.0 / L, (1.0 / H if H > 0.05 else 20.0)
-    w = first_order_weight(L, wc, H)
-    mag = np.abs(w.response(np.array([0.0, wc, 1e9 * max(wc, 1.0) * max(L, H)])))
-    # analytic: |W(0)| = L, |W(j wc)| = 1, |W(j inf)| = H (derived by hand)
-    np.testing.assert_allclose(mag[0], L, rtol=1e-9)
-    np.testing.assert_allclose(mag[1], 1.0, rtol=1e-10)
-    np.testing.assert_allclose(mag[2], H, rtol=1e-6, atol=1e-8)
-    # same transfer function via scipy.signal.freqresp of (H s + a L)/(s + a)
-    a = -w.a[0, 0]
-    omega = np.logspace(-3, 3, 25) * wc
-    np.testing.assert_allclose(w.response(omega), tf_response([H, a * L], [1.0, a], omega),
+@given(M=st.floats(1.05, 10.0), A=st.floats(1e-4, 0.9), wB=st.floats(1e-2, 1e2))
+def test_performance_weight_against_the_textbook_formula(M, A, wB):
+    w = performance_weight(M, wB, A)
+    big = 1e9 * max(wB, 1.0) / A
+    mag = np.abs(w.response(np.array([0.0, wB, big])))
+    # |W(0)| = wB / (wB A) = 1/A; |W(j inf)| = 1/M; at wB:
+    # |j wB/M + wB|^2 / |j wB + wB A|^2 = (1/M^2 + 1)/(1 + A^2) (all derived by hand)
+    np.testing.assert_allclose(mag[0], 1.0 / A, rtol=1e-12)
+    np.testing.assert_allclose(mag[1], np.sqrt((1 + 1 / M**2) / (1 + A**2)), rtol=1e-12)
+    np.testing.assert_allclose(mag[2], 1.0 / M, rtol=1e-6)
+    omega = np.logspace(-3, 3, 25) * wB
+    np.testing.assert_allclose(w.response(omega), tf_response(*performance_tf(M, wB, A), omega),
                                rtol=1e-10)
-    # and the realization (a, b, c, d) via scipy's state-space frequency response
+    # and the realization through scipy's own state-space frequency response
     ref = signal.freqresp(signal.StateSpace(w.a, w.b, w.c, w.d), omega)[1]
     np.testing.assert_allclose(w.response(omega), ref, rtol=1e-10)
 
 
+@settings(max_examples=30, deadline=None)
+@given(u_max=st.floats(0.1, 1e3), ratio=st.floats(1.5, 1e3), wa=st.floats(1e-2, 1e3))
+def test_effort_weight_against_its_formula(u_max, ratio, wa):
+    u_hf = u_max / ratio
+    w = effort_weight(u_max, wa, u_hf)
+    mag = np.abs(w.response(np.array([0.0, wa, 1e9 * wa * ratio])))
+    # |W(0)| = wa/(u_max wa); |W(j wa)|^2 = |j wa + wa|^2 / |j u_hf wa + u_max wa|^2
+    # = 2/(u_hf^2 + u_max^2); |W(j inf)| = 1/u_hf (derived by hand)
+    np.testing.assert_allclose(mag[0], 1.0 / u_max, rtol=1e-12)
+    np.testing.assert_allclose(mag[1], np.sqrt(2.0 / (u_hf**2 + u_max**2)), rtol=1e-12)
+    np.testing.assert_allclose(mag[2], 1.0 / u_hf, rtol=1e-6)
+    omega = np.logspace(-3, 3, 25) * wa
+    np.testing.assert_allclose(w.response(omega), tf_response(*effort_tf(u_max, wa, u_hf), omega),
+                               rtol=1e-10)
+    # the limit alone: a static weight 1/u_max
+    s = effort_weight(u_max)
+    assert s.n == 0 and s.d[0, 0] == pytest.approx(1.0 / u_max, rel=1e-15)
+
+
+def test_transfer_weight_against_scipy_zpk():
+    zeros, poles, k = [-3.0], [-1.0 + 2.0j, -1.0 - 2.0j, -10.0], 4.0
+    w = transfer_weight(zeros, poles, k)
+    omega = np.logspace(-2, 3, 31)
+    ref = signal.freqresp(signal.ZerosPolesGain(zeros, poles, k), omega)[1]
+    np.testing.assert_allclose(w.response(omega), ref, rtol=1e-10)
+    assert w.n == 3
+
+
 def test_weight_examples_and_errors():
-    w = first_order_weight(100.0, 0.3, 0.5)
-    # hand computation: a = 0.3 sqrt((1 - 0.25)/(1e4 - 1)) = 0.3 * 0.0086607...
-    assert np.isclose(-w.a[0, 0], 0.3 * np.sqrt(0.75 / 9999.0), rtol=1e-14)
     s = static_weight(2.5)
     assert s.n == 0 and np.all(s.response(np.array([0.0, 10.0])) == 2.5)
-    with pytest.raises(InputError, match="do not straddle 1"):
-        first_order_weight(2.0, 1.0, 3.0)
-    with pytest.raises(InputError, match="invalid"):
-        first_order_weight(-2.0, 1.0, 0.1)
+    with pytest.raises(InputError, match="not below peak_sensitivity"):
+        performance_weight(2.0, 1.0, 3.0)
+    with pytest.raises(InputError, match="bandwidth = -1 must be"):
+        performance_weight(2.0, -1.0, 0.1)
+    with pytest.raises(InputError, match="high_frequency_limit = 5 is not below limit = 2"):
+        effort_weight(2.0, 1.0, 5.0)
+    with pytest.raises(InputError, match="needs both bandwidth and high_frequency_limit"):
+        effort_weight(2.0, 1.0)
+    with pytest.raises(InputError, match="not in the open left half plane"):
+        transfer_weight([], [0.5], 1.0)
+    with pytest.raises(InputError, match="imaginary axis"):
+        transfer_weight([0.0], [-1.0], 1.0)
+    with pytest.raises(InputError, match="not proper"):
+        transfer_weight([-1.0, -2.0], [-3.0], 1.0)
 
 
+# The arrangement test uses every form: a performance weight with a scheduled bandwidth,
+# a static one, an effort weight with an actuator bandwidth, a limit alone, noise levels,
+# a first-order transfer weight on a noise channel and a second-order one on a disturbance.
 SPEC = (toml_variables(("p", "", 0.0, 1.0))
         + """[source]
 model = "m:f"
@@ -83,11 +135,14 @@ p = [0.0, 1.0]
 """
         + toml_channels(["u1", "u2"], ["y1", "y2"], ["d1"], ["y3", "y1"])
         + toml_weights(
-            performance=[("y1", 50.0, '{ over = ["p"], breakpoints = [[0.0, 1.0]], '
-                                      'values = [1.0, 3.0] }', 0.2), ("y3", 2.0)],
-            effort=[("u1", 0.05, 20.0, 5.0), ("u2", 0.3)],
-            noise=[("y1", 0.01), ("y2", 0.02, 50.0, 2.0)],
-            disturbance=[("d1", 10.0, 1.0, 0.1)]))
+            performance=[("y1", performance_numbers(
+                2.0, '{ over = ["p"], breakpoints = [[0.0, 1.0]], values = [1.0, 3.0] }', 0.02)),
+                ("y3", 2.0)],
+            effort=[("u1", {"limit": 20.0, "bandwidth": 4.0, "high_frequency_limit": 0.2}),
+                    ("u2", {"limit": 3.0})],
+            noise=[("y1", {"level": 0.01}),
+                   ("y2", {"zeros": "[-50.0]", "poles": "[-500.0]", "gain": 0.2})],
+            disturbance=[("d1", {"zeros": "[-3.0]", "poles": "[[-1.0, 2.0]]", "gain": 4.0})]))
 
 
 def random_plant(seed=0):
@@ -106,11 +161,6 @@ def plant_response(lp, omega):
     return ss_response(lp.A, lp.B, lp.C, lp.D, omega)  # (k, p, m)
 
 
-def weight_tf(L, wc, H):
-    a = wc * np.sqrt((1 - H * H) / (L * L - 1))  # the documented formula (derived by hand)
-    return [H, a * L], [1.0, a]
-
-
 def reference_blocks(lp, p, omega):
     """P11, P12, P21, P22 of the arrangement, built in the frequency domain."""
     G = plant_response(lp, omega)
@@ -119,11 +169,12 @@ def reference_blocks(lp, p, omega):
     idd = [ins.index("d1")]
     im = [outs.index("y1"), outs.index("y2")]
     ip = [outs.index("y3"), outs.index("y1")]
-    wc_p = 1.0 + 2.0 * p  # the scheduled crossover, linear in p (analytic)
-    Wp = [np.full(len(omega), 2.0), tf_response(*weight_tf(50.0, wc_p, 0.2), omega)]
-    Wu = [tf_response(*weight_tf(0.05, 20.0, 5.0), omega), np.full(len(omega), 0.3)]
-    Wn = [np.full(len(omega), 0.01), tf_response(*weight_tf(0.02, 50.0, 2.0), omega)]
-    Wd = [tf_response(*weight_tf(10.0, 1.0, 0.1), omega)]
+    wB = 1.0 + 2.0 * p  # the scheduled bandwidth, linear in p (analytic)
+    Wp = [np.full(len(omega), 2.0), tf_response(*performance_tf(2.0, wB, 0.02), omega)]
+    Wu = [tf_response(*effort_tf(20.0, 4.0, 0.2), omega), np.full(len(omega), 1.0 / 3.0)]
+    Wn = [np.full(len(omega), 0.01),
+          signal.freqresp(signal.ZerosPolesGain([-50.0], [-500.0], 0.2), omega)[1]]
+    Wd = [signal.freqresp(signal.ZerosPolesGain([-3.0], [-1 + 2j, -1 - 2j], 4.0), omega)[1]]
     out = []
     for k in range(len(omega)):
         Gk = G[k]
@@ -173,8 +224,8 @@ def test_generalized_plant_matches_frequency_domain_interconnection(p):
     assert names.performance == ("e:y3", "e:y1", "u:u1", "u:u2")
     assert names.measured == ("y1", "y2") and names.controls == ("u1", "u2")
     assert names.states == ("x1", "x2", "x3", "x4", "w_perf:y1", "w_effort:u1",
-                            "w_noise:y2", "w_dist:d1")
-    assert gp.A.shape == (8, 8)
+                            "w_noise:y2", "w_dist:d1:1", "w_dist:d1:2")
+    assert gp.A.shape == (9, 9)
     # plant states first, unchanged
     np.testing.assert_array_equal(gp.A[:4, :4], lp.A)
 
@@ -185,7 +236,7 @@ def test_same_state_coordinates_at_every_point():
     g0 = build_generalized_plant(spec, lp, [0.0])
     g1 = build_generalized_plant(spec, lp, [1.0])
     assert g0.A.shape == g1.A.shape
-    # only the scheduled performance weight's pole changes (crossover 1 -> 3: a scales by 3)
+    # only the scheduled performance weight's pole changes (bandwidth 1 -> 3: wB A scales by 3)
     assert np.isclose(g1.A[4, 4], 3.0 * g0.A[4, 4])
     # the row of that weight state (xdot = -a x + a e) is the only one that changes
     diff = np.abs(g1.A - g0.A) > 0

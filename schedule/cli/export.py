@@ -194,10 +194,13 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     if info["inside"] < info["nodes"]:
         click.echo(f"note: {info['nodes'] - info['inside']} nodes lie outside the design "
                    "points' hull (inside = 0); they hold the nearest inside controller")
-    for item in info["limits"]:
+    for item, unit in zip(info["limits"], table.control_units or ("",) * table.n_outputs,
+                          strict=False):
         if any(item[k] is not None for k in ("lower", "upper", "rate")):
+            u = f" {unit}" if unit else ""
+            rate = "none" if item["rate"] is None else f"{item['rate']:g}{u} per s"
             click.echo(f"limits: {item['name']} from {_limit(item['lower'])} to "
-                       f"{_limit(item['upper'])}, rate {_limit(item['rate'])} per s"
+                       f"{_limit(item['upper'])}{u}, rate {rate}"
                        + (" (anti-windup)" if table.anti_windup else ""))
     for note in info["notes"]:
         click.echo(f"note: {note}")

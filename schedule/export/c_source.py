@@ -88,6 +88,12 @@ def _limit_array(values, none: str) -> str:
     return "{" + ", ".join(_num(v) if np.isfinite(v) else none for v in values) + "}"
 
 
+def _unit_texts(units, names) -> list[str]:
+    """`` [unit]`` per signal for the header comments ("" where the unit is unknown)."""
+    units = tuple(units) if len(tuple(units)) == len(names) else ("",) * len(names)
+    return [f" [{c_comment(u)}]" if u else "" for u in units]
+
+
 def c_source_text(table: ScheduledTable, prefix: str = "sched") -> tuple[str, str]:
     """Return ``(header_text, source_text)`` for ``table`` with name prefix ``prefix``."""
     p = check_prefix(prefix)
@@ -103,11 +109,16 @@ def c_source_text(table: ScheduledTable, prefix: str = "sched") -> tuple[str, st
                         f"{len(b)} breakpoints from {b[0]:g} to {b[-1]:g}"
                         for k, (v, b) in enumerate(zip(table.variables, table.breakpoints,
                                                        strict=True)))
-    in_doc = "\n".join(f" *   y[{i}] = {c_comment(s)}" for i, s in enumerate(table.measured_names))
+    y_units = _unit_texts(table.measured_units, table.measured_names)
+    u_units = _unit_texts(table.control_units, table.control_names)
+    in_doc = "\n".join(f" *   y[{i}] = {c_comment(s)}{y_units[i]}"
+                        for i, s in enumerate(table.measured_names))
     lim = table.actuator_limits
+    u_plain = [f" {unit[2:-1]}" if unit else "" for unit in u_units]
     out_doc = "\n".join(
-        f" *   u[{i}] = {c_comment(s)}" + (
-            f" (limits {lim.lower[i]:g} .. {lim.upper[i]:g}, rate {lim.rate[i]:g} per s)"
+        f" *   u[{i}] = {c_comment(s)}{u_units[i]}" + (
+            f" (limits {lim.lower[i]:g} .. {lim.upper[i]:g}{u_plain[i]}, rate "
+            + (f"{lim.rate[i]:g}{u_plain[i]} per s)" if np.isfinite(lim.rate[i]) else "none)")
             if np.isfinite([lim.lower[i], lim.upper[i], lim.rate[i]]).any() else "")
         for i, s in enumerate(table.control_names))
     guard = f"{P}_TABLE_H"

@@ -564,15 +564,14 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
             raise InputError("pre-warp needs a sample time; give --sample-time or drop "
                              "--prewarp")
         sample_time, method_out, prewarp = 0.0, "continuous", 0.0
-    units = family.extra.get("signal_units", {}) if isinstance(family.extra, dict) else {}
     table = ScheduledTable(
         variables=variables, breakpoints=bps, inside=inside,
         sample_time=sample_time, method=method_out, prewarp=float(prewarp),
         gamma=float(family.gamma),
         measured_names=tuple(family.measured_names) or tuple(f"y{i + 1}" for i in range(ny)),
         control_names=tuple(family.control_names) or tuple(f"u{i + 1}" for i in range(nu)),
-        measured_units=tuple(str(units.get(s, "")) for s in family.measured_names),
-        control_units=tuple(str(units.get(s, "")) for s in family.control_names),
+        measured_units=family.units_of("measured") if family.measured_names else ("",) * ny,
+        control_units=family.units_of("controls") if family.control_names else ("",) * nu,
         source_sha256=source_sha256,
         tool_version=__version__ if tool_version is None else tool_version,
         **{k: mats[k] for k in MATRICES})

@@ -45,7 +45,13 @@ TESTS = Path(__file__).resolve().parents[1]  # tests/_helpers.py builds the TOML
 def design_text() -> str:
     """Three masses: stiffness and middle mass scheduled, one force, two positions measured."""
     sys.path.insert(0, str(TESTS))
-    from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+    from _helpers import (
+        SCHEDULED_MATRICES,
+        performance_numbers,
+        toml_channels,
+        toml_variables,
+        toml_weights,
+    )
 
     return (toml_variables(("stiffness", "N/m", 1.0, 4.0), ("mass", "kg", 0.5, 2.0))
             + """[source]
@@ -56,7 +62,7 @@ stiffness = [1.0, 1.75, 2.5, 3.25, 4.0]
 mass = [0.5, 1.25, 2.0]
 """
             + toml_channels(["force"], ["pos1", "pos3"], ["push"], ["pos3"])
-            + toml_weights(performance=[("pos3", 50.0, 0.2, 0.5)],
+            + toml_weights(performance=[("pos3", performance_numbers(2.0, 0.173, 0.02))],
                            effort=[("force", 0.05, 10.0, 2.0)],
                            noise=[("pos1", 0.01), ("pos3", 0.01)], disturbance=[("push", 1.0)])
             + SCHEDULED_MATRICES)

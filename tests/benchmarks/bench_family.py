@@ -59,7 +59,7 @@ def synthetic_plant_19(point):
 
 def design_text(function: str, per_axis: int) -> str:
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # tests/_helpers.py
-    from _helpers import toml_channels, toml_variables, toml_weights
+    from _helpers import performance_numbers, toml_channels, toml_variables, toml_weights
 
     axis = [float(x) for x in np.linspace(0.0, 1.0, per_axis)]
     grid = "".join(f"p{i} = {axis}\n" for i in range(1, 5))
@@ -72,7 +72,8 @@ function = "{function}"
 {grid}
 """
             + toml_channels(["u"], ["y1", "y2"], ["d"], ["y1"])
-            + toml_weights(performance=[("y1", 10.0, 0.5, 0.5)], effort=[("u", 0.1)],
+            + toml_weights(performance=[("y1", performance_numbers(2.0, 0.435, 0.1))],
+                           effort=[("u", 0.1)],
                            noise=[("y1", 0.01), ("y2", 0.01)], disturbance=[("d", 1.0)]))
 
 
