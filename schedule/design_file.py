@@ -172,6 +172,8 @@ class SourceSpec:
     function: str | None = None
     nonlinear_model: str | None = None
     validation: Path | None = None
+    nonlinear_model_file: Path | None = None
+    nonlinear_function: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -540,7 +542,7 @@ def _parse_variables(r: _Reader, items: Any) -> tuple[SchedulingVariable, ...]:
 def _parse_source(r: _Reader, t: dict, base: Path) -> SourceSpec:
     key = "source"
     r.keys(t, key, ("operating_points", "model", "model_file", "function", "nonlinear_model",
-                    "validation"))
+                    "nonlinear_model_file", "nonlinear_function", "validation"))
     op = r.string(t, key, "operating_points")
     model = r.string(t, key, "model")
     model_file = r.string(t, key, "model_file")
@@ -565,6 +567,20 @@ def _parse_source(r: _Reader, t: dict, base: Path) -> SourceSpec:
     for k, v in (("model", model), ("nonlinear_model", nonlinear)):
         if v is not None:
             _check_entry_point(r, f"source.{k}", v)
+    nonlinear_file = r.string(t, key, "nonlinear_model_file")
+    nonlinear_function = r.string(t, key, "nonlinear_function")
+    if nonlinear is not None and nonlinear_file is not None:
+        raise r.fail(key, "both nonlinear_model and nonlinear_model_file are given",
+                     "keep exactly one of them")
+    if (nonlinear_file is None) != (nonlinear_function is None):
+        given, lack = (("nonlinear_model_file", "nonlinear_function") if nonlinear_function is None
+                       else ("nonlinear_function", "nonlinear_model_file"))
+        raise r.fail(f"source.{lack}", f"missing (given {given})",
+                     "give nonlinear_model_file = \"file.py\" with nonlinear_function = "
+                     "\"name of the model or of its factory in the file\"")
+    if nonlinear_function is not None and not nonlinear_function.isidentifier():
+        raise r.fail("source.nonlinear_function", f"'{nonlinear_function}' is not a name",
+                     "give the bare name defined in nonlinear_model_file")
 
     def resolve(p: str | None) -> Path | None:
         return None if p is None else (base / p).resolve() if not Path(p).is_absolute() \
@@ -572,7 +588,9 @@ def _parse_source(r: _Reader, t: dict, base: Path) -> SourceSpec:
 
     return SourceSpec(operating_points=resolve(op), model=model, model_file=resolve(model_file),
                       function=function, nonlinear_model=nonlinear,
-                      validation=resolve(validation))
+                      validation=resolve(validation),
+                      nonlinear_model_file=resolve(nonlinear_file),
+                      nonlinear_function=nonlinear_function)
 
 
 def _check_entry_point(r: _Reader, key: str, text: str) -> None:

@@ -86,9 +86,15 @@ class SimulationResult:
     states: np.ndarray           # (K, n) model states
     state_names: tuple[str, ...]
     control_names: tuple[str, ...]
+    units: dict = field(default_factory=dict)  # signal or variable name -> unit
+    notes: tuple[str, ...] = ()  # warnings (for example a trajectory clamped to the table)
+
+    def unit(self, name: str) -> str:
+        """Unit of a signal or scheduling variable ("" when unknown)."""
+        return str(self.units.get(name, ""))
 
     def summary(self) -> dict:
-        """Peak and final errors of the measured outputs and peak controls."""
+        """Peak and final errors of the measured outputs and peak controls, with ``units``."""
         err = self.measured - self.references
         out = {"duration": float(self.time[-1] - self.time[0]), "samples": int(self.time.size)}
         for j, name in enumerate(self.measured_names):
@@ -97,7 +103,46 @@ class SimulationResult:
         for name in self.control_names:
             j = self.input_names.index(name)
             out[f"max_abs:{name}"] = float(np.max(np.abs(self.inputs[:, j])))
+        out["units"] = {n: self.unit(n) for n in (*self.measured_names, *self.control_names)}
+        if self.notes:
+            out["notes"] = list(self.notes)
         return out
+
+
+def labelled(name: str, unit: str) -> str:
+    """``name [unit]`` (just ``name`` when the unit is unknown)."""
+    return f"{name} [{unit}]" if unit else name
+
+
+def check_trajectory(trajectory: Trajectory, table) -> list[str]:
+    """Refuse a trajectory that leaves the envelope; warn where the table clamps it.
+
+    The envelope is the scheduling variables' bounds: outside them neither the model's
+    linearizations nor the checks say anything, so the simulation is refused (InputError
+    naming the variable, the first time and value, and how many samples are outside).
+    Inside the bounds but outside the table's breakpoints the table holds its edge
+    controller (clamps); that is returned as a warning line per variable.
+    """
+    notes = []
+    t = trajectory.time
+    for j, v in enumerate(table.variables):
+        x = trajectory.points[:, j]
+        out = (x < v.lower) | (x > v.upper)
+        unit = f" {v.unit}" if v.unit else ""
+        if out.any():
+            k = int(np.argmax(out))
+            raise InputError(f"the trajectory leaves the envelope: {v.name} = {x[k]:g}{unit} at "
+                             f"t = {t[k]:g} s ({int(out.sum())} of {x.size} samples outside "
+                             f"[{v.lower:g}, {v.upper:g}]{unit}); keep it inside the bounds "
+                             "or widen them and design again")
+        b = table.breakpoints[j]
+        clamp = (x < b[0]) | (x > b[-1])
+        if clamp.any():
+            k = int(np.argmax(clamp))
+            notes.append(f"{v.name} = {x[k]:g}{unit} at t = {t[k]:g} s is outside the table's "
+                         f"breakpoints [{b[0]:g}, {b[-1]:g}]{unit} ({int(clamp.sum())} samples): "
+                         "the table holds its edge controller there")
+    return notes
 
 
 def _smoothstep(t, t0, t1):
@@ -234,14 +279,14 @@ def comparison_plot(runs: dict[str, SimulationResult], measured: str, title: str
     ax.plot(first.time, first.references[:, j], color="0.6", lw=1, label="reference")
     for name, res in runs.items():
         ax.plot(res.time, res.measured[:, j], styles.get(name, "-"), label=labels.get(name, name))
-    ax.set_ylabel(measured, fontsize=8)
+    ax.set_ylabel(labelled(measured, first.unit(measured)), fontsize=8)
     ax.legend(fontsize=7, loc="best")
     for k, control in enumerate(first.control_names, start=1):
         ax = axes[k, 0]
         for name, res in runs.items():
             i = res.input_names.index(control)
             ax.plot(res.time, res.inputs[:, i], styles.get(name, "-"), label=labels.get(name, name))
-        ax.set_ylabel(control + " (command)", fontsize=8)
+        ax.set_ylabel(labelled(control, first.unit(control)) + "\n(command)", fontsize=8)
     for ax in axes[:, 0]:
         ax.grid(True, alpha=0.3)
     return _finish(fig, axes, title)
@@ -299,6 +344,7 @@ def simulate(model, controller: TableController, trajectory: Trajectory, x0=None
     if tuple(trajectory.variable_names) != names:
         raise InputError(f"trajectory variables {trajectory.variable_names} differ from the "
                          f"table's {names}")
+    notes = check_trajectory(trajectory, table)
     if int(substeps) < 1:
         raise InputError(f"substeps {substeps} must be a positive integer")
     substeps = int(substeps)
@@ -385,7 +431,24 @@ def simulate(model, controller: TableController, trajectory: Trajectory, x0=None
         references=ref, measured=res["y"][:, y_idx], measured_names=tuple(table.measured_names),
         outputs=res["y"], output_names=tuple(model.output_names), inputs=res["u"],
         input_names=tuple(model.input_names), states=res["x"],
-        state_names=tuple(model.state_names), control_names=tuple(table.control_names))
+        state_names=tuple(model.state_names), control_names=tuple(table.control_names),
+        units=_units(model, table), notes=tuple(notes))
+
+
+def _units(model, table) -> dict:
+    """Units by name: the model's signals, then the table's signals and variables."""
+    out: dict[str, str] = {}
+    for kind in ("state", "input", "output"):
+        names = tuple(getattr(model, f"{kind}_names", ()))
+        units = tuple(getattr(model, f"{kind}_units", ()) or ())
+        if len(units) == len(names):
+            out.update({n: u for n, u in zip(names, units, strict=True) if u})
+    for names, units in ((table.measured_names, table.measured_units),
+                         (table.control_names, table.control_units)):
+        if len(units) == len(names):
+            out.update({n: u for n, u in zip(names, units, strict=True) if u})
+    out.update({v.name: v.unit for v in table.variables if v.unit})
+    return out
 
 
 def result_csv(result: SimulationResult) -> str:
@@ -410,22 +473,24 @@ def result_plots(result: SimulationResult, title: str = "") -> dict[str, bytes]:
     import matplotlib.pyplot as plt
 
     t = result.time
+    u = result.unit
     panels = []
     for j, name in enumerate(result.measured_names):
-        panels.append((name, [(result.measured[:, j], name, "-"),
-                              (result.references[:, j], "reference", "--")]))
+        panels.append((labelled(name, u(name)), [(result.measured[:, j], name, "-"),
+                                                 (result.references[:, j], "reference", "--")]))
     for j, name in enumerate(result.output_names):
         if name not in result.measured_names:
-            panels.append((name, [(result.outputs[:, j], name, "-")]))
+            panels.append((labelled(name, u(name)), [(result.outputs[:, j], name, "-")]))
     for name in result.control_names:
         j = result.input_names.index(name)
-        panels.append((name + " (controller output)", [(result.inputs[:, j], name, "-")]))
+        panels.append((labelled(name, u(name)) + "\n(controller output)",
+                       [(result.inputs[:, j], name, "-")]))
     out = {}
     for fname, groups in (("response.png", panels), ("schedule.png", None)):
         if groups is None:
-            groups = [(v, [(result.points[:, j], v, "-")])
+            groups = [(labelled(v, u(v)), [(result.points[:, j], v, "-")])
                       for j, v in enumerate(result.variable_names)]
-            groups += [(s, [(result.inputs[:, j], s, "-")])
+            groups += [(labelled(s, u(s)), [(result.inputs[:, j], s, "-")])
                        for j, s in enumerate(result.input_names)
                        if s not in result.control_names]
         fig, axes = plt.subplots(len(groups), 1, figsize=(8, 1.9 * len(groups) + 0.6),

@@ -7,8 +7,9 @@
   or an ``(A, B, C, D)`` tuple (given generic names u1.., y1.., x1..).
 - :func:`evaluate_model` calls it at one point and turns any failure (the
   function raised, returned NaN or inconsistent shapes) into a one-line reason.
-- :func:`load_nonlinear_model` calls ``source.nonlinear_model`` (a factory with
-  no arguments) and returns its model, for time simulation.
+- :func:`load_nonlinear_model` returns the model named by ``source.nonlinear_model``
+  or ``source.nonlinear_model_file`` + ``source.nonlinear_function`` (the model
+  itself or a factory with no arguments), for time simulation.
 - :func:`operating_points_for` gives the design points and plants for either
   source, with the grid structure and a report of the holes.
 
@@ -38,8 +39,10 @@ ModelFn = Callable[[Mapping[str, float]], LinearPlant]
 
 
 # --------------------------------------------------------------------------- import helpers
-def import_entry(text: str, key: str) -> Callable:
-    """Import ``module:function`` and return the callable (errors name key, module, function)."""
+def import_entry(text: str, key: str, callable_only: bool = True) -> Callable:
+    """Import ``module:function`` and return the callable (errors name key, module, function).
+
+    With ``callable_only=False`` any object of that name is returned."""
     module_name, _, func_name = text.partition(":")
     try:
         module = importlib.import_module(module_name)
@@ -53,31 +56,34 @@ def import_entry(text: str, key: str) -> Callable:
     if fn is None:
         raise InputError(f"{key} = \"{text}\": module '{module_name}' has no '{func_name}'; "
                          "check the function name")
-    if not callable(fn):
+    if callable_only and not callable(fn):
         raise InputError(f"{key} = \"{text}\": '{func_name}' is not callable; name a function")
     return fn
 
 
-def _import_file(path: Path, func_name: str) -> Callable:
+def _import_file(path: Path, func_name: str, key: str = "source.model_file",
+                 callable_only: bool = True):
+    """The object ``func_name`` of the Python file ``path`` (errors name ``key``)."""
     if not path.is_file():
-        raise InputError(f"source.model_file {path} does not exist; check the path (relative "
+        raise InputError(f"{key} {path} does not exist; check the path (relative "
                          "to the design file)")
     mod_name = f"_schedule_user_model_{abs(hash(str(path)))}"
     spec = importlib.util.spec_from_file_location(mod_name, path)
     if spec is None or spec.loader is None:
-        raise InputError(f"source.model_file {path} is not a Python file; give a .py file")
+        raise InputError(f"{key} {path} is not a Python file; give a .py file")
     module = importlib.util.module_from_spec(spec)
     sys.modules[mod_name] = module
     try:
         spec.loader.exec_module(module)
     except Exception as exc:
         sys.modules.pop(mod_name, None)
-        raise InputError(f"source.model_file {path} raised {type(exc).__name__} while "
+        raise InputError(f"{key} {path} raised {type(exc).__name__} while "
                          f"loading: {_one_line(exc)}; fix the file") from None
     fn = getattr(module, func_name, None)
-    if fn is None or not callable(fn):
-        raise InputError(f"source.model_file {path} defines no function '{func_name}'; fix "
-                         "source.function or the file")
+    if fn is None or (callable_only and not callable(fn)):
+        what = "function" if callable_only else "name"
+        raise InputError(f"{key} {path} defines no {what} '{func_name}'; fix "
+                         "the function name in the design or the file")
     return fn
 
 
@@ -194,24 +200,46 @@ def evaluate_model(model: ModelFn, point) -> tuple[LinearPlant | None, str]:
 
 
 def load_nonlinear_model(spec: DesignSpec):
-    """Call the design's ``source.nonlinear_model`` factory and return its model.
+    """The design's nonlinear model, for time simulation.
 
-    The factory takes no arguments and returns a model object (a
-    ``schedule.linearize.NonlinearModel``) used for time simulation.
+    ``source.nonlinear_model = "module:name"`` or ``source.nonlinear_model_file``
+    (a Python file, relative to the design file) with ``source.nonlinear_function``
+    names either the model itself (a ``schedule.linearize.NonlinearModel``) or a
+    factory with no arguments that returns it.
     """
-    text = spec.source.nonlinear_model
-    if text is None:
-        raise InputError(f"{spec.name}: the design has no source.nonlinear_model; add "
-                         "nonlinear_model = \"module:function\" to [source]")
-    factory = import_entry(text, "source.nonlinear_model")
+    from .linearize import NonlinearModel
+
+    src = spec.source
+    if src.nonlinear_model_file is not None:
+        where = f"source.nonlinear_function = \"{src.nonlinear_function}\""
+        obj = _import_file(Path(src.nonlinear_model_file), src.nonlinear_function or "",
+                           "source.nonlinear_model_file", callable_only=False)
+    elif src.nonlinear_model is not None:
+        where = f"source.nonlinear_model = \"{src.nonlinear_model}\""
+        obj = import_entry(src.nonlinear_model, "source.nonlinear_model", callable_only=False)
+    else:
+        raise InputError(f"{spec.name}: the design has no nonlinear model; add "
+                         "nonlinear_model = \"module:function\" or nonlinear_model_file = "
+                         "\"file.py\" with nonlinear_function = \"name\" to [source]")
+    return nonlinear_model_from(obj, where, NonlinearModel)
+
+
+def nonlinear_model_from(obj, where: str, kind=None):
+    """``obj`` if it is a model, else ``obj()`` (a factory); InputError naming ``where``."""
+    if kind is None:
+        from .linearize import NonlinearModel as kind
+    if isinstance(obj, kind):
+        return obj
+    if not callable(obj):
+        raise InputError(f"{where} is a {type(obj).__name__}, neither a NonlinearModel nor a "
+                         "function returning one; name the model or its factory")
     try:
-        model = factory()
+        model = obj()
     except Exception as exc:
-        raise InputError(f"source.nonlinear_model = \"{text}\" raised {type(exc).__name__}: "
-                         f"{_one_line(exc)}; fix the model factory") from None
+        raise InputError(f"{where} raised {type(exc).__name__}: {_one_line(exc)}; fix the "
+                         "model factory (it is called with no arguments)") from None
     if model is None:
-        raise InputError(f"source.nonlinear_model = \"{text}\" returned None; return the "
-                         "model object")
+        raise InputError(f"{where} returned None; return the model object")
     return model
 
 

@@ -64,7 +64,7 @@ def test_sampled_data_loop_matches_exact_zoh_discretization(n_ctrl):
     t = np.arange(0.0, 12.0 + T / 2, T)
     ref = np.where(t >= 0.5, 1.0, 0.0)
     gust = np.full_like(t, 0.7)  # constant: the plant input is then exactly held
-    traj = Trajectory(time=t, points=(t / 6.0 * 10.0)[:, None], variable_names=("speed",),
+    traj = Trajectory(time=t, points=(t / 12.0 * 10.0)[:, None], variable_names=("speed",),
                       references={"pos": ref}, inputs={"gust": gust})
     res = simulate(_plant_model(), ctl, traj, substeps=8)
     # Reference loop by hand with the exact ZOH plant (scipy) and the table's matrices.
@@ -120,7 +120,7 @@ def test_name_mismatch_and_short_trajectory():
     t = np.linspace(0.0, 1.0, 11)
     with pytest.raises(InputError, match="angle"):
         simulate(_plant_model(), ctl, Trajectory(t, np.zeros((11, 1)), ("speed",)))
-    ctl = TableController(build_table(_controller_family(1), sample_time=0.5))
+    ctl = TableController(build_table(_controller_family(0), sample_time=0.5))
     with pytest.raises(InputError, match="shorter than one sample"):
         simulate(_plant_model(), ctl, Trajectory(t[:2], np.zeros((2, 1)), ("speed",)))
 

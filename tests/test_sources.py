@@ -217,5 +217,34 @@ def test_nonlinear_model(folder, monkeypatch):
     spec = design(folder, 'model_file = "usermodel.py"\nfunction = "msd"\n'
                           'nonlinear_model = "usermodel:factory"')
     assert type(load_nonlinear_model(spec)).__name__ == "Sim"
-    with pytest.raises(InputError, match="no source.nonlinear_model"):
+    with pytest.raises(InputError, match="has no nonlinear model"):
         load_nonlinear_model(design(folder))
+
+
+def test_nonlinear_model_file_beside_the_design(folder):
+    """``nonlinear_model_file`` is a path relative to the design file (schema, like
+    ``model_file``); it names the model itself or a factory with no arguments."""
+    sub = folder / "models"
+    sub.mkdir()
+    (sub / "plantmodel.py").write_text(textwrap.dedent('''
+        import numpy as np
+        from schedule.linearize import NonlinearModel
+
+        MODEL = NonlinearModel(("x",), ("u",), ("y",), lambda x, u, p: -x + u,
+                               lambda x, u, p: x, description="first order")
+
+        def make():
+            return MODEL
+    '''))
+    for name in ("MODEL", "make"):
+        spec = design(folder, 'model_file = "usermodel.py"\nfunction = "msd"\n'
+                              'nonlinear_model_file = "models/plantmodel.py"\n'
+                              f'nonlinear_function = "{name}"')
+        assert load_nonlinear_model(spec).description == "first order"
+    with pytest.raises(InputError, match="nonlinear_function: missing"):
+        design(folder, 'model_file = "usermodel.py"\nfunction = "msd"\n'
+                       'nonlinear_model_file = "models/plantmodel.py"')
+    gone = design(folder, 'model_file = "usermodel.py"\nfunction = "msd"\n'
+                          'nonlinear_model_file = "plantmodel.py"\nnonlinear_function = "make"')
+    with pytest.raises(InputError, match="nonlinear_model_file .*plantmodel.py does not exist"):
+        load_nonlinear_model(gone)

@@ -9,11 +9,7 @@ from pathlib import Path
 import click
 
 from ..errors import InputError
-
-_SUFFIX = {"csv": ".csv", "json": ".json", "hdf5": ".h5", "fmu": ".fmu"}
-# schedule.export.FORMATS, spelled out so that `--help` does not import numpy
-# (tests/test_export_cli.py checks that the two agree)
-_FORMATS = ("csv", "json", "hdf5", "c", "fmu")
+from ..table_files import DEFAULT_PREFIX, FORMATS, folder_target, format_of_suffix, listing
 
 
 def export_settings(family) -> dict:
@@ -81,13 +77,13 @@ def _raw_limits(items) -> dict:
 @click.command("export")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--format", "-f", "formats", multiple=True,
-              type=click.Choice(_FORMATS),
+              type=click.Choice(FORMATS),
               help="Table format; repeat for several (then --out is a folder). fmu: an FMI "
                    "2.0 co-simulation unit. Default: the design file's [export] formats.")
 @click.option("--out", "-o", required=True, type=click.Path(),
               help="Output file (csv/json/hdf5; fmu: NAME.fmu, NAME a C identifier), folder "
                    "(c: <prefix>_table.h and .c), or, for several formats, a folder receiving "
-                   "table.csv, table.json, table.h5, c/, table.fmu.")
+                   f"{listing()}.")
 @click.option("--sample-time", type=float, default=None,
               help="Sample time in s; 0 = continuous table. Default: design [export].")
 @click.option("--method", type=click.Choice(["tustin", "zoh"]), default=None,
@@ -99,7 +95,7 @@ def _raw_limits(items) -> dict:
               help='Table breakpoints, e.g. "rope_length=3:30:28,payload_mass=2000,5000,20000" '
                    "(start:stop:count or a list; unnamed variables keep the design grid), or "
                    "a file in that syntax.")
-@click.option("--prefix", default="sched", show_default=True,
+@click.option("--prefix", default=DEFAULT_PREFIX, show_default=True,
               help="Prefix of all C names (format c).")
 @click.option("--no-binary", is_flag=True,
               help="Format fmu: write a source-only unit (no host build).")
@@ -122,6 +118,9 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
         formats = settings["formats"] or ("json",)
     formats = tuple(dict.fromkeys(formats))
     sample_time = settings["sample_time"] if sample_time is None else sample_time
+    if method is not None and sample_time == 0:
+        raise InputError(f"--method {method} discretizes, but the sample time is 0 (a "
+                         "continuous table); give --sample-time > 0 s or drop --method")
     method = method or settings["method"]
     prewarp = (settings["prewarp"] if method == "tustin" else 0.0) if prewarp is None \
         else prewarp
@@ -136,6 +135,11 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                              "(seconds)")
     if formats == ("fmu",):
         model_identifier(out)
+    if len(formats) == 1:
+        named = format_of_suffix(out)
+        if named is not None and named != formats[0]:
+            raise InputError(f"--out {out} names a {named} file but the format is "
+                             f"{formats[0]}; give --out with a matching suffix or -f {named}")
     table = build_table(family, breakpoints=breakpoints, sample_time=sample_time,
                         method=method, prewarp=prewarp, source_sha256=file_sha256(family_file),
                         limits=settings["limits"])
@@ -169,8 +173,7 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                 raise InputError(f"cannot create folder {out}: {exc.strerror}; choose another "
                                  "--out") from None
         for fmt in formats:
-            target = out / "c" if fmt == "c" else out / f"table{_SUFFIX[fmt]}"
-            written += write(fmt, target)
+            written += write(fmt, folder_target(out, fmt))
     info = {"family": str(family_file), "formats": list(formats),
             "paths": [str(p) for p in written], "nodes": int(table.A.shape[0]),
             "shape": dict(zip([v.name for v in table.variables], table.shape, strict=True)),
@@ -180,8 +183,10 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
             "outputs": list(table.control_names), "source_sha256": table.source_sha256,
             "limits": table.actuator_limits.to_metadata(table.control_names),
             "anti_windup": table.anti_windup, "notes": notes
-            + ([table.extra["anti_windup_note"]] if table.extra.get("anti_windup_note")
-               else [])}
+            + [table.extra[k] for k in ("anti_windup_note",) if table.extra.get(k)],
+            "warnings": [table.extra[k] for k in ("sample_time_note",) if table.extra.get(k)]}
+    for warning in info["warnings"]:
+        click.echo(f"warning: {warning}", err=True)
     if as_json:
         click.echo(json.dumps(info, indent=1))
         return

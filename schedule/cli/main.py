@@ -1,7 +1,9 @@
 """The ``schedule`` command group. Thin: each verb lives in its own module.
 
 Any :class:`schedule.errors.ScheduleError` becomes ``error: <message>`` on
-stderr and exit code 2, never a traceback.
+stderr and exit code 2, never a traceback; so does an option-parser error
+(unknown option, bad value, missing argument), in one line naming the help
+to read.
 """
 
 from __future__ import annotations
@@ -40,6 +42,27 @@ class _Group(click.Group):
         except ScheduleError as exc:
             click.echo(f"error: {exc}", err=True)
             sys.exit(2)
+
+    def main(self, args=None, prog_name=None, complete_var=None, standalone_mode=True,
+             **extra):
+        """Like click's, but a usage error is one line ``error: ... (see '... --help')``
+        with exit code 2 (click's own shows usage, a hint and the error on four lines)."""
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        try:
+            rv = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except click.UsageError as exc:
+            message = " ".join(exc.format_message().split())
+            path = exc.ctx.command_path if exc.ctx is not None else "schedule"
+            click.echo(f"error: {message} (see '{path} --help')", err=True)
+            sys.exit(2)
+        except click.ClickException as exc:
+            exc.show()
+            sys.exit(exc.exit_code)
+        except click.Abort:
+            click.echo("Aborted!", err=True)
+            sys.exit(1)
+        sys.exit(rv if isinstance(rv, int) else 0)
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})

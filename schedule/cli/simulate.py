@@ -24,14 +24,29 @@ def _model_entry(family) -> str | None:
 
 
 def _load_model(entry: str):
-    from ..sources import import_entry
-    factory = import_entry(entry, "nonlinear model")
+    from ..sources import import_entry, nonlinear_model_from
+
+    obj = import_entry(entry, "nonlinear model", callable_only=False)
+    return nonlinear_model_from(obj, f"nonlinear model \"{entry}\"")
+
+
+def _design_model(family):
+    """``(model, label)`` from the family's design (``nonlinear_model`` or
+    ``nonlinear_model_file``, relative to the design's folder); ``(None, None)`` if none."""
+    from ..design_file import parse_design
+    from ..sources import load_nonlinear_model
+
     try:
-        return factory()
-    except Exception as exc:  # the user's factory raised
-        msg = " ".join(str(exc).split())[:120]
-        raise InputError(f"nonlinear model \"{entry}\" raised {type(exc).__name__}: {msg}; "
-                         "fix the model factory") from None
+        spec = parse_design(family.design_text or "", family.design_base_dir or ".",
+                            name="family design text")
+    except InputError:
+        entry = _model_entry(family)
+        return (_load_model(entry), entry) if entry else (None, None)
+    src = spec.source
+    if src.nonlinear_model is None and src.nonlinear_model_file is None:
+        return None, None
+    label = src.nonlinear_model or f"{src.nonlinear_model_file}:{src.nonlinear_function}"
+    return load_nonlinear_model(spec), label
 
 
 #: the bundled crane's large step: trolley 60 m at the longest rope and the heaviest payload
@@ -90,8 +105,8 @@ def _looks_like_crane(model) -> bool:
 @click.option("--method", type=click.Choice(["tustin", "zoh"]), default=None,
               help="Discretization when exporting now. Default: design [export], else tustin.")
 @click.option("--model", "model_entry", default=None,
-              help="module:function returning the nonlinear model. Default: the design's "
-                   "source.nonlinear_model.")
+              help="module:name of the nonlinear model (or of a function returning it). "
+                   "Default: the design's source.nonlinear_model or nonlinear_model_file.")
 @click.option("--substeps", type=click.IntRange(1, 1000), default=4, show_default=True,
               help="Runge-Kutta steps per sample interval.")
 @click.option("--step", "step_text", default=None,
@@ -118,11 +133,18 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     from .export import export_settings
 
     family = read_family(family_file)
-    entry = model_entry or _model_entry(family)
-    if not entry:
-        raise InputError("the family's design names no source.nonlinear_model; add it to "
-                         "[source] or pass --model module:function")
-    model = _load_model(entry)
+    if table_file is not None and (sample_time is not None or method is not None):
+        given = "--sample-time" if sample_time is not None else "--method"
+        raise InputError(f"{given} applies when the table is exported now, but --table "
+                         f"{table_file} brings its own ({given} would be ignored); drop one")
+    if model_entry:
+        entry, model = model_entry, _load_model(model_entry)
+    else:
+        model, entry = _design_model(family)
+    if model is None:
+        raise InputError("the family's design names no nonlinear model; add nonlinear_model "
+                         "(or nonlinear_model_file) to [source] or pass --model "
+                         "module:function")
     if table_file is not None:
         controller = TableController(table_file)
     else:
@@ -134,6 +156,8 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
                             prewarp=settings["prewarp"] if (method or settings["method"])
                             == "tustin" else 0.0, source_sha256=file_sha256(family_file),
                             limits=settings["limits"])
+        if table.extra.get("sample_time_note"):
+            click.echo(f"warning: {table.extra['sample_time_note']}", err=True)
         controller = TableController(table)
     names = tuple(v.name for v in controller.table.variables)
     exogenous = [u for u in model.input_names if u not in controller.table.control_names]
@@ -161,6 +185,8 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             at = _parse_point(step_at, names) if step_at else dict(at)
         step = (measured, size, at)
     result = simulate(model, controller, traj, substeps=substeps)
+    for note in result.notes:
+        click.echo(f"warning: {note}", err=True)
     summary = result.summary()
     summary.update({"family": str(family_file), "model": entry,
                     "sample_time": controller.sample_time, "method": controller.table.method,
@@ -171,8 +197,9 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
         summary["step"], step_files = _step_comparison(model, table, step, substeps)
         files.update(step_files)
     files["summary.json"] = json.dumps(summary, indent=1) + "\n"
-    files.update(result_plots(result, title=f"{entry} under the scheduled table "
-                                            f"(T = {controller.sample_time:g} s)"))
+    what = getattr(model, "description", "") or "the nonlinear model"
+    files.update(result_plots(result, title=f"Under the scheduled table (T = "
+                                            f"{controller.sample_time:g} s): {what}"))
     paths = write_dir_atomic(out, files, "simulation folder")
     if as_json:
         summary["paths"] = [str(p) for p in paths]
@@ -180,14 +207,18 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
         return
     click.echo(f"simulated {summary['duration']:g} s in {summary['samples']} samples "
                f"(T = {controller.sample_time:g} s, {controller.table.method})")
+    units = summary["units"]
     for key, value in summary.items():
         if key.startswith(("max_abs", "final_error")):
-            click.echo(f"  {key:<40} {value:.4g}")
+            unit = units.get(key.partition(":")[2], "")
+            click.echo(f"  {key:<40} {value:.4g}" + (f" {unit}" if unit else ""))
     if step is not None:
         st = summary["step"]
         where = ", ".join(f"{k}={v:g}" for k, v in st["at"].items())
         over = st["overshoot_percent"]
-        click.echo(f"step {st['size']:g} in {st['output']} at {where}: overshoot "
+        unit = units.get(st["output"], "")
+        click.echo(f"step {st['size']:g}{' ' + unit if unit else ''} in {st['output']} at "
+                   f"{where}: overshoot "
                    f"{over['anti_windup']:.1f} % with anti-windup, {over['plain']:.1f} % "
                    f"without (step.png)")
     for p in paths:

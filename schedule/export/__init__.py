@@ -13,6 +13,7 @@ import os
 from pathlib import Path
 
 from ..errors import InputError
+from ..table_files import DEFAULT_PREFIX, FILE_NAMES, FORMATS, folder_target
 from .antiwindup import ActuatorLimits
 from .c_source import c_source_text, write_c_source
 from .csv_table import read_csv_table, write_csv_table
@@ -23,18 +24,17 @@ from .json_table import read_json_table, write_json_table
 from .runtime import TableController, interpolate_matrices, read_table
 from .table import ScheduledTable, build_table, file_sha256, parse_breakpoints
 
-FORMATS = ("csv", "json", "hdf5", "c", "fmu")
-
-__all__ = ["FORMATS", "ActuatorLimits", "ScheduledTable", "TableController", "build_table",
+__all__ = ["FORMATS", "FILE_NAMES", "DEFAULT_PREFIX", "ActuatorLimits", "ScheduledTable",
+           "TableController", "build_table",
            "c_source_text", "discretize", "file_sha256", "interpolate_matrices",
            "parse_breakpoints",
            "read_csv_table", "read_hdf5_table", "read_json_table", "read_table",
            "write_c_source", "write_csv_table", "write_hdf5_table", "write_json_table",
-           "write_fmu", "write_table"]
+           "write_fmu", "write_table", "write_tables"]
 
 
 def write_table(table: ScheduledTable, fmt: str, out: str | os.PathLike,
-                prefix: str = "sched") -> list[Path]:
+                prefix: str = DEFAULT_PREFIX) -> list[Path]:
     """Write ``table`` in format ``fmt`` (one of :data:`FORMATS`) to ``out``.
 
     For "c", ``out`` is a folder that receives ``<prefix>_table.h`` and
@@ -53,3 +53,23 @@ def write_table(table: ScheduledTable, fmt: str, out: str | os.PathLike,
     if fmt == "fmu":
         return [write_fmu(out, table).path]
     raise InputError(f"unknown table format {fmt!r}; use one of {', '.join(FORMATS)}")
+
+
+def write_tables(table: ScheduledTable, formats, folder: str | os.PathLike,
+                 prefix: str = DEFAULT_PREFIX, binary: bool = True) -> tuple[list[Path], list]:
+    """Write ``table`` in several formats into ``folder`` under the names of
+    :data:`schedule.table_files.FILE_NAMES` (``table.csv``, ``c/<prefix>_table.c``...).
+
+    The folder must exist. Returns ``(paths, fmu_outcomes)``.
+    """
+    paths: list[Path] = []
+    outcomes = []
+    for fmt in formats:
+        target = folder_target(folder, fmt)
+        if fmt == "fmu":
+            outcome = write_fmu(target, table, binary=binary)
+            outcomes.append(outcome)
+            paths.append(outcome.path)
+        else:
+            paths += write_table(table, fmt, target, prefix=prefix)
+    return paths, outcomes

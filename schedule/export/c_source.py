@@ -27,6 +27,7 @@ import numpy as np
 
 from ..atomic import write_dir_atomic
 from ..errors import InputError
+from ..table_files import DEFAULT_PREFIX
 from .table import ScheduledTable
 
 _IDENT = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,30}")
@@ -94,7 +95,7 @@ def _unit_texts(units, names) -> list[str]:
     return [f" [{c_comment(u)}]" if u else "" for u in units]
 
 
-def c_source_text(table: ScheduledTable, prefix: str = "sched") -> tuple[str, str]:
+def c_source_text(table: ScheduledTable, prefix: str = DEFAULT_PREFIX) -> tuple[str, str]:
     """Return ``(header_text, source_text)`` for ``table`` with name prefix ``prefix``."""
     p = check_prefix(prefix)
     P = p.upper()
@@ -496,7 +497,7 @@ static int {p}_solve(long m, double *M, double *b)
 
 
 def write_c_source(out_dir: str | os.PathLike, table: ScheduledTable,
-                   prefix: str = "sched") -> list[Path]:
+                   prefix: str = DEFAULT_PREFIX) -> list[Path]:
     """Write ``<prefix>_table.h`` and ``<prefix>_table.c`` into folder ``out_dir`` atomically."""
     header, source = c_source_text(table, prefix)
     return write_dir_atomic(out_dir, {f"{prefix}_table.h": header,

@@ -419,6 +419,76 @@ def _match_index(values: np.ndarray, design: np.ndarray) -> np.ndarray:
     return out
 
 
+#: sample at least this many times per period of the fastest closed-loop mode (common
+#: practice)
+SAMPLES_PER_PERIOD = 10
+
+
+def fastest_mode(family: Family) -> tuple[float, int, str]:
+    """The fastest mode the discrete table must follow: ``(|lambda| in rad/s, point, what)``.
+
+    The largest eigenvalue modulus of the closed loops (generalized plant with the
+    controller, lower LFT) at the family's successful design points; when the family
+    holds no plant that fits its controllers, that of the controllers themselves
+    (``what`` says which).
+    """
+    ok = np.flatnonzero(np.asarray(family.ok, dtype=bool))
+    K = {k: np.asarray(family.controller[k], dtype=float)[ok] for k in MATRICES}
+    A, what = K["A"], "controller"
+    plant = {k: np.asarray(v, dtype=float) for k, v in (family.plant or {}).items()}
+    n, ny, nu = K["A"].shape[1], K["B"].shape[2], K["C"].shape[1]
+    nx = plant["A"].shape[1] if "A" in plant and np.ndim(plant["A"]) == 3 else 0
+    want = {"A": (nx, nx), "B2": (nx, nu), "C2": (ny, nx), "D22": (ny, nu)}
+    fits = nx > 0 and all(k in plant and plant[k].shape[1:] == shape
+                          for k, shape in want.items())
+    if fits and n == nx:
+        from ..check import PLANT_KEYS, closed_loop_many
+        from ..errors import ScheduleError
+
+        try:
+            A = closed_loop_many({k: plant[k][ok] for k in PLANT_KEYS}, K)[0]
+            what = "closed-loop"
+        except (ScheduleError, KeyError, ValueError, np.linalg.LinAlgError):
+            pass
+    if A.shape[1] == 0:
+        return 0.0, int(ok[0]) if ok.size else 0, what
+    speed = np.abs(np.linalg.eigvals(A)).max(axis=1)
+    j = int(np.argmax(speed))
+    return float(speed[j]), int(ok[j]), what
+
+
+def check_sample_time(family: Family, sample_time: float) -> str:
+    """Refuse a sample time the table cannot follow; warn about one slower than common practice.
+
+    With ``w`` the fastest mode of :func:`fastest_mode` and ``T`` the sample time:
+    ``w T >= pi`` puts the mode above the Nyquist frequency (InputError); fewer than
+    :data:`SAMPLES_PER_PERIOD` samples per period ``2 pi / w`` returns a warning
+    (common practice), else "". Both say the numbers and the sample time to use.
+    """
+    T = float(sample_time)
+    if not T > 0:
+        return ""
+    w, k, what = fastest_mode(family)
+    if w <= 0:
+        return ""
+    names = family.variable_names
+    where = ", ".join(f"{n}={x:g}" for n, x in zip(names, np.asarray(family.points)[k],
+                                                   strict=True))
+    advice = 2.0 * math.pi / (SAMPLES_PER_PERIOD * w)
+    if w * T >= math.pi:
+        raise InputError(f"sample time {T:g} s is too slow: the fastest {what} mode, "
+                         f"{w:.3g} rad/s at ({where}), lies above the Nyquist frequency "
+                         f"pi/T = {math.pi / T:.3g} rad/s; give a sample time of at most "
+                         f"{advice:.3g} s ({SAMPLES_PER_PERIOD} samples per period, common "
+                         "practice)")
+    per_period = 2.0 * math.pi / (w * T)
+    if per_period < SAMPLES_PER_PERIOD:
+        return (f"sample time {T:g} s gives {per_period:.1f} samples per period of the "
+                f"fastest {what} mode ({w:.3g} rad/s at {where}); common practice takes at "
+                f"least {SAMPLES_PER_PERIOD}: a sample time of at most {advice:.3g} s")
+    return ""
+
+
 def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
                 method: str = "tustin", prewarp: float = 0.0, source_sha256: str = "",
                 tool_version: str | None = None, limits=None) -> ScheduledTable:
@@ -445,7 +515,10 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
     Raises
     ------
     InputError
-        Unknown variables, breakpoints outside the bounds, an empty family.
+        Unknown variables, breakpoints outside the bounds, an empty family, a sample
+        time slower than the Nyquist limit of the fastest mode (:func:`check_sample_time`;
+        a sample time merely slower than common practice leaves a warning in
+        ``table.extra["sample_time_note"]`` instead).
     NumericalError
         A discretization fails at a node (the message names the node).
     """
@@ -554,6 +627,7 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
     H = None if plant is None else observer_input_gain(mats["B2"], mats["D22"], mats["B"],
                                                        mats["D"])
     labels = [_node_label(variables, row) for row in nodes]
+    sampling_note = check_sample_time(family, sample_time) if sample_time else ""
     if sample_time:
         disc = discretize(mats["A"], mats["B"], mats["C"], mats["D"], sample_time, method,
                           prewarp, labels=labels)
@@ -581,6 +655,8 @@ def build_table(family: Family, breakpoints=None, sample_time: float = 0.0,
         limits = ActuatorLimits.from_specs(table.control_names, limits)
     H, note = _anti_windup_gain(table, H, continuous, labels, limits.any)
     extra = {"anti_windup_note": note} if note else {}
+    if sampling_note:
+        extra["sample_time_note"] = sampling_note
     table = replace(table, H=H, limits=limits if limits.any else None, extra=extra)
     validate_table(table, "table")
     return table
