@@ -7,6 +7,11 @@ against the crane model, writes the report, exports the scheduled tables
 and the anti-windup gain), simulates the nonlinear crane under the exported discrete
 controller while hoisting and travelling, and returns a short summary.
 
+The demo copies its design file and envelope file into the output folder and
+designs from those copies, so every ``schedule`` command of the tour (printed
+at the end, :data:`NEXT_COMMANDS`) works from that folder. Tables get the
+names ``schedule export`` gives them (:mod:`schedule.table_files`).
+
 The crane is an invented scenario (see ``operating_points/README.md``). A
 crane controller is safety critical: the demo is illustrative; real designs
 need validation on the machine and compliance with the applicable codes and
@@ -30,13 +35,24 @@ from .errors import InputError
 CAUTION = ("Results are design aids: validate in simulation and hardware tests and follow the "
            "applicable codes and licensed practice.")
 
-#: file and folder names inside the demo output folder
+#: file and folder names inside the demo output folder (tables: schedule.table_files)
+DESIGN_FILE = "crane_design.toml"
+ENVELOPE_FILE = "crane_envelope.h5"
 FAMILY_FILE = "crane-family.h5"
 REPORT_DIR = "report"
 TABLE_DIR = "tables"
 SIMULATION_DIR = "simulation"
 SUMMARY_FILE = "summary.json"
-FMU_FILE = "crane_table.fmu"  # the stem is the FMI model identifier: a C identifier
+TABLE_FORMATS = ("csv", "json", "c", "fmu")
+
+#: the tour, stage by stage, run from the demo folder (README.md, "A short tour")
+NEXT_COMMANDS = (
+    f"schedule design {DESIGN_FILE} --out crane.h5",
+    "schedule inspect crane.h5",
+    "schedule check crane.h5 --report report",
+    "schedule export crane.h5 --format c --out table",
+    "schedule simulate crane.h5 --out sim",
+)
 
 
 @dataclass
@@ -51,7 +67,29 @@ class DemoOutcome:
 
 def bundled_design_path() -> Path:
     """Path of the demo design file shipped with the package."""
-    return Path(str(resources.files("schedule.demo_crane").joinpath("crane_design.toml")))
+    return Path(str(resources.files("schedule.demo_crane").joinpath(DESIGN_FILE)))
+
+
+def copy_demo_inputs(out: Path) -> Path:
+    """Copy the bundled design and envelope files into ``out``; return the design's copy.
+
+    A copy already there is left alone when it is byte-for-byte the bundled file;
+    a changed one is refused (InputError) rather than overwritten: it may be the
+    user's own edit.
+    """
+    from .atomic import write_file_atomic
+
+    source = bundled_design_path().parent
+    for name in (DESIGN_FILE, ENVELOPE_FILE):
+        data = (source / name).read_bytes()
+        target = out / name
+        if target.exists():
+            if target.is_file() and target.read_bytes() == data:
+                continue
+            raise InputError(f"{target} exists and differs from the bundled {name}; move it "
+                             "away or give another --out (the demo does not overwrite it)")
+        write_file_atomic(target, lambda tmp, data=data: Path(tmp).write_bytes(data), name)
+    return out / DESIGN_FILE
 
 
 def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
@@ -70,10 +108,10 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     -------
     DemoOutcome
     """
-    from .atomic import write_dir_atomic
+    from .atomic import write_dir_atomic, write_text_atomic
     from .check import CheckSettings, check_family
     from .design_file import load_design
-    from .export import build_table, file_sha256, write_fmu, write_table
+    from .export import build_table, file_sha256, write_tables
     from .family import design_family
     from .report import write_report
     from .simulate import crane_trajectory, result_csv, result_plots, simulate
@@ -84,7 +122,7 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     if out.exists() and not out.is_dir():
         raise InputError(f"demo output {out} is a file; give a folder path with --out")
     out.mkdir(parents=True, exist_ok=True)
-    spec = load_design(bundled_design_path())
+    spec = load_design(copy_demo_inputs(out))
     names = [v.name for v in spec.variables]
     units = [v.unit for v in spec.variables]
     files: dict[str, Path] = {}
@@ -107,12 +145,10 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
                         limits=spec.limits)
     tables = out / TABLE_DIR
     tables.mkdir(exist_ok=True)
-    files["csv"] = write_table(table, "csv", tables / "crane-table.csv")[0]
-    files["json"] = write_table(table, "json", tables / "crane-table.json")[0]
-    c_files = write_table(table, "c", tables / "c", prefix="crane")
-    files["c_header"], files["c_source"] = sorted(c_files, key=lambda p: p.suffix != ".h")
-    fmu = write_fmu(tables / FMU_FILE, table)
-    files["fmu"] = fmu.path
+    paths, (fmu,) = write_tables(table, TABLE_FORMATS, tables)
+    for p in paths:
+        key = {".h": "c_header", ".c": "c_source"}.get(p.suffix, p.suffix.lstrip("."))
+        files[key] = p
 
     announce("simulate")
     from .export import TableController
@@ -130,9 +166,11 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
                        time.perf_counter() - t0)
     summary["fmu"] = {"platform": fmu.platform, "note": fmu.note}
     summary_path = out / SUMMARY_FILE
-    summary_path.write_text(json.dumps(summary, indent=1, default=str) + "\n")
+    write_text_atomic(summary_path, json.dumps(summary, indent=1, default=str) + "\n",
+                      "demo summary")
     files["summary"] = summary_path
-    return DemoOutcome(_lines(summary), summary, files, bool(result.all_passed))
+    return DemoOutcome(_lines(summary) + next_steps(out), summary, files,
+                       bool(result.all_passed))
 
 
 def _summary(family, result, sim: dict, names, units, files, out: Path, seconds: float) -> dict:
@@ -207,6 +245,12 @@ def _lines(s: dict) -> list[str]:
         f"done in {s['seconds']:.0f} s. {CAUTION}",
     ]
     return lines
+
+
+def next_steps(out: str | os.PathLike) -> list[str]:
+    """The closing lines: the tour's commands to try in the demo folder."""
+    return ["", f"next, stage by stage in {out} (its design and envelope files are there):",
+            f"  cd {out}"] + [f"  {c}" for c in NEXT_COMMANDS]
 
 
 def _num(x) -> str:

@@ -8,10 +8,15 @@ Figures, in our own visual style (:data:`STYLE`):
 - ``gamma_opt.png``: the optimal gamma a controller synthesized at each point
   would reach, against the family's common gamma;
 - ``margins.png``: loop-at-a-time disk margins at the plant input (gain and
-  phase) over the envelope;
+  phase) over the envelope, with the required margins of the pass criterion
+  (:func:`margin_requirement`) marked on the colour bars (one variable: as
+  lines) and the points below them crossed;
 - ``controller_sv.png``: the controller's largest singular value over
-  frequency along the diagonal line from the lower to the upper corner of
-  the envelope.
+  frequency along the scheduling variable (one variable) or along the
+  diagonal line from the lower to the upper corner of the envelope.
+
+Leave-one-out predictions that do not decide the verdict (evidence only) are
+drawn apart, as hollow diamonds outside the colour scales.
 
 Every file is written to a temporary name in the target folder and renamed,
 so a failed run never leaves a half-written file.
@@ -63,14 +68,18 @@ EVIDENCE = "#d68910"  # leave-one-out evidence that does not gate the verdict
 
 
 class _AggFigures:
-    """The two pyplot calls we use, on bare Agg figures: no global backend switch, no GUI."""
+    """The two pyplot calls we use, on bare Agg figures: no global backend switch, no GUI.
+
+    Figures use matplotlib's constrained layout, which places colour bars and their
+    labels beside their own axes, clear of the neighbouring panel's labels.
+    """
 
     @staticmethod
     def subplots(*args, figsize=None, **kw):
         from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
 
-        fig = Figure(figsize=figsize)
+        fig = Figure(figsize=figsize, layout="constrained")
         FigureCanvasAgg(fig)
         return fig, fig.subplots(*args, **kw)
 
@@ -84,6 +93,15 @@ def _save_figure(fig, path: Path) -> None:
                                                     bbox_inches="tight"), "figure")
 
 
+def margin_requirement(result: CheckResult) -> tuple[float, float]:
+    """The required input disk margins ``(gain dB, phase deg)`` of the pass criterion.
+
+    Read from the check's settings, the same numbers the verdict uses (never a
+    second copy of 6 dB / 45 deg).
+    """
+    return float(result.settings.gain_margin_db), float(result.settings.phase_margin_deg)
+
+
 def _label(result: CheckResult, j: int) -> str:
     unit = result.units[j] if j < len(result.units) else ""
     return f"{result.variable_names[j]} [{unit}]" if unit else result.variable_names[j]
@@ -94,12 +112,36 @@ def _finite(x, cap: float) -> np.ndarray:
     return np.where(np.isfinite(a), a, cap)
 
 
-def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
+EVIDENCE_LABEL = "leave-one-out (evidence only)"
+
+
+def _evidence(ax, x, y, label: str = EVIDENCE_LABEL) -> None:
+    """Evidence-only points: hollow diamonds outside the colour scale."""
+    if len(x):
+        ax.scatter(x, y, marker="D", s=30, facecolors="none", edgecolors=EVIDENCE,
+                   linewidths=1.0, label=label, zorder=3)
+
+
+def _bar_requirement(ax, mappable, cbar, level: float, label: str) -> None:
+    """Mark ``level`` on the colour bar (a line kept inside the colour range) and in the
+    legend of ``ax``."""
+    lo, hi = mappable.get_clim()
+    lo, hi = min(lo, level), max(hi, level)
+    pad = 0.05 * (hi - lo) if hi > lo else 0.05 * max(abs(level), 1.0)
+    mappable.set_clim(lo - pad * (level <= lo), hi + pad * (level >= hi))
+    cbar.ax.axhline(level, color=ACCENT, lw=2.0)
+    ax.plot([], [], color=ACCENT, lw=2.0, label=label)
+
+
+def _ratio_figures(plt, result: CheckResult) -> list[tuple[str, object]]:
+    """(file name, figure) of norm / gamma over each pair of variables (or along one)."""
     # Points that count in the verdict carry the colour scale; leave-one-out
-    # predictions shown as evidence only are marked where they fail, apart.
+    # predictions shown as evidence only are drawn apart where they fail.
     keep = result.gates
     evidence_fail = ~result.passed & ~keep
     evidence_pts = result.points[evidence_fail]
+    evidence_ratio = _finite(result.values["ratio"][evidence_fail], np.nan)
+    level = 1.0 + result.settings.gamma_tolerance
     result = _subset(result, keep)
     v = result.values
     ratio = _finite(v["ratio"], np.nan)
@@ -107,7 +149,7 @@ def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
     fail = ~result.passed
     grid = result.kind == "grid"
     d = result.points.shape[1]
-    paths = []
+    out = []
     pairs = list(itertools.combinations(range(d), 2)) if d >= 2 else [(0, None)]
     for a, b in pairs:
         fig, ax = plt.subplots(figsize=(5.2, 4.0))
@@ -115,36 +157,44 @@ def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
             order = np.argsort(result.points[:, a])
             ax.plot(result.points[order, a], shown[order], "o", ms=3.5, color=INK,
                     label="check points")
-            ax.axhline(1.0 + result.settings.gamma_tolerance, color=ACCENT, lw=1.0, ls="--",
-                       label="gamma (1 + tolerance)")
+            ax.axhline(level, color=ACCENT, lw=1.0, ls="--", label="gamma (1 + tolerance)")
             ax.set_ylabel("closed-loop norm / gamma")
             ax.plot(result.points[fail, a], shown[fail], "x", color=ACCENT, ms=7,
                     label="failing")
             ax.plot(result.points[grid, a], shown[grid], "s", mfc="none", color=DESIGN,
                     label="design points")
+            cap = np.nanmax(shown, initial=level) * 1.2
+            _evidence(ax, evidence_pts[:, a], np.where(np.isfinite(evidence_ratio),
+                                                        evidence_ratio, cap),
+                      "leave-one-out above gamma (evidence only)")
             name = f"ratio_{result.variable_names[a]}.png"
         else:
             sc = ax.scatter(result.points[:, a], result.points[:, b], c=shown, s=22,
-                            vmin=np.nanmin(shown), vmax=max(np.nanmax(shown), 1.0))
-            fig.colorbar(sc, ax=ax, label="closed-loop norm / gamma")
+                            vmin=np.nanmin(shown), vmax=max(np.nanmax(shown), level))
+            cbar = fig.colorbar(sc, ax=ax, label="closed-loop norm / gamma")
+            _bar_requirement(ax, sc, cbar, level, f"pass limit {level:g} (line on the bar)")
             ax.scatter(result.points[grid, a], result.points[grid, b], marker="s", s=46,
                        facecolors="none", edgecolors=DESIGN, label="design points")
             if fail.any():
                 ax.scatter(result.points[fail, a], result.points[fail, b], marker="x", s=50,
                            color=ACCENT, label="failing")
-            if len(evidence_pts):
-                ax.scatter(evidence_pts[:, a], evidence_pts[:, b], marker="D", s=30,
-                           facecolors="none", edgecolors=EVIDENCE, linewidths=1.0,
-                           label="leave-one-out above gamma (evidence)")
+            _evidence(ax, evidence_pts[:, a], evidence_pts[:, b],
+                      "leave-one-out above gamma (evidence only)")
             ax.set_ylabel(_label(result, b))
             name = f"ratio_{result.variable_names[a]}_{result.variable_names[b]}.png"
         ax.set_xlabel(_label(result, a))
         ax.set_title("Norm over gamma at frozen points")
-        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2)
-        path = out / name
-        _save_figure(fig, path)
+        _figure_legend(fig, [ax])
+        out.append((name, fig))
+    return out
+
+
+def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
+    paths = []
+    for name, fig in _ratio_figures(plt, result):
+        _save_figure(fig, out / name)
         plt.close(fig)
-        paths.append(path)
+        paths.append(out / name)
     return paths
 
 
@@ -155,28 +205,74 @@ def _envelope_axes(result: CheckResult):
     return x, y
 
 
-def _scatter_panel(fig, ax, result, values, label, title):
+def _scatter_panel(fig, ax, result, values, label, title, requirement=None, evidence=None,
+                   unit=""):
+    """Values over the envelope (coloured in 2-D, along the variable in 1-D).
+
+    ``requirement`` (a number in the values' unit) draws a line on the colour bar (2-D)
+    or across the axes (1-D) and crosses the points below it; ``evidence`` masks the
+    points that do not decide the verdict: they are drawn apart, off the colour scale.
+    """
+    v = np.asarray(values, dtype=float)
+    evidence = np.zeros(v.size, bool) if evidence is None else np.asarray(evidence, bool)
     x, y = _envelope_axes(result)
+    gate = ~evidence
+    below = gate & (v < requirement) if requirement is not None else np.zeros(v.size, bool)
     if y is None:
-        ax.plot(x, values, "o", ms=3.5, color=INK)
+        order = np.argsort(x[gate])
+        ax.plot(x[gate][order], v[gate][order], "o", ms=3.5, color=INK, label="check points")
+        if requirement is not None:
+            ax.axhline(requirement, color=ACCENT, lw=1.0, ls="--",
+                       label=f"required {requirement:g} {unit}".rstrip())
+        _evidence(ax, x[evidence], v[evidence])
         ax.set_ylabel(label)
     else:
-        sc = ax.scatter(x, y, c=values, s=22)
-        fig.colorbar(sc, ax=ax, label=label)
+        sc = ax.scatter(x[gate], y[gate], c=v[gate], s=22)
+        cbar = fig.colorbar(sc, ax=ax, label=label)
+        if requirement is not None:
+            text = f"required {requirement:g} {unit}".rstrip()
+            _bar_requirement(ax, sc, cbar, requirement, f"{text} (line on the bar)")
+        _evidence(ax, x[evidence], y[evidence])
         ax.set_ylabel(_label(result, 1))
+    if below.any():
+        yy = v if y is None else y
+        ax.scatter(x[below], yy[below], marker="x", s=40, color=ACCENT, zorder=4,
+                   label="below the requirement")
     ax.set_xlabel(_label(result, 0))
     ax.set_title(title)
 
 
-def _gamma_opt_plot(plt, result: CheckResult, out: Path) -> Path | None:
+def _figure_legend(fig, axes) -> None:
+    """One legend below the figure for the labelled artists of ``axes`` (each label once);
+    constrained layout keeps room for it."""
+    entries: dict[str, object] = {}
+    for ax in axes:
+        for handle, text in zip(*ax.get_legend_handles_labels(), strict=True):
+            entries.setdefault(text, handle)
+    if entries:
+        fig.legend(list(entries.values()), list(entries), loc="outside lower center",
+                   ncol=min(len(entries), 3))
+
+
+def _gamma_opt_figure(plt, result: CheckResult):
     g = np.asarray(result.values.get("gamma_opt", []), dtype=float)
-    keep = np.isfinite(g)
+    # leave-one-out rows sit at the design points with the design points' plants: their
+    # gamma_opt repeats the design points' and is left out
+    keep = np.isfinite(g) & (np.asarray(result.kind) != "leave_one_out")
     if not keep.any():
         return None
     sub = _subset(result, keep)
     fig, ax = plt.subplots(figsize=(5.2, 4.0))
     _scatter_panel(fig, ax, sub, g[keep] / result.gamma, "gamma_opt / family gamma",
                    "Price of interpolation: local optimum vs common gamma")
+    _figure_legend(fig, [ax])
+    return fig
+
+
+def _gamma_opt_plot(plt, result: CheckResult, out: Path) -> Path | None:
+    fig = _gamma_opt_figure(plt, result)
+    if fig is None:
+        return None
     path = out / "gamma_opt.png"
     _save_figure(fig, path)
     plt.close(fig)
@@ -194,24 +290,32 @@ def _subset(result: CheckResult, mask) -> CheckResult:
                    gating=None if result.gating is None else np.asarray(result.gating)[mask])
 
 
-def _margins_plot(plt, result: CheckResult, out: Path) -> Path:
+def _margins_figure(plt, result: CheckResult):
     v = result.values
     fig, axes = plt.subplots(1, 2, figsize=(10.0, 4.0))
     gain = _finite(v["in_gain_db"], 40.0)
     phase = np.asarray(v["in_phase_deg"], dtype=float)
+    need_gain, need_phase = margin_requirement(result)
+    evidence = ~result.gates
     _scatter_panel(fig, axes[0], result, np.minimum(gain, 40.0), "gain margin [dB] (cap 40)",
-                   "Disk gain margin at the plant input")
+                   "Disk gain margin at the plant input", need_gain, evidence, "dB")
     _scatter_panel(fig, axes[1], result, phase, "phase margin [deg]",
-                   "Disk phase margin at the plant input")
+                   "Disk phase margin at the plant input", need_phase, evidence, "deg")
+    _figure_legend(fig, axes)
+    return fig
+
+
+def _margins_plot(plt, result: CheckResult, out: Path) -> Path:
+    fig = _margins_figure(plt, result)
     path = out / "margins.png"
     _save_figure(fig, path)
     plt.close(fig)
     return path
 
 
-def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path) -> Path | None:
-    if controller is None:
-        return None
+def _controller_sv_figure(plt, controller, family):
+    """The controller's largest singular value over frequency: along the variable (1-D),
+    or along the diagonal from the lower to the upper corner of the envelope."""
     lo = np.array([v.lower for v in family.variables])
     hi = np.array([v.upper for v in family.variables])
     t = np.linspace(0.0, 1.0, 41)
@@ -229,13 +333,26 @@ def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path)
         sv = np.linalg.norm(R(w), ord=2, axis=(2, 3))
     db = 20 * np.log10(np.maximum(sv, 1e-300))
     fig, ax = plt.subplots(figsize=(6.0, 4.0))
-    im = ax.pcolormesh(w, t, db, shading="auto")
+    one = len(family.variables) == 1
+    im = ax.pcolormesh(w, pts[:, 0] if one else t, db, shading="auto")
     ax.set_xscale("log")
     fig.colorbar(im, ax=ax, label="largest singular value of K(jw) [dB]")
     ax.set_xlabel("frequency [rad/s]")
-    ax.set_ylabel("position on the diagonal (0 = lower corner, 1 = upper)")
-    ax.set_title("Controller gain along the envelope diagonal")
+    if one:
+        v = family.variables[0]
+        ax.set_ylabel(f"{v.name} [{v.unit}]" if v.unit else v.name)
+        ax.set_title(f"Controller gain along {v.name}")
+    else:
+        ax.set_ylabel("position on the diagonal (0 = lower corner, 1 = upper)")
+        ax.set_title("Controller gain along the envelope diagonal")
     ax.grid(False)
+    return fig
+
+
+def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path) -> Path | None:
+    if controller is None:
+        return None
+    fig = _controller_sv_figure(plt, controller, family)
     path = out / "controller_sv.png"
     _save_figure(fig, path)
     plt.close(fig)
@@ -301,11 +418,13 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> s
               "(Shamma and Athans 1990; Desoer 1969): the loop stays exponentially stable "
               "when sum_j |dp_j/dt| max ||dP/dp_j||_2 < 1 (spectral norm, maximum over the "
               "check points).", "",
-              "| variable | max ‖dP/dp‖ | bound alone [unit/s] | bound all at once [unit/s] |",
+              "| variable | max ‖dP/dp‖ | bound alone | bound all at once |",
               "|---|---:|---:|---:|"]
+        units = dict(zip(result.variable_names, result.units, strict=False))
         for n, w, a, b in zip(result.rate.names, result.rate.worst, result.rate.single,
                               result.rate.joint, strict=True):
-            L.append(f"| {n} | {_fmt(w)} | {_fmt(a)} | {_fmt(b)} |")
+            per = f" {units[n]}/s" if units.get(n) else " per s"
+            L.append(f"| {n} | {_fmt(w)} | {_fmt(a)}{per} | {_fmt(b)}{per} |")
     L += ["", "## Proposed refinement", ""]
     if result.proposals is None or len(result.proposals) == 0:
         L.append("None: no in-between point fails.")

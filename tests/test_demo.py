@@ -59,8 +59,10 @@ def test_readme_gives_the_demo_and_test_commands():
 
 def test_summary_lines(demo_run):
     out, output = demo_run
-    # stage announcements ("== design") go to stderr; the summary is the rest
-    lines = [ln for ln in output.splitlines() if ln.strip() and not ln.startswith("==")]
+    # stage announcements ("== design") go to stderr; the summary is the rest, up to the
+    # closing "next, ..." block of commands
+    summary = output.split("\nnext, ")[0]
+    lines = [ln for ln in summary.splitlines() if ln.strip() and not ln.startswith("==")]
     assert 10 <= len(lines) <= 16
     text = "\n".join(lines)
     for key in ("worst gamma_opt", "common gamma", "worst norm / gamma", "disk margins",
@@ -101,23 +103,53 @@ def test_report_plots_and_pages(demo_run):
     assert (report / "summary.html").read_text().lstrip().lower().startswith("<!doctype html")
 
 
+def test_demo_folder_holds_the_tour_inputs_and_prints_the_tour(demo_run):
+    """The demo copies its design and envelope files and ends with the README's tour."""
+    from schedule.design_file import load_design
+
+    out, output = demo_run
+    for name in ("crane_design.toml", "crane_envelope.h5"):
+        assert (out / name).read_bytes() == (DESIGN.parent / name).read_bytes()
+    spec = load_design(out / "crane_design.toml")  # the tour's first command's input
+    assert spec.source.operating_points == (out / "crane_envelope.h5").resolve()
+    with h5py.File(out / "crane-family.h5", "r") as f:  # designed from the copy
+        assert Path(f.attrs["design_base_dir"]) == out.resolve()
+    commands = [ln.strip() for ln in output.split("\nnext, ", 1)[1].splitlines()[1:]]
+    assert commands[0] == f"cd {out}"
+    readme = README.read_text()
+    for command in commands[1:]:
+        assert command.startswith("schedule ") and f"$ {command}\n" in readme, command
+
+
 def test_tables_load_with_general_readers(demo_run):
+    """The demo's tables carry the names `schedule export` gives a folder and the channel
+    units of the design file (read with csv, json, plain text and fmpy)."""
     out, _ = demo_run
     tables = out / "tables"
-    with open(tables / "crane-table.csv", newline="") as fh:
+    names = sorted(p.name for p in tables.iterdir())
+    assert names == ["c", "table.csv", "table.fmu", "table.json"]
+    with open(tables / "table.csv", newline="") as fh:
         rows = [r for r in csv.reader(ln for ln in fh if not ln.startswith("#"))]
     assert len(rows) == 1 + 35
-    doc = json.loads((tables / "crane-table.json").read_text())
-    assert doc  # valid JSON
-    assert (tables / "c" / "crane_table.h").exists()
+    doc = json.loads((tables / "table.json").read_text())
+    assert [(s["name"], s["unit"]) for s in doc["inputs"]] == [("trolley_position", "m"),
+                                                                 ("sway_angle", "rad")]
+    assert [(s["name"], s["unit"]) for s in doc["outputs"]] == [("force_command", "kN")]
+    header = (tables / "c" / "sched_table.h").read_text()
+    assert "y[0] = trolley_position [m]" in header and "u[0] = force_command [kN]" in header
 
 
 def test_demo_writes_a_valid_fmu(demo_run):
-    # Reference: fmpy's validation (an independent FMI importer) finds no problem.
+    # Reference: fmpy's validation (an independent FMI importer) finds no problem, and
+    # its reader finds the units of the design file on the unit's variables.
     fmpy_validation = pytest.importorskip("fmpy.validation")
+    from fmpy import read_model_description
+
     out, text = demo_run
-    fmu = out / "tables" / "crane_table.fmu"
+    fmu = out / "tables" / "table.fmu"
     assert fmpy_validation.validate_fmu(str(fmu)) == []
+    units = {v.name: v.unit for v in read_model_description(str(fmu)).modelVariables}
+    assert units["force_command"] == "kN" and units["sway_angle"] == "rad"
     assert "FMU" in text
 
 
@@ -126,7 +158,7 @@ def test_exported_c_compiles(demo_run, tmp_path):
     out, _ = demo_run
     c = out / "tables" / "c"
     subprocess.run(["cc", "-std=c99", "-Wall", "-Wextra", "-Werror", "-c",
-                    str(c / "crane_table.c"), "-o", str(tmp_path / "t.o")], check=True)
+                    str(c / "sched_table.c"), "-o", str(tmp_path / "t.o")], check=True)
 
 
 def test_simulation_outputs(demo_run):
