@@ -409,10 +409,10 @@ def check_points_for(family: Family, settings: CheckSettings, spec=None):
             if miss:
                 holes = np.array([[bps[j][i] for j, i in enumerate(ij)] for ij in miss])
         grid = env.RectangularGrid(bps, holes=holes, variables=variables)
-        if settings.centres:
-            add(env.cell_centres(grid), "centre")
-        if settings.midpoints:
-            add(env.edge_midpoints(grid), "midpoint")
+        between, between_kinds = env.in_between_points(grid, settings.centres,
+                                                       settings.midpoints)
+        for kind in ("centre", "midpoint"):
+            add(between[between_kinds == kind], kind)
     if settings.samples:
         fn = env.sobol if settings.sampler == "sobol" else env.latin_hypercube
         add(fn(variables, int(settings.samples), seed=int(settings.seed)), settings.sampler)

@@ -4,7 +4,8 @@
   points are listed with the last variable varying fastest (C order).
 - :class:`ScatteredPoints`: an arbitrary set of distinct points.
 - In-between points for the frozen-point checks: :func:`cell_centres`,
-  :func:`edge_midpoints`, :func:`latin_hypercube` (McKay, Beckman and Conover
+  :func:`edge_midpoints` (both, each point once: :func:`in_between_points`),
+  :func:`latin_hypercube` (McKay, Beckman and Conover
   1979), :func:`sobol` (Sobol' 1967, scrambled as in Owen 1998; both via
   ``scipy.stats.qmc``), and :func:`points_from_file` (CSV).
 
@@ -29,8 +30,8 @@ from .errors import InputError
 from .types import SchedulingVariable
 
 __all__ = ["RectangularGrid", "ScatteredPoints", "validate_variables", "check_inside",
-           "cell_centres", "edge_midpoints", "latin_hypercube", "sobol", "points_from_file",
-           "point_text"]
+           "cell_centres", "edge_midpoints", "in_between_points", "latin_hypercube", "sobol",
+           "points_from_file", "point_text"]
 
 
 def point_text(names: Sequence[str], row) -> str:
@@ -281,6 +282,31 @@ def edge_midpoints(grid: RectangularGrid) -> np.ndarray:
                 row[j] = 0.5 * (grid.breakpoints[j][idx[j]] + grid.breakpoints[j][idx[j] + 1])
                 rows.append(row)
     return np.array(rows, dtype=float).reshape(-1, grid.d)
+
+
+def in_between_points(grid: RectangularGrid, centres: bool = True, midpoints: bool = True
+                      ) -> tuple[np.ndarray, np.ndarray]:
+    """Cell centres and edge midpoints, each point once: ``(points (M, d), kinds (M,))``.
+
+    With one variable (or a variable with a single breakpoint) a cell is an edge, so its
+    centre and its midpoint coincide; such a point is checked once, as a "centre".
+    Kinds are "centre" and "midpoint", centres first.
+    """
+    parts = []
+    if centres:
+        parts.append((cell_centres(grid), "centre"))
+    if midpoints:
+        parts.append((edge_midpoints(grid), "midpoint"))
+    rows, kinds, seen = [], [], set()
+    for pts, kind in parts:
+        for row in pts:
+            key = tuple(row.tolist())
+            if key not in seen:
+                seen.add(key)
+                rows.append(row)
+                kinds.append(kind)
+    return (np.array(rows, dtype=float).reshape(-1, grid.d),
+            np.array(kinds, dtype=object))
 
 
 def _scale(unit: np.ndarray, variables: Sequence[SchedulingVariable]) -> np.ndarray:

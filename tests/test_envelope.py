@@ -21,6 +21,7 @@ from schedule.envelope import (
     ScatteredPoints,
     cell_centres,
     edge_midpoints,
+    in_between_points,
     latin_hypercube,
     points_from_file,
     sobol,
@@ -93,6 +94,27 @@ def test_centres_and_midpoints_values():
     # x-edges: (0,1)-(2,1), (0,3)-(2,3), (2,1)-(6,1); y-edges: (0,1)-(0,3), (2,1)-(2,3)
     np.testing.assert_array_equal(edge_midpoints(g), [[1.0, 1.0], [1.0, 3.0], [4.0, 1.0],
                                                       [0.0, 2.0], [2.0, 2.0]])
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.lists(st.integers(1, 5), min_size=1, max_size=3))
+def test_in_between_points_once_each(sizes):
+    """Centres and midpoints coincide exactly when a cell is an edge: when at most one
+    variable has more than one breakpoint (combinatorics: a cell spans every axis with
+    two or more breakpoints, an edge spans one). Each point is then checked once."""
+    bps = tuple(np.cumsum(np.arange(1, s + 1, dtype=float)) for s in sizes)
+    g = RectangularGrid(bps)
+    pts, kinds = in_between_points(g)
+    assert len({tuple(r) for r in pts.tolist()}) == len(pts)  # no point twice
+    cells = int(np.prod([max(s - 1, 1) for s in sizes]))
+    edges = sum((sizes[j] - 1) * int(np.prod([sizes[k] for k in range(len(sizes)) if k != j]))
+                for j in range(len(sizes)))
+    wide = sum(s > 1 for s in sizes)
+    assert len(pts) == cells + (0 if wide == 1 else edges)
+    assert (kinds == "centre").sum() == cells
+    # the one-variable case the checks met: 7 breakpoints, 6 points, all centres
+    one, k1 = in_between_points(RectangularGrid((np.arange(7.0),)))
+    assert len(one) == 6 and set(k1) == {"centre"}
 
 
 @pytest.mark.parametrize("n", [1, 7, 16, 50])
