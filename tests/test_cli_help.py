@@ -33,6 +33,22 @@ def test_help_runs_and_unknown_option_exits_2(verb):
     res = runner.invoke(main, [verb, "--no-such-option"])
     assert res.exit_code == 2
     assert "Traceback" not in res.output
+    # one line, naming the option and the help to read (click alone prints four)
+    lines = res.output.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ")
+    assert "--no-such-option" in lines[0] and f" {verb} --help')" in lines[0]
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["export"], "Missing argument 'FAMILY_FILE'"),
+    (["export", "f.h5", "-f", "xml", "-o", "t"], "'xml' is not one of"),
+    (["nosuchverb"], "No such command 'nosuchverb'"),
+])
+def test_usage_errors_are_one_line(args, needle):
+    res = CliRunner().invoke(main, args)
+    lines = res.output.strip().splitlines()
+    assert res.exit_code == 2 and len(lines) == 1
+    assert lines[0].startswith("error: ") and needle in lines[0]
 
 
 def test_version():

@@ -237,3 +237,47 @@ def test_denser_breakpoints_with_the_real_multilinear_interpolant():
         np.testing.assert_array_equal(M[[0, 2, 4]], F)
         np.testing.assert_allclose(M[1], (F[0] + F[1]) / 2, rtol=1e-12, atol=1e-14)
         np.testing.assert_allclose(M[3], (F[1] + F[2]) / 2, rtol=1e-12, atol=1e-14)
+
+
+# ----------------------------------------------------------------------------- sample time
+def _loop_family(k: float, with_plant: bool = True):
+    """Plant x' = -x + u, y = x with the controller x_K' = -x_K + y, u = -k x_K at two points.
+
+    Closed loop [[-1, -k], [1, -1]]: eigenvalues -1 +- j sqrt(k), modulus sqrt(1 + k)
+    (derived by hand). Without the plant, the controller's own mode is at 1 rad/s.
+    """
+    from schedule.types import Family, SchedulingVariable
+
+    N = 2
+    one = np.ones((N, 1, 1))
+    zero = np.zeros((N, 1, 1))
+    plant = {"A": -one, "B1": zero, "B2": one, "C1": zero, "C2": one, "D11": zero,
+             "D12": zero, "D21": zero, "D22": zero}
+    if not with_plant:
+        plant = {key: np.zeros((N, 1, 2)) for key in plant}  # does not fit the controller
+    return Family(variables=(SchedulingVariable("p", "", 0.0, 1.0),),
+                  points=np.array([[0.0], [1.0]]), status=np.array(["ok", "ok"]),
+                  reasons=("", ""), gamma_opt=np.ones(N), gamma=2.0, plant=plant,
+                  controller={"A": -one, "B": one, "C": -k * one, "D": zero}, pieces={},
+                  measured_names=("y",), control_names=("u",),
+                  breakpoints=(np.array([0.0, 1.0]),), grid_index=np.array([[0], [1]]))
+
+
+def test_sample_time_against_the_fastest_closed_loop_mode():
+    # k = 24: closed-loop modes of modulus sqrt(1 + 24) = 5 rad/s (analytic, above).
+    fam = _loop_family(24.0)
+    w, _, what = table_mod.fastest_mode(fam)
+    assert w == pytest.approx(5.0, rel=1e-12) and what == "closed-loop"
+    # Nyquist: w T >= pi is refused, with the numbers; 10 samples per period (common
+    # practice) means T <= 2 pi / (10 w) = 0.1257 s.
+    with pytest.raises(InputError, match=r"fastest closed-loop mode, 5 rad/s .* above the "
+                                         r"Nyquist frequency pi/T = 4.49 rad/s; give a "
+                                         r"sample time of at most 0.126 s"):
+        build_table(fam, sample_time=0.7)
+    warned = build_table(fam, sample_time=0.2)
+    assert "6.3 samples per period" in warned.extra["sample_time_note"]
+    assert "at most 0.126 s" in warned.extra["sample_time_note"]
+    assert "sample_time_note" not in build_table(fam, sample_time=0.12).extra
+    # no plant that fits: the controller's own mode (1 rad/s) is the reference
+    w, _, what = table_mod.fastest_mode(_loop_family(24.0, with_plant=False))
+    assert w == pytest.approx(1.0) and what == "controller"

@@ -85,6 +85,9 @@ def test_defaults_from_design_text(tmp_path):
     (["-f", "c"], "needs a discrete table"),
     (["-f", "c", "--sample-time", "0.1", "--prefix", "9x"], "prefix"),
     (["-f", "json", "--method", "zoh", "--sample-time", "0.1", "--prewarp", "1"], "Tustin only"),
+    (["-f", "json", "--method", "zoh", "--sample-time", "0"], "--method zoh discretizes, but "
+                                                              "the sample time is 0"),
+    (["-f", "csv"], "names a json file but the format is csv"),
 ])
 def test_bad_input_exit_2_one_line_no_output(tmp_path, family_file, args, msg):
     out = tmp_path / "out.json"

@@ -160,3 +160,19 @@ def test_model_exceptions_become_one_line_input_errors():
     with pytest.raises(InputError, match="raised IndexError") as info:
         linearize(model, [0.0], [0.0], {"a": 1.0})
     assert "\n" not in str(info.value)
+
+
+def test_units_travel_from_the_model_to_the_linear_plant():
+    """The model's units label the Jacobians' rows and columns (A in the state units per
+    second...): the LinearPlant carries them; a wrong count is a one-line error."""
+    import dataclasses
+
+    model = dataclasses.replace(_pendulum(), state_units=("rad", "rad/s"),
+                                input_units=("N m", ""), output_units=("m", "rad^2/s^2"))
+    plant = linearize(model, np.zeros(2), np.zeros(2), POINT)
+    assert plant.state_units == ("rad", "rad/s") and plant.input_units == ("N m", "")
+    assert plant.unit_of("output", "horizontal") == "m"
+    assert linearize(_pendulum(), np.zeros(2), np.zeros(2), POINT).state_units == ()
+    bad = dataclasses.replace(_pendulum(), state_units=("rad",))
+    with pytest.raises(InputError, match="state_units"):
+        linearize(bad, np.zeros(2), np.zeros(2), POINT)

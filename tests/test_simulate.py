@@ -185,6 +185,24 @@ def test_simulate_command(tmp_path, monkeypatch):
                                     "--trajectory", str(bad)])
     assert res.exit_code == 2 and "unknown column 'wind'" in res.output
     assert not out2.exists()
+    # an exported table brings its own sample time: --sample-time would be ignored
+    table = tmp_path / "t.json"
+    assert CliRunner().invoke(main, ["export", str(fam_path), "-f", "json", "-o", str(table),
+                                     "--sample-time", "0.05"]).exit_code == 0
+    res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2), "--table",
+                                    str(table), "--sample-time", "0.1",
+                                    "--trajectory", str(traj)])
+    assert res.exit_code == 2 and "--sample-time would be ignored" in res.output
+    assert not out2.exists()
+    # a trajectory leaving the envelope (speed bounds 0..10 m/s) is refused, naming it; it is
+    # linear between its rows, so its extremes are rows: the first outside is t = 2 s
+    far = tmp_path / "far.csv"
+    far.write_text("time,speed\n0,9\n1,10\n2,12\n3,12\n")
+    res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2),
+                                    "--trajectory", str(far), "--sample-time", "0.05"])
+    assert res.exit_code == 2 and "the trajectory leaves the envelope: speed =" in res.output
+    assert "speed = 12 m/s at t = 2 s (2 of 4 samples outside [0, 10] m/s)" in res.output
+    assert not out2.exists()
     # no model named anywhere
     fam = _controller_family(1)
     fam.design_text = ""
@@ -222,3 +240,24 @@ def test_simulate_step_comparison_with_limits(tmp_path, monkeypatch):
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(tmp_path / "s2"),
                                     "--trajectory", str(traj), "--step", "pos=3"])
     assert res.exit_code == 2 and "no actuator limits" in res.output
+
+
+def test_trajectory_inside_the_bounds_but_beyond_the_table_is_a_warning():
+    """The table clamps beyond its breakpoints: inside the envelope that is said, not
+    silent; outside the envelope (the bounds) the simulation is refused."""
+    from types import SimpleNamespace
+
+    from schedule.simulate import check_trajectory
+
+    table = SimpleNamespace(variables=(SchedulingVariable("speed", "m/s", 0.0, 10.0),),
+                            breakpoints=(np.array([2.0, 5.0, 8.0]),))
+    t = np.array([0.0, 1.0, 2.0, 3.0])
+    notes = check_trajectory(Trajectory(t, np.array([[3.0], [5.0], [9.0], [9.5]]),
+                                        ("speed",)), table)
+    assert len(notes) == 1
+    assert notes[0].startswith("speed = 9 m/s at t = 2 s is outside the table's breakpoints "
+                               "[2, 8] m/s (2 samples)")
+    assert check_trajectory(Trajectory(t, np.full((4, 1), 4.0), ("speed",)), table) == []
+    with pytest.raises(InputError, match=r"speed = -1 m/s at t = 3 s \(1 of 4 samples"):
+        check_trajectory(Trajectory(t, np.array([[3.0], [5.0], [0.0], [-1.0]]), ("speed",)),
+                         table)

@@ -109,6 +109,32 @@ def test_layout_read_by_plain_h5py(tmp_path):
             np.testing.assert_array_equal(f["plant"][k][()], fam.plant[k])
 
 
+def test_units_round_trip_and_files_without_units(tmp_path):
+    """docs/format.md: ``/names/units/<group>``, one unit per name, read back by h5py;
+    a family without units (as every file written before units existed) has no such
+    group and reads as "no units"."""
+    import dataclasses
+
+    units = {"measured": ("m", "rad"), "controls": ("kN",), "exogenous": ("m/s", "m"),
+             "performance": ("m", "kN"), "states": ("m", "m/s", "m")}
+    fam = dataclasses.replace(make_family(), units=units)
+    path = tmp_path / "family.h5"
+    write_family(path, fam)
+    with h5py.File(path, "r") as f:
+        assert [u.decode() for u in f["names/units/controls"][()]] == ["kN"]
+        assert [u.decode() for u in f["names/units/measured"][()]] == ["m", "rad"]
+    back = read_family(path)
+    assert back.units == units and back.units_of("controls") == ("kN",)
+    plain = tmp_path / "plain.h5"
+    write_family(plain, make_family())
+    with h5py.File(plain, "r") as f:
+        assert "units" not in f["names"]
+    assert read_family(plain).units == {} and read_family(plain).units_of("measured") == ("", "")
+    wrong = dataclasses.replace(make_family(), units={"controls": ("kN", "kN")})
+    with pytest.raises(InputError, match="2 units for 1 controls signals"):
+        write_family(tmp_path / "wrong.h5", wrong)
+
+
 def test_reproducible_bytes_except_created(tmp_path):
     # Same content written twice -> identical bytes (SHA-256 of the files).
     fam = make_family()

@@ -310,3 +310,20 @@ performance = ["zx", "zu"]
     assert optimal_gamma(gp, rtol=1e-7) == pytest.approx(a + np.sqrt(a * a + 2), rel=1e-5)
     with pytest.raises(Exception, match="weights"):
         parse_design(text + "\n[[weights.performance]]\noutput = \"zx\"\ngain = 1.0\n", tmp_path)
+
+
+def test_channel_units_from_the_design_and_the_plant():
+    """Units of the generalized plant's signals: the design's channels.units first, then
+    the plant's; weight states that filter a signal carry its unit (schema,
+    docs/design-file.md)."""
+    text = SPEC.replace('performance = ["y3", "y1"]\n',
+                        'performance = ["y3", "y1"]\nunits = { u1 = "kN", y1 = "m" }\n')
+    spec = parse_design(text, "/tmp")
+    lp = random_plant()
+    lp = LinearPlant(lp.A, lp.B, lp.C, lp.D, lp.state_names, lp.input_names, lp.output_names,
+                     ("m", "m/s", "rad", "rad/s"), ("N", "", "", "kN"), ("m", "V", "A"))
+    _, names = build_generalized_plant_named(spec, lp, {"p": 0.5})
+    u = names.units
+    assert u["measured"] == ("m", "V") and u["controls"] == ("kN", "")
+    assert u["exogenous"] == ("N", "m", "V") and u["performance"] == ("A", "m", "kN", "")
+    assert u["states"] == ("m", "m/s", "rad", "rad/s", "m", "kN", "", "", "")
