@@ -8,7 +8,7 @@ Validation is strict and happens before any numerical work: unknown keys,
 missing required keys, wrong types, NaN, bounds with ``lower >= upper``,
 duplicate names, unsorted breakpoints, weights that do not match the channels.
 Every problem raises :class:`schedule.errors.InputError` with one line naming
-the file, the key path (for example ``weights.performance[1].crossover``) and
+the file, the key path (for example ``weights.performance[1].bandwidth``) and
 the fix. Paths in the file are relative to the design file's folder; they are
 resolved here but their existence is checked only when they are opened
 (``schedule.sources``), so a family file can be re-checked on another machine.

@@ -93,13 +93,16 @@ def _save_figure(fig, path: Path) -> None:
                                                     bbox_inches="tight"), "figure")
 
 
+# The pass criterion's numbers, read where the verdict reads them (the check's settings),
+# never a second copy of 6 dB / 45 deg: the plots mark these two.
 def margin_requirement(result: CheckResult) -> tuple[float, float]:
-    """The required input disk margins ``(gain dB, phase deg)`` of the pass criterion.
-
-    Read from the check's settings, the same numbers the verdict uses (never a
-    second copy of 6 dB / 45 deg).
-    """
+    """The required input disk margins ``(gain dB, phase deg)`` of the pass criterion."""
     return float(result.settings.gain_margin_db), float(result.settings.phase_margin_deg)
+
+
+def ratio_limit(result: CheckResult) -> float:
+    """The largest passing closed-loop norm / gamma: ``1 + gamma_tolerance``."""
+    return 1.0 + float(result.settings.gamma_tolerance)
 
 
 def _label(result: CheckResult, j: int) -> str:
@@ -141,7 +144,7 @@ def _ratio_figures(plt, result: CheckResult) -> list[tuple[str, object]]:
     evidence_fail = ~result.passed & ~keep
     evidence_pts = result.points[evidence_fail]
     evidence_ratio = _finite(result.values["ratio"][evidence_fail], np.nan)
-    level = 1.0 + result.settings.gamma_tolerance
+    level = ratio_limit(result)
     result = _subset(result, keep)
     v = result.values
     ratio = _finite(v["ratio"], np.nan)

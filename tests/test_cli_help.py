@@ -56,3 +56,8 @@ def test_version():
 
     res = CliRunner().invoke(main, ["--version"])
     assert res.exit_code == 0 and schedule.__version__ in res.output
+
+
+def test_no_arguments_shows_the_help_not_an_error():
+    res = CliRunner().invoke(main, [])
+    assert "Usage:" in res.output and "error:" not in res.output

@@ -28,6 +28,10 @@ _VERBS = [
 ]
 
 
+# click >= 8.2 signals "no arguments, show the help" with a UsageError subclass
+_NO_ARGS = getattr(click.exceptions, "NoArgsIsHelpError", ())
+
+
 class _Group(click.Group):
     """A click group that turns ScheduleError into a one-line error and exit code 2."""
 
@@ -51,6 +55,9 @@ class _Group(click.Group):
             return super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
         try:
             rv = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except _NO_ARGS as exc:  # `schedule` alone or a verb without arguments: the help
+            exc.show()
+            sys.exit(exc.exit_code)
         except click.UsageError as exc:
             message = " ".join(exc.format_message().split())
             path = exc.ctx.command_path if exc.ctx is not None else "schedule"
