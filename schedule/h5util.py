@@ -1,30 +1,49 @@
-"""Small HDF5 helpers shared by the file formats (family file, operating-point file).
+"""Small HDF5 helpers shared by the file formats (family, operating-point and table files).
 
 - UTF-8 strings: :data:`STR`, :func:`strings` (to a dataset-ready array),
   :func:`decode_one` and :func:`decode` (back to Python ``str``).
 - The ``/variables`` group (names, units, bounds, optional breakpoints) that
   both formats use: :func:`write_variables` and :func:`read_variables`.
-- :func:`atomic_h5`: create a file through a temporary file in the same
-  folder and ``os.replace``, with fixed creation properties (``track_order``,
-  ``libver="earliest"``) so that equal content gives equal bytes.
+- :func:`atomic_h5`: build a file in memory with fixed creation properties
+  (``track_order``, ``libver="earliest"``, so that equal content gives equal
+  bytes) and write it through :func:`schedule.atomic.write_file_atomic`. The
+  HDF5 library never writes to disk itself, so a full disk is an ordinary
+  ``OSError`` (one line, no temporary left), not a damaged library state.
+- :func:`open_checked`: open an HDF5 input only after checking, from the
+  metadata alone, that it is safe to read (:func:`inspect_h5`), and turn any
+  later h5py failure into a one-line error.
+- :func:`expect`, :func:`check_format`: the layout checks the formats build on.
 
 Only plain arrays and UTF-8 strings go through here; nothing is pickled.
 """
 
 from __future__ import annotations
 
+import io
+import math
 import os
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
 
 import h5py
 import numpy as np
 
+from .errors import InputError, ScheduleError
 from .types import SchedulingVariable
 
 __all__ = ["STR", "strings", "decode_one", "decode", "write_variables", "read_variables",
-           "atomic_h5"]
+           "atomic_h5", "open_checked", "inspect_h5", "H5Contents", "expect", "check_format",
+           "MAX_OBJECTS"]
 
 STR = h5py.string_dtype("utf-8")
+SIGNATURE = b"\x89HDF\r\n\x1a\n"
+MAX_OBJECTS = 100_000  # groups + datasets; a family of 10^5 points needs about 100
+MAX_DEPTH = 16  # group nesting; the formats use 3
+MAX_ATTRIBUTES = 256  # per object
+MAX_STRING_ATTR_ELEMENTS = 64  # string attributes are scalars in every format
+MAX_ATTR_ELEMENTS = 4096  # numeric attribute arrays
 
 
 def strings(values) -> np.ndarray:
@@ -78,23 +97,355 @@ def read_variables(f: h5py.Group) -> tuple[tuple[SchedulingVariable, ...],
 
 
 def atomic_h5(path: str | os.PathLike, fill: Callable[[h5py.File], None]) -> None:
-    """Create ``path`` through a temporary file in the same folder and ``os.replace``.
+    """Create ``path`` atomically: build the file in memory, then write its bytes.
 
-    ``fill(f)`` writes the content into the open file. If it raises, the
-    temporary file is removed and an existing ``path`` is left as it was.
+    ``fill(f)`` writes the content into the open file. If it raises, nothing is
+    written and an existing ``path`` is left as it was.
 
     Raises
     ------
     InputError
-        The output folder does not exist.
+        The output folder does not exist or is not writable, or the write failed
+        (disk full, quota, file-size limit); one line, no temporary left behind.
     """
-    from .atomic import write_file_atomic
+    from .atomic import write_bytes_atomic
 
-    def writer(tmp: str) -> None:
-        # track_order and libver="earliest" fix the layout, so equal content
-        # gives equal bytes (h5py does not store object times by default).
-        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
-            fill(f)
-            f.flush()
+    buffer = io.BytesIO()
+    # track_order and libver="earliest" fix the layout, so equal content
+    # gives equal bytes (h5py does not store object times by default).
+    with h5py.File(buffer, "w", track_order=True, libver="earliest") as f:
+        fill(f)
+    write_bytes_atomic(path, buffer.getbuffer().tobytes(), "HDF5 file")
 
-    write_file_atomic(path, writer, "HDF5 file")
+
+# ----------------------------------------------------------------------------- safe reading
+@dataclass(frozen=True)
+class H5Contents:
+    """What an inspected file declares, from its metadata: dataset name -> (shape, dtype)."""
+
+    datasets: dict[str, tuple[tuple[int, ...], np.dtype]]
+    size: int
+
+    def __contains__(self, name: str) -> bool:
+        return name in self.datasets
+
+
+def _signature_at(path: Path, size: int) -> bool:
+    """The HDF5 signature at offset 0 or at a user-block boundary (512, 1024, 2048, ...)."""
+    offsets = [0] + [1 << k for k in range(9, 31) if (1 << k) + 8 <= size]
+    with open(path, "rb") as fh:
+        for off in offsets[:12]:
+            fh.seek(off)
+            if fh.read(8) == SIGNATURE:
+                return True
+    return False
+
+
+def _dtype_problem(dt: np.dtype) -> str | None:
+    """Why a dtype is not one of the plain ones (real numbers, UTF-8/ASCII strings), or None."""
+    if h5py.check_string_dtype(dt) is not None:
+        return None
+    if dt.fields is not None:
+        return "a compound (record or complex) type"
+    if dt.subdtype is not None:
+        return "an array type"
+    if h5py.check_vlen_dtype(dt) is not None:
+        return "a variable-length sequence type"
+    if h5py.check_ref_dtype(dt) is not None:
+        return "a reference type"
+    enum = h5py.check_enum_dtype(dt)
+    if enum is not None and dt.kind != "b":
+        return "an enumeration type"
+    if dt.kind == "c":
+        return "a complex type"
+    if dt.kind not in "biuf" or dt.itemsize > 8:
+        return f"type {dt}"
+    return None
+
+
+def _describe_bytes(n: float) -> str:
+    for unit, scale in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if n >= scale:
+            return f"{n / scale:.3g} {unit}"
+    return f"{int(n)} bytes"
+
+
+def _vlen_lengths(path: Path, ds: h5py.Dataset, n: int) -> int:
+    """Total bytes of the strings a contiguous variable-length string dataset refers to.
+
+    Each element is stored as a descriptor (length: 4 bytes, then the global-heap
+    address and index); the lengths are read straight from the file so that
+    elements aliasing one large heap object cannot multiply it in memory.
+    """
+    offset = ds.id.get_offset()
+    item = ds.id.get_type().get_size()
+    if offset is None or n == 0:
+        return 0
+    if item < 8:
+        raise InputError(f"{path}: dataset {ds.name} has a damaged string type; the file is "
+                         "corrupt")
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        raw = fh.read(n * item)
+    if len(raw) != n * item:
+        raise InputError(f"{path}: dataset {ds.name} lies beyond the end of the file; the "
+                         "file is truncated")
+    lengths = np.frombuffer(raw, dtype=np.dtype([("n", "<u4"), ("rest", f"V{item - 4}")]))["n"]
+    return int(lengths.sum(dtype=np.int64))
+
+
+def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
+    """Check an open HDF5 file from its metadata before any dataset is read.
+
+    Refused, each with a one-line message naming the object:
+    external links and soft links (every object must be stored in this file
+    under one name), objects reached twice (hard-link aliases and cycles),
+    named types, virtual datasets, datasets in external raw files, dtypes
+    other than real numbers and strings (compound, complex, enum, reference,
+    opaque, array), datasets declaring more bytes than they store (compressed
+    or sparse) or than the file holds, more than :data:`MAX_OBJECTS` objects,
+    and string data adding up to more than the file's size. String
+    attributes are read here, one at a time, to measure them.
+
+    Returns
+    -------
+    H5Contents
+        Every dataset's name, shape and dtype, for the format's layout checks.
+    """
+    path = Path(path)
+    size = os.stat(path).st_size
+    datasets: dict[str, tuple[tuple[int, ...], np.dtype]] = {}
+    seen: set[tuple] = set()
+    totals = {"stored": 0, "strings": 0, "objects": 0}
+    string_budget = size + (1 << 16)
+
+    def fail(name: str, problem: str, fix: str = "") -> InputError:
+        fix = fix or f"give a {what} written by this tool"
+        return InputError(f"{path}: {name} {problem}; {fix}")
+
+    def add_strings(name: str, nbytes: int) -> None:
+        totals["strings"] += nbytes
+        if totals["strings"] > string_budget:
+            raise fail(name, f"brings the text stored in the file to "
+                       f"{_describe_bytes(totals['strings'])}, more than the file's "
+                       f"{_describe_bytes(size)} (strings that alias one another)")
+
+    def check_attrs(obj, name: str) -> None:
+        keys = list(obj.attrs.keys())
+        if len(keys) > MAX_ATTRIBUTES:
+            raise fail(name, f"has {len(keys)} attributes (at most {MAX_ATTRIBUTES})")
+        for key in keys:
+            aid = h5py.h5a.open(obj.id, key.encode("utf-8"))
+            label = f"attribute '{key}' of {name}"
+            problem = _dtype_problem(aid.dtype)
+            if problem:
+                raise fail(label, f"has {problem}", "store plain numbers or UTF-8 text")
+            shape = aid.shape or ()
+            count = math.prod(shape)
+            if h5py.check_string_dtype(aid.dtype) is not None:
+                if count > MAX_STRING_ATTR_ELEMENTS:
+                    raise fail(label, f"holds {count} strings (at most "
+                               f"{MAX_STRING_ATTR_ELEMENTS})")
+                value = obj.attrs[key]
+                texts = [value] if np.ndim(value) == 0 else list(np.ravel(value))
+                add_strings(label, sum(len(t) for t in texts if isinstance(t, (str, bytes))))
+            else:
+                if count > MAX_ATTR_ELEMENTS:
+                    raise fail(label, f"holds {count} numbers (at most {MAX_ATTR_ELEMENTS})")
+                totals["stored"] += count * aid.dtype.itemsize
+
+    def check_dataset(ds: h5py.Dataset, name: str) -> None:
+        if ds.is_virtual:
+            raise fail(f"dataset {name}", "is a virtual dataset (its data live in other files)",
+                       "store the array itself in the file")
+        if ds.external:
+            raise fail(f"dataset {name}", "keeps its data in an external raw file "
+                       f"({ds.external[0][0]!r})", "store the array itself in the file")
+        shape = ds.shape
+        if shape is None:
+            raise fail(f"dataset {name}", "has no dataspace (a null dataset)")
+        problem = _dtype_problem(ds.dtype)
+        if problem:
+            raise fail(f"dataset {name}", f"has {problem}", "store plain numbers or UTF-8 text")
+        count = math.prod(shape)
+        item = ds.id.get_type().get_size()
+        declared = count * item
+        stored = ds.id.get_storage_size()
+        if declared > size:
+            raise fail(f"dataset {name}", f"declares shape {shape} ({_describe_bytes(declared)}) "
+                       f"in a file of {_describe_bytes(size)}",
+                       "the file is damaged or forged; regenerate it")
+        if stored < declared:
+            raise fail(f"dataset {name}", f"declares {_describe_bytes(declared)} but stores "
+                       f"{_describe_bytes(stored)} (compressed, sparse or damaged)",
+                       "store plain uncompressed arrays (h5py's default create_dataset)")
+        layout = ds.id.get_create_plist().get_layout()
+        offset = ds.id.get_offset() if layout == h5py.h5d.CONTIGUOUS else None
+        if offset is not None and offset + stored > size:
+            raise fail(f"dataset {name}", "lies beyond the end of the file",
+                       "the file is truncated; regenerate it")
+        totals["stored"] += stored
+        if h5py.check_string_dtype(ds.dtype) is not None and \
+                h5py.check_string_dtype(ds.dtype).length is None:
+            if layout == h5py.h5d.CONTIGUOUS:
+                add_strings(f"dataset {name}", _vlen_lengths(path, ds, count))
+            elif count <= MAX_STRING_ATTR_ELEMENTS:
+                data = ds[()]
+                texts = [data] if np.ndim(data) == 0 else list(np.ravel(data))
+                add_strings(f"dataset {name}",
+                            sum(len(t) for t in texts if isinstance(t, (str, bytes))))
+            else:
+                raise fail(f"dataset {name}", f"stores {count} strings in chunks",
+                           "store string arrays contiguously (h5py's default)")
+        datasets[name] = (tuple(int(s) for s in shape), ds.dtype)
+
+    def visit(group: h5py.Group, prefix: str, depth: int) -> None:
+        if depth > MAX_DEPTH:
+            raise fail(f"group {prefix or '/'}", f"is nested deeper than {MAX_DEPTH} levels")
+        for key in group:
+            name = f"{prefix}{key}"
+            link = group.get(key, getlink=True)
+            if isinstance(link, h5py.ExternalLink):
+                raise fail(f"'{name}'", f"is an external link to {link.filename!r}",
+                           "store the data in the file itself")
+            if isinstance(link, h5py.SoftLink):
+                raise fail(f"'{name}'", f"is a soft link to {link.path!r}",
+                           "store each object once, under its own name")
+            obj = group.get(key)
+            info = h5py.h5o.get_info(obj.id)
+            ident = (info.fileno, info.addr)
+            if ident in seen:
+                raise fail(f"'{name}'", "names an object already reached under another name "
+                           "(a hard-link alias or a cycle)",
+                           "store each object once, under its own name")
+            seen.add(ident)
+            totals["objects"] += 1
+            if totals["objects"] > MAX_OBJECTS:
+                raise fail("the file", f"holds more than {MAX_OBJECTS} objects")
+            check_attrs(obj, name)
+            if isinstance(obj, h5py.Group):
+                visit(obj, name + "/", depth + 1)
+            elif isinstance(obj, h5py.Dataset):
+                check_dataset(obj, name)
+            else:
+                raise fail(f"'{name}'", "is a named datatype", "store arrays and groups only")
+
+    check_attrs(f, "the root group")
+    visit(f, "", 1)
+    if totals["stored"] > size:
+        raise InputError(f"{path}: the datasets declare {_describe_bytes(totals['stored'])} in "
+                         f"a file of {_describe_bytes(size)} (overlapping or forged storage); "
+                         "regenerate the file")
+    return H5Contents(datasets, size)
+
+
+def _short(exc: BaseException) -> str:
+    return f"{type(exc).__name__}: {' '.join(str(exc).split())[:120]}"
+
+
+@contextmanager
+def open_checked(path: str | os.PathLike, what: str, fix: str
+                 ) -> Iterator[tuple[h5py.File, H5Contents]]:
+    """Open an HDF5 input for reading after checking it; yields ``(file, contents)``.
+
+    The path must be a readable regular file (:func:`schedule.paths.input_file`)
+    starting with the HDF5 signature; the structure is then checked by
+    :func:`inspect_h5` before the caller reads anything. Any h5py failure, now
+    or while the caller reads, becomes a one-line InputError naming the file
+    and ``fix``.
+    """
+    from .paths import input_file
+
+    path = input_file(path, what, fix)
+    size = os.stat(path).st_size
+    if size == 0 or not _signature_at(path, size):
+        raise InputError(f"{path} is not an HDF5 file{' (it is empty)' if size == 0 else ''}; "
+                         f"give a {what}")
+    try:
+        f = h5py.File(path, "r")
+    except Exception as exc:  # h5py raises OSError, KeyError, RuntimeError... on damage
+        raise InputError(f"{path} is corrupt or truncated ({_short(exc)}); {fix}") from None
+    with f:
+        try:
+            contents = inspect_h5(f, path, what)
+        except ScheduleError:
+            raise
+        except Exception as exc:
+            raise InputError(f"{path} is corrupt or truncated ({_short(exc)}); {fix}") from None
+        try:
+            yield f, contents
+        except ScheduleError:
+            raise
+        except (OSError, KeyError, RuntimeError, ValueError, TypeError, IndexError,
+                UnicodeDecodeError) as exc:
+            raise InputError(f"{path} is corrupt or truncated ({_short(exc)}); {fix}") from None
+
+
+def _describe(value) -> str:
+    if value is None:
+        return "missing"
+    if isinstance(value, bytes):
+        value = value.decode("utf-8", "replace")
+    if isinstance(value, str):
+        return f"the string {value[:40]!r}"
+    if isinstance(value, (bool, np.bool_)):
+        return f"the boolean {bool(value)}"
+    if isinstance(value, np.ndarray) and value.ndim > 0:
+        return f"an array of shape {value.shape}"
+    if isinstance(value, (int, np.integer)):
+        return f"the integer {int(value)}"
+    if isinstance(value, (float, np.floating)):
+        return f"the number {float(value):g}"
+    return f"a value of type {type(value).__name__}"
+
+
+def check_format(f: h5py.File, path: str | os.PathLike, name: str, version: int, what: str,
+                 fix: str) -> None:
+    """The root attributes ``format`` (the string ``name``) and ``format_version`` (``version``).
+
+    Raises
+    ------
+    InputError
+        Naming what the attribute holds instead: a string version ``"1"`` is
+        reported as a string, not as "version 1".
+    """
+    fmt = f.attrs.get("format")
+    text = fmt.decode("utf-8", "replace") if isinstance(fmt, bytes) else fmt
+    if not isinstance(text, str) or text != name:
+        raise InputError(f"{path} is not a {what} (attribute 'format' is {_describe(fmt)}, "
+                         f"expected the string '{name}'); {fix}")
+    v = f.attrs.get("format_version")
+    if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, np.integer)):
+        raise InputError(f"{path}: attribute 'format_version' is {_describe(v)}, expected the "
+                         f"integer {version}; {fix}")
+    if int(v) != version:
+        raise InputError(f"{path} has {what} format version {int(v)}; this tool reads version "
+                         f"{version}; {fix}")
+
+
+def expect(contents: H5Contents, path: str | os.PathLike, name: str, kind: str,
+           shape: Sequence[int | None], label: str, required: bool = True
+           ) -> tuple[int, ...] | None:
+    """Check one dataset's dtype kind and shape from the metadata; return its shape.
+
+    Parameters
+    ----------
+    kind : "number" (real numbers) or "string".
+    shape : expected shape; ``None`` entries are free (their value is returned).
+    label : the expected shape in words for the message, e.g. "(N, n, n)".
+    required : when False a missing dataset returns None.
+    """
+    if name not in contents.datasets:
+        if not required:
+            return None
+        raise InputError(f"{path}: dataset {name} is missing; the file is incomplete")
+    actual, dtype = contents.datasets[name]
+    is_string = h5py.check_string_dtype(dtype) is not None
+    if kind == "string" and not is_string:
+        raise InputError(f"{path}: dataset {name} holds {dtype} values, expected text")
+    if kind == "number" and is_string:
+        raise InputError(f"{path}: dataset {name} holds text, expected numbers")
+    if len(actual) != len(shape) or any(e is not None and a != e
+                                         for a, e in zip(actual, shape, strict=True)):
+        raise InputError(f"{path}: dataset {name} has shape {actual}, expected {label}")
+    return actual

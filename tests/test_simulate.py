@@ -47,8 +47,9 @@ def _controller_family(n=1):
     return Family(
         variables=(SchedulingVariable("speed", "m/s", 0.0, 10.0),), points=pts,
         status=np.array(["ok"] * N), reasons=("",) * N, gamma_opt=np.ones(N), gamma=1.1,
-        plant={k: np.zeros((N, 1, 1)) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12",
-                                                 "D21", "D22")},
+        # placeholder plant with the controller's two measured outputs and one control
+        plant={k: np.zeros((N, 2 if k in ("C2", "D21", "D22") else 1, 1)) for k in
+               ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")},
         controller={"A": np.repeat(Ac[None], N, 0), "B": np.repeat(Bc[None], N, 0),
                     "C": np.repeat(Cc[None], N, 0), "D": np.repeat(Dc[None], N, 0)},
         pieces={}, measured_names=("pos", "vel"), control_names=("force",),
