@@ -68,11 +68,12 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     -------
     DemoOutcome
     """
-    from .atomic import write_dir_atomic
+    from .atomic import write_dir_atomic, write_text_atomic
     from .check import CheckSettings, check_family
     from .design_file import load_design
     from .export import build_table, file_sha256, write_table
     from .family import design_family
+    from .paths import refuse_output_over_input
     from .report import write_report
     from .simulate import crane_trajectory, result_csv, result_plots, simulate
     from .sources import load_nonlinear_model
@@ -81,8 +82,18 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"demo output {out} is a file; give a folder path with --out")
-    out.mkdir(parents=True, exist_ok=True)
     spec = load_design(bundled_design_path())
+    tables = out / TABLE_DIR
+    refuse_output_over_input(
+        [out / FAMILY_FILE, out / SUMMARY_FILE, tables / "crane-table.csv",
+         tables / "crane-table.json"],
+        [bundled_design_path(), spec.source.operating_points, spec.source.validation],
+        folders=[out / REPORT_DIR, out / SIMULATION_DIR, tables / "c"])
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create demo output folder {out}: {exc.strerror}; choose "
+                         "another --out") from None
     names = [v.name for v in spec.variables]
     units = [v.unit for v in spec.variables]
     files: dict[str, Path] = {}
@@ -102,8 +113,11 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     announce("export")
     table = build_table(family, sample_time=spec.export.sample_time, method=spec.export.method,
                         prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path))
-    tables = out / TABLE_DIR
-    tables.mkdir(exist_ok=True)
+    try:
+        tables.mkdir(exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create folder {tables}: {exc.strerror}; choose another "
+                         "--out") from None
     files["csv"] = write_table(table, "csv", tables / "crane-table.csv")[0]
     files["json"] = write_table(table, "json", tables / "crane-table.json")[0]
     c_files = write_table(table, "c", tables / "c", prefix="crane")
@@ -124,7 +138,8 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     summary = _summary(family, result, sim.summary(), names, units, files, out,
                        time.perf_counter() - t0)
     summary_path = out / SUMMARY_FILE
-    summary_path.write_text(json.dumps(summary, indent=1, default=str) + "\n")
+    write_text_atomic(summary_path, json.dumps(summary, indent=1, default=str) + "\n",
+                      "demo summary")
     files["summary"] = summary_path
     return DemoOutcome(_lines(summary), summary, files, bool(result.all_passed))
 

@@ -13,20 +13,23 @@ Figures, in our own visual style (:data:`STYLE`):
   frequency along the diagonal line from the lower to the upper corner of
   the envelope.
 
-Every file is written to a temporary name in the target folder and renamed,
-so a failed run never leaves a half-written file.
+The report folder is written whole: every figure and page is rendered in
+memory and the folder is put in place in one step
+(:func:`schedule.atomic.write_dir_atomic`), so a killed or failed run leaves
+the previous report (or none), never a mix of old and new files.
 """
 
 from __future__ import annotations
 
 import html
+import io
 import itertools
 import os
 from pathlib import Path
 
 import numpy as np
 
-from .atomic import write_file_atomic, write_text_atomic
+from .atomic import write_dir_atomic
 from .check import CheckResult
 from .errors import InputError
 
@@ -63,7 +66,19 @@ EVIDENCE = "#d68910"  # leave-one-out evidence that does not gate the verdict
 
 
 class _AggFigures:
-    """The two pyplot calls we use, on bare Agg figures: no global backend switch, no GUI."""
+    """The pyplot calls we use, on bare Agg figures: no global backend switch, no GUI.
+
+    ``save`` renders a figure to PNG bytes kept in ``files`` (name -> bytes);
+    the report folder is written from them in one step.
+    """
+
+    def __init__(self) -> None:
+        self.files: dict[str, bytes] = {}
+
+    def save(self, fig, path: Path) -> None:
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=110, bbox_inches="tight")
+        self.files[path.name] = buffer.getvalue()
 
     @staticmethod
     def subplots(*args, figsize=None, **kw):
@@ -79,9 +94,10 @@ class _AggFigures:
         fig.clear()
 
 
-def _save_figure(fig, path: Path) -> None:
-    write_file_atomic(path, lambda tmp: fig.savefig(tmp, format="png", dpi=110,
-                                                    bbox_inches="tight"), "figure")
+def _report_member(name: str) -> bool:
+    """A file name that an earlier report may have left in the folder (replaced, not kept)."""
+    return name in ("summary.md", "summary.html", "gamma_opt.png", "margins.png",
+                    "controller_sv.png") or (name.startswith("ratio_") and name.endswith(".png"))
 
 
 def _label(result: CheckResult, j: int) -> str:
@@ -142,7 +158,7 @@ def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
         ax.set_title("Norm over gamma at frozen points")
         ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2)
         path = out / name
-        _save_figure(fig, path)
+        plt.save(fig, path)
         plt.close(fig)
         paths.append(path)
     return paths
@@ -178,7 +194,7 @@ def _gamma_opt_plot(plt, result: CheckResult, out: Path) -> Path | None:
     _scatter_panel(fig, ax, sub, g[keep] / result.gamma, "gamma_opt / family gamma",
                    "Price of interpolation: local optimum vs common gamma")
     path = out / "gamma_opt.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -204,7 +220,7 @@ def _margins_plot(plt, result: CheckResult, out: Path) -> Path:
     _scatter_panel(fig, axes[1], result, phase, "phase margin [deg]",
                    "Disk phase margin at the plant input")
     path = out / "margins.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -237,7 +253,7 @@ def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path)
     ax.set_title("Controller gain along the envelope diagonal")
     ax.grid(False)
     path = out / "controller_sv.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -397,16 +413,17 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
     Raises
     ------
     InputError
-        If ``out_dir`` exists and is not a folder, or cannot be created.
+        If ``out_dir`` is a file, holds files that are not an earlier report's,
+        or cannot be written; the previous report is then left as it was.
     """
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"report folder {out} is a file; give a folder path")
     try:
-        out.mkdir(parents=True, exist_ok=True)
+        out.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"cannot create report folder {out} ({exc.strerror}); check the "
-                         "path and permissions") from None
+        raise InputError(f"cannot create the folder of report {out} ({exc.strerror}); check "
+                         "the path and permissions") from None
     if controller is None and getattr(family, "interpolant", None):
         from .errors import ScheduleError
         from .interpolate import ScheduledController
@@ -430,8 +447,8 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
         if c is not None:
             figures.append(c)
     md = markdown_summary(result, [str(f) for f in figures])
-    md_path = out / "summary.md"
-    html_path = out / "summary.html"
-    write_text_atomic(md_path, md, "report page")
-    write_text_atomic(html_path, _html(md), "report page")
-    return {"markdown": md_path, "html": html_path, "figures": figures}
+    files: dict[str, str | bytes] = dict(plt.files)
+    files["summary.md"] = md
+    files["summary.html"] = _html(md)
+    write_dir_atomic(out, files, "report folder", replaceable=_report_member)
+    return {"markdown": out / "summary.md", "html": out / "summary.html", "figures": figures}

@@ -12,8 +12,12 @@
 - :func:`operating_points_for` gives the design points and plants for either
   source, with the grid structure and a report of the holes.
 
-User code is imported with importlib (``spec_from_file_location`` for a file);
-nothing read from a data file is ever evaluated.
+User code is imported with importlib (``spec_from_file_location`` for a file),
+and only from a design the user named: a design file given on the command line
+or a ``--model`` option. A design read back from a family file is data; its
+code entries are set aside unimported (:func:`without_code`, with a note from
+:func:`ignored_code_note`) unless the user names them again
+(:func:`with_code_from`). Nothing read from a data file is ever evaluated.
 """
 
 from __future__ import annotations
@@ -22,6 +26,7 @@ import importlib
 import importlib.util
 import sys
 from collections.abc import Callable, Mapping
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -29,12 +34,68 @@ import numpy as np
 from .design_file import DesignSpec
 from .envelope import RectangularGrid, ScatteredPoints, point_text
 from .errors import InputError
+from .names import check_names
 from .types import LinearPlant
 
-__all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "operating_points_for",
-           "OperatingSet", "as_linear_plant", "check_consistent"]
+__all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "nonlinear_model_from",
+           "operating_points_for", "OperatingSet", "as_linear_plant", "check_consistent",
+           "without_code", "with_code_from", "with_model", "ignored_code_note"]
 
 ModelFn = Callable[[Mapping[str, float]], LinearPlant]
+
+
+# --------------------------------------------------------------------------- whose code
+def _code_entries(source) -> tuple[str, ...]:
+    """The code a design's source names, as it would be written in the design file."""
+    out = []
+    if source.model is not None:
+        out.append(f'source.model = "{source.model}"')
+    if source.model_file is not None:
+        out.append(f'source.model_file = "{source.model_file}" (function {source.function})')
+    if source.nonlinear_model is not None:
+        out.append(f'source.nonlinear_model = "{source.nonlinear_model}"')
+    return tuple(out)
+
+
+def without_code(spec: DesignSpec) -> DesignSpec:
+    """``spec`` with its code entries set aside (recorded in ``source.ignored``).
+
+    For a design read from a data file (a family file's stored design text):
+    a received file must not choose code to run, and its SHA-256 digest has no
+    key, so anyone can edit the text and recompute it.
+    """
+    src = spec.source
+    return replace(spec, source=replace(src, model=None, model_file=None, function=None,
+                                        nonlinear_model=None, ignored=_code_entries(src)))
+
+
+def with_code_from(spec: DesignSpec, trusted: DesignSpec) -> DesignSpec:
+    """``spec`` with the code entries of ``trusted``, a design file the user named."""
+    t = trusted.source
+    return replace(spec, source=replace(spec.source, model=t.model, model_file=t.model_file,
+                                        function=t.function, nonlinear_model=t.nonlinear_model,
+                                        ignored=()))
+
+
+def with_model(spec: DesignSpec, model: str) -> DesignSpec:
+    """``spec`` whose plant comes from ``model`` ("module:function", named by the user)."""
+    parts = model.split(":")
+    if len(parts) != 2 or not all(p.isidentifier() for p in parts[0].split(".")) \
+            or not parts[1].isidentifier():
+        raise InputError(f"model {model!r} must be written module:function")
+    return replace(spec, source=replace(spec.source, model=model, model_file=None,
+                                        function=None, operating_points=None, ignored=()))
+
+
+def ignored_code_note(spec: DesignSpec | None,
+                      options: str = "--design FILE (a design file you trust) or --model "
+                                     "module:function") -> str | None:
+    """One line saying which code a family's stored design names and that it was not imported."""
+    if spec is None or not spec.source.ignored:
+        return None
+    return (f"the family's stored design names {'; '.join(spec.source.ignored)}; it was not "
+            "imported, because a data file never chooses code to run: pass "
+            f"{options} to use it")
 
 
 # --------------------------------------------------------------------------- import helpers
@@ -105,8 +166,18 @@ def as_linear_plant(result) -> LinearPlant:
     else:
         raise InputError(f"the model returned {type(result).__name__}; return a LinearPlant or "
                          "an (A, B, C, D) tuple")
+    mats = {}
+    for label, M in (("A", A), ("B", B), ("C", C), ("D", D)):
+        if np.iscomplexobj(M):
+            M = np.asarray(M)
+            if np.any(M.imag != 0):
+                raise InputError(f"the model returned a complex {label} (imaginary parts up "
+                                 f"to {np.max(np.abs(M.imag)):.3g}); return the real matrices "
+                                 "of a real state-space model")
+            M = M.real
+        mats[label] = M
     try:
-        A, B, C, D = (np.atleast_2d(np.asarray(M, dtype=float)) for M in (A, B, C, D))
+        A, B, C, D = (np.atleast_2d(np.asarray(mats[k], dtype=float)) for k in "ABCD")
     except (TypeError, ValueError):
         raise InputError("the model returned matrices that are not numeric arrays; return "
                          "float arrays") from None
@@ -133,6 +204,7 @@ def as_linear_plant(result) -> LinearPlant:
                              f"{label}s; give one name per {label}")
         if len(set(nm)) != len(nm):
             raise InputError(f"the model returned duplicate {label} names; make them unique")
+        check_names(nm, f"the model returned {label} names")
     return LinearPlant(A, B, C, D, states, ins, outs)
 
 
@@ -151,8 +223,9 @@ def load_model(spec: DesignSpec) -> ModelFn:
     elif src.model_file is not None:
         fn = _import_file(Path(src.model_file), src.function or "")
     else:
-        raise InputError(f"{spec.name}: the design has no model (source.model or "
-                         "source.model_file); add one or use the operating-point file")
+        raise InputError(ignored_code_note(spec) or f"{spec.name}: the design has no model "
+                         "(source.model or source.model_file); add one or use the "
+                         "operating-point file")
     names = spec.variable_names
 
     def model(point) -> LinearPlant:
@@ -194,17 +267,22 @@ def load_nonlinear_model(spec: DesignSpec):
     """
     text = spec.source.nonlinear_model
     if text is None:
-        raise InputError(f"{spec.name}: the design has no source.nonlinear_model; add "
+        note = ignored_code_note(spec)
+        raise InputError(note or f"{spec.name}: the design has no source.nonlinear_model; add "
                          "nonlinear_model = \"module:function\" to [source]")
-    factory = import_entry(text, "source.nonlinear_model")
+    return nonlinear_model_from(text, "source.nonlinear_model")
+
+
+def nonlinear_model_from(text: str, key: str = "nonlinear model"):
+    """Import the factory ``text`` ("module:function"), call it and return its model."""
+    factory = import_entry(text, key)
     try:
         model = factory()
     except Exception as exc:
-        raise InputError(f"source.nonlinear_model = \"{text}\" raised {type(exc).__name__}: "
+        raise InputError(f"{key} = \"{text}\" raised {type(exc).__name__}: "
                          f"{_one_line(exc)}; fix the model factory") from None
     if model is None:
-        raise InputError(f"source.nonlinear_model = \"{text}\" returned None; return the "
-                         "model object")
+        raise InputError(f"{key} = \"{text}\" returned None; return the model object")
     return model
 
 

@@ -171,7 +171,8 @@ def test_simulate_command(tmp_path, monkeypatch):
     traj.write_text("time,speed,ref:pos,gust\n0,0,0,0\n0.5,2,1,0\n4,10,1,0.5\n")
     out = tmp_path / "sim"
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out),
-                                    "--trajectory", str(traj), "--sample-time", "0.05"])
+                                    "--trajectory", str(traj), "--sample-time", "0.05",
+                                    "--model", "h4_testmodel:make"])
     assert res.exit_code == 0, res.output
     names = sorted(p.name for p in out.iterdir())
     assert names == ["response.png", "schedule.png", "simulation.csv", "summary.json"]
@@ -183,7 +184,7 @@ def test_simulate_command(tmp_path, monkeypatch):
     bad.write_text("time,speed,wind\n0,0,0\n1,1,1\n")
     out2 = tmp_path / "sim2"
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2),
-                                    "--trajectory", str(bad)])
+                                    "--trajectory", str(bad), "--model", "h4_testmodel:make"])
     assert res.exit_code == 2 and "unknown column 'wind'" in res.output
     assert not out2.exists()
     # no model named anywhere

@@ -51,6 +51,22 @@ def export_settings(family) -> dict:
     return out
 
 
+def _refuse_overwrite(family_file, formats, out, breakpoints) -> None:
+    """No table may replace the family file or a breakpoints file (see docs/tables.md)."""
+    from ..paths import refuse_output_over_input
+
+    inputs = [family_file]
+    if breakpoints and os.path.isfile(breakpoints):
+        inputs.append(breakpoints)
+    out = Path(out)
+    if len(formats) == 1:
+        files, folders = ([], [out]) if formats[0] == "c" else ([out], [])
+    else:
+        files = [out / f"table{_SUFFIX[f]}" for f in formats if f != "c"]
+        folders = [out / "c"] if "c" in formats else []
+    refuse_output_over_input(files, inputs, folders=folders)
+
+
 @click.command("export")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--format", "-f", "formats", multiple=True,
@@ -97,6 +113,7 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
         check_prefix(prefix)
         if sample_time == 0:
             raise InputError("format c needs a discrete table; give --sample-time (seconds)")
+    _refuse_overwrite(family_file, formats, out, breakpoints)
     table = build_table(family, breakpoints=breakpoints, sample_time=sample_time,
                         method=method, prewarp=prewarp, source_sha256=file_sha256(family_file))
     out = Path(out)

@@ -7,6 +7,7 @@ import json
 import click
 
 from ..errors import InputError
+from .common import design_option
 
 
 def _model_entry(family) -> str | None:
@@ -17,21 +18,36 @@ def _model_entry(family) -> str | None:
     except ImportError:  # pragma: no cover - Python 3.10
         import tomli as tomllib
     try:
-        value = tomllib.loads(text).get("source", {}).get("nonlinear_model")
-    except tomllib.TOMLDecodeError:
+        source = tomllib.loads(text).get("source", {})
+    except (tomllib.TOMLDecodeError, RecursionError):
         return None
+    value = source.get("nonlinear_model") if isinstance(source, dict) else None
     return value if isinstance(value, str) else None
 
 
 def _load_model(entry: str):
-    from ..sources import import_entry
-    factory = import_entry(entry, "nonlinear model")
-    try:
-        return factory()
-    except Exception as exc:  # the user's factory raised
-        msg = " ".join(str(exc).split())[:120]
-        raise InputError(f"nonlinear model \"{entry}\" raised {type(exc).__name__}: {msg}; "
-                         "fix the model factory") from None
+    from ..sources import nonlinear_model_from
+    return nonlinear_model_from(entry, "nonlinear model")
+
+
+def _trusted_entry(model_entry: str | None, design_file: str | None, family) -> str:
+    """The nonlinear model the user named (--model, or --design FILE); never the family's."""
+    if model_entry:
+        return model_entry
+    if design_file is not None:
+        from ..design_file import load_design
+        entry = load_design(design_file).source.nonlinear_model
+        if entry is None:
+            raise InputError(f"design file {design_file} names no source.nonlinear_model; add "
+                             "it to [source] or pass --model module:function")
+        return entry
+    stored = _model_entry(family)
+    if stored:
+        raise InputError(f"the family's stored design names source.nonlinear_model = "
+                         f"\"{stored}\"; it was not imported, because a data file never "
+                         f"chooses code to run: pass --model {stored} or --design FILE")
+    raise InputError("no nonlinear model to simulate: pass --model module:function or "
+                     "--design FILE naming source.nonlinear_model")
 
 
 def _looks_like_crane(model) -> bool:
@@ -54,30 +70,32 @@ def _looks_like_crane(model) -> bool:
 @click.option("--method", type=click.Choice(["tustin", "zoh"]), default=None,
               help="Discretization when exporting now. Default: design [export], else tustin.")
 @click.option("--model", "model_entry", default=None,
-              help="module:function returning the nonlinear model. Default: the design's "
-                   "source.nonlinear_model.")
+              help="module:function returning the nonlinear model. Default: "
+                   "source.nonlinear_model of the --design file.")
+@design_option
 @click.option("--substeps", type=click.IntRange(1, 1000), default=4, show_default=True,
               help="Runge-Kutta steps per sample interval.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def simulate_command(family_file, out, trajectory, table_file, sample_time, method,
-                     model_entry, substeps, as_json):
+                     model_entry, design_file, substeps, as_json):
     """Simulate the nonlinear model of FAMILY_FILE under its scheduled discrete controller.
 
     The controller sees each measured output minus its reference (the position error
     for a position) and adds its output to the trim controls; its state is carried
-    across schedule changes.
+    across schedule changes. The model comes from --model or from the design file
+    given with --design; one named only inside the family file is not imported.
     """
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
+    from ..paths import refuse_output_over_input
     from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
     from ..store import read_family
     from .export import export_settings
 
+    refuse_output_over_input([], [family_file, trajectory, table_file, design_file],
+                             folders=[out])
     family = read_family(family_file)
-    entry = model_entry or _model_entry(family)
-    if not entry:
-        raise InputError("the family's design names no source.nonlinear_model; add it to "
-                         "[source] or pass --model module:function")
+    entry = _trusted_entry(model_entry, design_file, family)
     model = _load_model(entry)
     if table_file is not None:
         controller = TableController(table_file)

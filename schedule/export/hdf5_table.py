@@ -19,6 +19,7 @@ import numpy as np
 
 from ..atomic import write_file_atomic
 from ..errors import InputError
+from ..h5util import open_checked
 from .table import FORMAT_NAME, FORMAT_VERSION, MATRICES, ScheduledTable, table_from_metadata
 
 
@@ -46,7 +47,7 @@ def read_hdf5_table(path: str | os.PathLike) -> ScheduledTable:
     """Read an HDF5 table written by :func:`write_hdf5_table`."""
     path = Path(path)
     try:
-        with h5py.File(path, "r") as f:
+        with open_checked(path, "HDF5 table", "re-export it") as (f, _contents):
             if f.attrs.get("format") != FORMAT_NAME:
                 raise InputError(f"{path} is not a scheduled table (attribute 'format' should "
                                  f"be '{FORMAT_NAME}')")
