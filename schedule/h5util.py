@@ -4,11 +4,12 @@
   :func:`decode_one` and :func:`decode` (back to Python ``str``).
 - The ``/variables`` group (names, units, bounds, optional breakpoints) that
   both formats use: :func:`write_variables` and :func:`read_variables`.
-- :func:`atomic_h5`: build a file in memory with fixed creation properties
+- :func:`new_h5` builds a file in memory with fixed creation properties
   (``track_order``, ``libver="earliest"``, so that equal content gives equal
-  bytes) and write it through :func:`schedule.atomic.write_file_atomic`. The
-  HDF5 library never writes to disk itself, so a full disk is an ordinary
-  ``OSError`` (one line, no temporary left), not a damaged library state.
+  bytes) and writes its bytes in one plain write; :func:`atomic_h5` does so
+  through :func:`schedule.atomic.write_file_atomic`. The HDF5 library never
+  writes to disk itself, so a full disk is an ordinary ``OSError`` (one line,
+  no temporary left), not a damaged library state.
 - :func:`open_checked`: open an HDF5 input only after checking, from the
   metadata alone, that it is safe to read (:func:`inspect_h5`), and turn any
   later h5py failure into a one-line error.
@@ -34,8 +35,8 @@ from .errors import InputError, ScheduleError
 from .types import SchedulingVariable
 
 __all__ = ["STR", "strings", "decode_one", "decode", "write_variables", "read_variables",
-           "atomic_h5", "open_checked", "inspect_h5", "H5Contents", "expect", "check_format",
-           "MAX_OBJECTS"]
+           "atomic_h5", "new_h5", "open_checked", "inspect_h5", "H5Contents", "expect",
+           "check_format", "MAX_OBJECTS"]
 
 STR = h5py.string_dtype("utf-8")
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -96,11 +97,30 @@ def read_variables(f: h5py.Group) -> tuple[tuple[SchedulingVariable, ...],
     return variables, breakpoints
 
 
-def atomic_h5(path: str | os.PathLike, fill: Callable[[h5py.File], None]) -> None:
-    """Create ``path`` atomically: build the file in memory, then write its bytes.
+@contextmanager
+def new_h5(path: str | os.PathLike) -> Iterator[h5py.File]:
+    """A new HDF5 file built in memory and written to ``path`` in one plain write on exit.
 
-    ``fill(f)`` writes the content into the open file. If it raises, nothing is
-    written and an existing ``path`` is left as it was.
+    The creation properties are fixed (``track_order``, ``libver="earliest"``)
+    so that equal content gives equal bytes. The HDF5 library never writes to
+    disk itself: a full disk or a file-size limit is an ordinary ``OSError``
+    from the final write, not a damaged library state (HDF5 can crash the
+    process after a failed write to disk). Use it inside
+    :func:`schedule.atomic.write_file_atomic` (``path`` is then the temporary).
+    """
+    buffer = io.BytesIO()
+    # h5py does not store object times by default, so the bytes depend on content only
+    with h5py.File(buffer, "w", track_order=True, libver="earliest") as f:
+        yield f
+    with open(path, "wb") as fh:
+        fh.write(buffer.getbuffer())
+
+
+def atomic_h5(path: str | os.PathLike, fill: Callable[[h5py.File], None],
+              what: str = "HDF5 file") -> None:
+    """Create ``path`` atomically: ``fill(f)`` writes the content into a :func:`new_h5` file.
+
+    If ``fill`` raises, nothing is written and an existing ``path`` is left as it was.
 
     Raises
     ------
@@ -108,14 +128,13 @@ def atomic_h5(path: str | os.PathLike, fill: Callable[[h5py.File], None]) -> Non
         The output folder does not exist or is not writable, or the write failed
         (disk full, quota, file-size limit); one line, no temporary left behind.
     """
-    from .atomic import write_bytes_atomic
+    from .atomic import write_file_atomic
 
-    buffer = io.BytesIO()
-    # track_order and libver="earliest" fix the layout, so equal content
-    # gives equal bytes (h5py does not store object times by default).
-    with h5py.File(buffer, "w", track_order=True, libver="earliest") as f:
-        fill(f)
-    write_bytes_atomic(path, buffer.getbuffer().tobytes(), "HDF5 file")
+    def writer(tmp: str) -> None:
+        with new_h5(tmp) as f:
+            fill(f)
+
+    write_file_atomic(path, writer, what)
 
 
 # ----------------------------------------------------------------------------- safe reading

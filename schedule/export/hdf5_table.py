@@ -14,12 +14,11 @@ import json
 import os
 from pathlib import Path
 
-import h5py
 import numpy as np
 
 from ..atomic import write_file_atomic
 from ..errors import InputError
-from ..h5util import open_checked
+from ..h5util import new_h5, open_checked
 from .table import FORMAT_NAME, FORMAT_VERSION, MATRICES, ScheduledTable, table_from_metadata
 
 
@@ -28,7 +27,7 @@ def write_hdf5_table(path: str | os.PathLike, table: ScheduledTable) -> Path:
     meta = table.metadata()
 
     def writer(tmp: str) -> None:
-        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
+        with new_h5(tmp) as f:  # built in memory: a full disk cannot crash HDF5
             f.attrs["format"] = FORMAT_NAME
             f.attrs["format_version"] = FORMAT_VERSION
             f.attrs["metadata"] = json.dumps(meta)
