@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import io
 import math
+import mmap
 import os
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -158,6 +159,52 @@ def _signature_at(path: Path, size: int) -> bool:
             if fh.read(8) == SIGNATURE:
                 return True
     return False
+
+
+def _global_heap_problem(path: Path, size: int) -> str | None:
+    """Why a global heap collection of the file is malformed, or None.
+
+    Variable-length strings live in global heap collections: "GCOL", version 1,
+    three reserved bytes, the collection size (8 bytes, at least 4096), then
+    objects (index 2 bytes, reference count 2, reserved 4, size 8, data padded
+    to 8 bytes) ending with the free-space object (index 0) that fills the
+    collection exactly (HDF5 file format specification, version 2.0, section
+    III.E). A damaged collection can make the HDF5 library loop for ever when a
+    string is read, so every collection is walked here first, in plain Python.
+    """
+    with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as data:
+        return _walk_global_heaps(data, size)
+
+
+def _walk_global_heaps(data, size: int) -> str | None:
+    at = data.find(b"GCOL")
+    while at >= 0:
+        header = data[at + 4:at + 8]
+        total = int.from_bytes(data[at + 8:at + 16], "little") if at + 16 <= size else 0
+        if header == b"\x01\x00\x00\x00" and total >= 4096:
+            end = at + total
+            if end > size:
+                return f"a string heap at byte {at} runs past the end of the file"
+            p, seen = at + 16, set()
+            while True:
+                if p + 16 > end:
+                    if p != end:
+                        return f"the string heap at byte {at} does not end on an object"
+                    break
+                index = int.from_bytes(data[p:p + 2], "little")
+                length = int.from_bytes(data[p + 8:p + 16], "little")
+                if index == 0:  # free space: fills the rest of the collection
+                    if p + length != end:
+                        return f"the string heap at byte {at} has a damaged free-space record"
+                    break
+                if index in seen:
+                    return f"the string heap at byte {at} repeats object {index}"
+                seen.add(index)
+                p += 16 + (length + 7) // 8 * 8
+                if p > end:
+                    return f"object {index} of the string heap at byte {at} overruns it"
+        at = data.find(b"GCOL", at + 4)
+    return None
 
 
 def _dtype_problem(dt: np.dtype) -> str | None:
@@ -380,6 +427,9 @@ def open_checked(path: str | os.PathLike, what: str, fix: str
     if size == 0 or not _signature_at(path, size):
         raise InputError(f"{path} is not an HDF5 file{' (it is empty)' if size == 0 else ''}; "
                          f"give a {what}")
+    problem = _global_heap_problem(path, size)
+    if problem:
+        raise InputError(f"{path} is corrupt ({problem}); {fix}")
     try:
         f = h5py.File(path, "r")
     except Exception as exc:  # h5py raises OSError, KeyError, RuntimeError... on damage

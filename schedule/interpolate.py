@@ -642,18 +642,26 @@ def evidence_from_arrays(extra: dict) -> list[LooResult] | None:
     """Inverse of :func:`evidence_to_arrays`; None when ``extra`` holds no LOO table."""
     if "loo_candidates" not in extra:
         return None
-    labels = [str(v) for v in np.atleast_1d(extra["loo_candidates"])]
-    failures = [str(v) for v in np.atleast_1d(extra.get("loo_failure", [""] * len(labels)))]
-    gamma = float(np.asarray(extra["loo_gamma"]))
-    idx = np.atleast_1d(np.asarray(extra["loo_point_index"])).astype(np.int64)
-    out = []
-    for c, label in enumerate(labels):
-        form, _, kind = label.partition("/")
-        out.append(LooResult(form, kind, gamma, idx,
-                             np.asarray(extra["loo_rel_error"], float).reshape(len(labels), -1)[c],
-                             np.asarray(extra["loo_norm"], float).reshape(len(labels), -1)[c],
-                             np.asarray(extra["loo_stable"]).reshape(len(labels), -1)[c]
-                             .astype(bool), failures[c]))
+    try:
+        labels = [str(v) for v in np.atleast_1d(extra["loo_candidates"])]
+        failures = [str(v) for v in np.atleast_1d(extra.get("loo_failure", [""] * len(labels)))]
+        gamma = float(np.asarray(extra["loo_gamma"]))
+        idx = np.atleast_1d(np.asarray(extra["loo_point_index"])).astype(np.int64)
+        out = []
+        for c, label in enumerate(labels):
+            form, _, kind = label.partition("/")
+            out.append(LooResult(form, kind, gamma, idx,
+                                 np.asarray(extra["loo_rel_error"], float)
+                                 .reshape(len(labels), -1)[c],
+                                 np.asarray(extra["loo_norm"], float).reshape(len(labels), -1)[c],
+                                 np.asarray(extra["loo_stable"]).reshape(len(labels), -1)[c]
+                                 .astype(bool), failures[c]))
+    except (ValueError, TypeError, IndexError, KeyError) as exc:
+        if isinstance(exc, ScheduleError):
+            raise
+        msg = " ".join(str(exc).split())[:100]
+        raise InputError(f"the family's stored leave-one-out table is damaged ({msg}); re-run "
+                         "`schedule design`") from None
     return out
 
 
