@@ -36,8 +36,8 @@ from .errors import InputError, ScheduleError
 from .types import SchedulingVariable
 
 __all__ = ["STR", "strings", "decode_one", "decode", "write_variables", "read_variables",
-           "atomic_h5", "new_h5", "open_checked", "inspect_h5", "H5Contents", "expect",
-           "check_format", "MAX_OBJECTS"]
+           "atomic_h5", "new_h5", "open_checked", "inspect_h5", "global_heaps", "H5Contents",
+           "expect", "check_format", "MAX_OBJECTS"]
 
 STR = h5py.string_dtype("utf-8")
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -161,22 +161,38 @@ def _signature_at(path: Path, size: int) -> bool:
     return False
 
 
-def _global_heap_problem(path: Path, size: int) -> str | None:
-    """Why a global heap collection of the file is malformed, or None.
+class _HeapError(Exception):
+    """A malformed global heap collection (the message says where)."""
+
+
+def global_heaps(path: str | os.PathLike) -> dict[int, dict[int, int]]:
+    """The file's global heap collections: ``{address: {object index: object size}}``.
 
     Variable-length strings live in global heap collections: "GCOL", version 1,
     three reserved bytes, the collection size (8 bytes, at least 4096), then
     objects (index 2 bytes, reference count 2, reserved 4, size 8, data padded
     to 8 bytes) ending with the free-space object (index 0) that fills the
     collection exactly (HDF5 file format specification, version 2.0, section
-    III.E). A damaged collection can make the HDF5 library loop for ever when a
-    string is read, so every collection is walked here first, in plain Python.
+    III.E). A damaged collection, or a string pointing at something that is not
+    one, can make the HDF5 library loop for ever when the string is read, so the
+    collections are walked here first, in plain Python.
+
+    Raises
+    ------
+    InputError
+        A collection is malformed.
     """
-    with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as data:
-        return _walk_global_heaps(data, size)
+    path = Path(path)
+    size = os.stat(path).st_size
+    try:
+        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as data:
+            return _walk_global_heaps(data, size)
+    except _HeapError as exc:
+        raise InputError(f"{path} is corrupt ({exc})") from None
 
 
-def _walk_global_heaps(data, size: int) -> str | None:
+def _walk_global_heaps(data, size: int) -> dict[int, dict[int, int]]:
+    heaps: dict[int, dict[int, int]] = {}
     at = data.find(b"GCOL")
     while at >= 0:
         header = data[at + 4:at + 8]
@@ -184,27 +200,135 @@ def _walk_global_heaps(data, size: int) -> str | None:
         if header == b"\x01\x00\x00\x00" and total >= 4096:
             end = at + total
             if end > size:
-                return f"a string heap at byte {at} runs past the end of the file"
-            p, seen = at + 16, set()
+                raise _HeapError(f"a string heap at byte {at} runs past the end of the file")
+            p, objects = at + 16, {}
             while True:
                 if p + 16 > end:
                     if p != end:
-                        return f"the string heap at byte {at} does not end on an object"
+                        raise _HeapError(f"the string heap at byte {at} does not end on an "
+                                         "object")
                     break
                 index = int.from_bytes(data[p:p + 2], "little")
                 length = int.from_bytes(data[p + 8:p + 16], "little")
                 if index == 0:  # free space: fills the rest of the collection
                     if p + length != end:
-                        return f"the string heap at byte {at} has a damaged free-space record"
+                        raise _HeapError(f"the string heap at byte {at} has a damaged "
+                                         "free-space record")
                     break
-                if index in seen:
-                    return f"the string heap at byte {at} repeats object {index}"
-                seen.add(index)
+                if index in objects:
+                    raise _HeapError(f"the string heap at byte {at} repeats object {index}")
+                objects[index] = length
                 p += 16 + (length + 7) // 8 * 8
                 if p > end:
-                    return f"object {index} of the string heap at byte {at} overruns it"
+                    raise _HeapError(f"object {index} of the string heap at byte {at} "
+                                     "overruns it")
+            heaps[at] = objects
         at = data.find(b"GCOL", at + 4)
-    return None
+    return heaps
+
+
+def _uint(data, at: int, width: int) -> int:
+    return int.from_bytes(data[at:at + width], "little")
+
+
+def _superblock(data, size: int) -> tuple[int, int, int]:
+    """(base address, size of offsets, size of lengths) from the superblock."""
+    base = data.find(SIGNATURE)
+    version = data[base + 8]
+    if version in (0, 1):
+        return base, data[base + 13], data[base + 14]
+    return base, data[base + 9], data[base + 10]
+
+
+def _header_attributes(data, size: int, addr: int, offsets: int, lengths: int
+                       ) -> dict[str, tuple[int, int]] | None:
+    """The compact attributes in the object header at file offset ``addr``.
+
+    Returns ``{name: (start, end)}`` of each attribute's raw data in the file,
+    or None where the header cannot be read here (then the caller does not
+    rely on it). Object header versions 1 and 2 (HDF5 file format
+    specification, version 2.0, sections IV.A.1 and IV.A.2), continuation
+    blocks, and attribute messages of versions 1 to 3 (section IV.A.2.m).
+    """
+    out: dict[str, tuple[int, int]] = {}
+    try:
+        if data[addr:addr + 4] == b"OHDR":
+            if data[addr + 4] != 2:
+                return None
+            flags = data[addr + 5]
+            p = addr + 6 + (16 if flags & 0x20 else 0) + (4 if flags & 0x10 else 0)
+            width = 1 << (flags & 3)
+            blocks = [(p + width, p + width + _uint(data, p, width))]
+            order = 2 if flags & 0x04 else 0
+            v2 = True
+        elif data[addr] == 1:
+            blocks = [(addr + 16, addr + 16 + _uint(data, addr + 8, 4))]
+            v2, order = False, 0
+        else:
+            return None
+        seen_blocks = 0
+        while blocks:
+            start, end = blocks.pop()
+            seen_blocks += 1
+            if end > size or start > end or seen_blocks > 1000:
+                return None
+            p = start
+            head = 4 + order if v2 else 8
+            while p + head <= end:
+                if v2:
+                    kind, length = data[p], _uint(data, p + 1, 2)
+                else:
+                    kind, length = _uint(data, p, 2), _uint(data, p + 2, 2)
+                body = p + head
+                if body + length > end:
+                    return None
+                if kind == 0x10:  # continuation
+                    at, n = _uint(data, body, offsets), _uint(data, body + offsets, lengths)
+                    at += _superblock(data, size)[0]
+                    if v2:
+                        if data[at:at + 4] != b"OCHK":
+                            return None
+                        blocks.append((at + 4, at + n - 4))
+                    else:
+                        blocks.append((at, at + n))
+                elif kind == 0x0C:  # attribute
+                    version = data[body]
+                    name_size = _uint(data, body + 2, 2)
+                    type_size = _uint(data, body + 4, 2)
+                    space_size = _uint(data, body + 6, 2)
+                    if version == 1:
+                        def pad(k):
+                            return (k + 7) // 8 * 8
+                        name_at, first = body + 8, body + 8 + pad(name_size)
+                        raw = first + pad(type_size) + pad(space_size)
+                    elif version in (2, 3):
+                        name_at = body + 8 + (version == 3)
+                        raw = name_at + name_size + type_size + space_size
+                    else:
+                        return None
+                    name = bytes(data[name_at:name_at + name_size]).split(b"\0")[0]
+                    out[name.decode("utf-8", "replace")] = (raw, body + length)
+                p = body + length
+                if not v2:
+                    p = start + (p - start + 7) // 8 * 8
+        return out
+    except (IndexError, ValueError):
+        return None
+
+
+def _check_descriptors(raw: bytes, n: int, item: int, heaps: dict, base: int) -> int | None:
+    """Total string bytes of ``n`` variable-length descriptors of ``item`` bytes (length,
+    heap collection address, object index); None if one points at no such string."""
+    if n == 0:
+        return 0
+    if item < 12 or len(raw) < n * item:
+        return None
+    records = np.frombuffer(raw[:n * item], dtype=np.dtype(
+        [("n", "<u4"), ("addr", f"<u{item - 8}"), ("index", "<u4")]))
+    for length, addr, index in records.tolist():
+        if length and heaps.get(addr + base, {}).get(index, -1) < length:
+            return None
+    return int(records["n"].sum(dtype=np.int64))
 
 
 def _dtype_problem(dt: np.dtype) -> str | None:
@@ -236,31 +360,32 @@ def _describe_bytes(n: float) -> str:
     return f"{int(n)} bytes"
 
 
-def _vlen_lengths(path: Path, ds: h5py.Dataset, n: int) -> int:
+def _vlen_lengths(path: Path, ds: h5py.Dataset, n: int, heaps: dict, base: int) -> int:
     """Total bytes of the strings a contiguous variable-length string dataset refers to.
 
     Each element is stored as a descriptor (length: 4 bytes, then the global-heap
-    address and index); the lengths are read straight from the file so that
-    elements aliasing one large heap object cannot multiply it in memory.
+    collection address and the object index); the descriptors are read straight
+    from the file and each must name an object of a checked collection
+    (:func:`global_heaps`) at least as long as the string, so that neither a
+    bogus address nor elements aliasing one large object reach the HDF5 library.
     """
     offset = ds.id.get_offset()
-    item = ds.id.get_type().get_size()
     if offset is None or n == 0:
         return 0
-    if item < 8:
-        raise InputError(f"{path}: dataset {ds.name} has a damaged string type; the file is "
-                         "corrupt")
+    stored = ds.id.get_storage_size()  # on disk: 4 + address size + 4 bytes per element
     with open(path, "rb") as fh:
         fh.seek(offset)
-        raw = fh.read(n * item)
-    if len(raw) != n * item:
-        raise InputError(f"{path}: dataset {ds.name} lies beyond the end of the file; the "
-                         "file is truncated")
-    lengths = np.frombuffer(raw, dtype=np.dtype([("n", "<u4"), ("rest", f"V{item - 4}")]))["n"]
-    return int(lengths.sum(dtype=np.int64))
+        raw = fh.read(stored)
+    total = _check_descriptors(raw, n, stored // n, heaps, base) \
+        if stored % n == 0 and len(raw) == stored else None
+    if total is None:
+        raise InputError(f"{path}: dataset {ds.name} refers to string data that are not "
+                         "there; the file is corrupt")
+    return total
 
 
-def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
+def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str,
+               heaps: dict[int, dict[int, int]] | None = None) -> H5Contents:
     """Check an open HDF5 file from its metadata before any dataset is read.
 
     Refused, each with a one-line message naming the object:
@@ -280,6 +405,14 @@ def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
     """
     path = Path(path)
     size = os.stat(path).st_size
+    heaps = global_heaps(path) if heaps is None else heaps
+    with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as data:
+        base, offsets, lengths = _superblock(data, size)
+        return _inspect(f, path, what, heaps, data, size, base, offsets, lengths)
+
+
+def _inspect(f, path: Path, what: str, heaps: dict, data, size: int, base: int, offsets: int,
+             lengths: int) -> H5Contents:
     datasets: dict[str, tuple[tuple[int, ...], np.dtype]] = {}
     seen: set[tuple] = set()
     totals = {"stored": 0, "strings": 0, "objects": 0}
@@ -300,6 +433,7 @@ def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
         keys = list(obj.attrs.keys())
         if len(keys) > MAX_ATTRIBUTES:
             raise fail(name, f"has {len(keys)} attributes (at most {MAX_ATTRIBUTES})")
+        header = None
         for key in keys:
             aid = h5py.h5a.open(obj.id, key.encode("utf-8"))
             label = f"attribute '{key}' of {name}"
@@ -312,6 +446,16 @@ def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
                 if count > MAX_STRING_ATTR_ELEMENTS:
                     raise fail(label, f"holds {count} strings (at most "
                                f"{MAX_STRING_ATTR_ELEMENTS})")
+                if h5py.check_string_dtype(aid.dtype).length is None:
+                    if header is None:
+                        oid = obj["/"].id if isinstance(obj, h5py.File) else obj.id
+                        header = _header_attributes(data, size, base + h5py.h5o.get_info(oid)
+                                                    .addr, offsets, lengths) or {}
+                    where = header.get(key)
+                    if where is not None and _check_descriptors(
+                            data[where[0]:where[1]], count, 8 + offsets, heaps, base) is None:
+                        raise fail(label, "refers to string data that are not there",
+                                   "the file is corrupt; restore or regenerate it")
                 value = obj.attrs[key]
                 texts = [value] if np.ndim(value) == 0 else list(np.ravel(value))
                 add_strings(label, sum(len(t) for t in texts if isinstance(t, (str, bytes))))
@@ -353,16 +497,10 @@ def inspect_h5(f: h5py.File, path: str | os.PathLike, what: str) -> H5Contents:
         totals["stored"] += stored
         if h5py.check_string_dtype(ds.dtype) is not None and \
                 h5py.check_string_dtype(ds.dtype).length is None:
-            if layout == h5py.h5d.CONTIGUOUS:
-                add_strings(f"dataset {name}", _vlen_lengths(path, ds, count))
-            elif count <= MAX_STRING_ATTR_ELEMENTS:
-                data = ds[()]
-                texts = [data] if np.ndim(data) == 0 else list(np.ravel(data))
-                add_strings(f"dataset {name}",
-                            sum(len(t) for t in texts if isinstance(t, (str, bytes))))
-            else:
-                raise fail(f"dataset {name}", f"stores {count} strings in chunks",
-                           "store string arrays contiguously (h5py's default)")
+            if layout != h5py.h5d.CONTIGUOUS:
+                raise fail(f"dataset {name}", "stores variable-length strings compact or in "
+                           "chunks", "store string arrays contiguously (h5py's default)")
+            add_strings(f"dataset {name}", _vlen_lengths(path, ds, count, heaps, base))
         datasets[name] = (tuple(int(s) for s in shape), ds.dtype)
 
     def visit(group: h5py.Group, prefix: str, depth: int) -> None:
@@ -427,16 +565,17 @@ def open_checked(path: str | os.PathLike, what: str, fix: str
     if size == 0 or not _signature_at(path, size):
         raise InputError(f"{path} is not an HDF5 file{' (it is empty)' if size == 0 else ''}; "
                          f"give a {what}")
-    problem = _global_heap_problem(path, size)
-    if problem:
-        raise InputError(f"{path} is corrupt ({problem}); {fix}")
+    try:
+        heaps = global_heaps(path)
+    except InputError as exc:
+        raise InputError(f"{exc}; {fix}") from None
     try:
         f = h5py.File(path, "r")
     except Exception as exc:  # h5py raises OSError, KeyError, RuntimeError... on damage
         raise InputError(f"{path} is corrupt or truncated ({_short(exc)}); {fix}") from None
     with f:
         try:
-            contents = inspect_h5(f, path, what)
+            contents = inspect_h5(f, path, what, heaps)
         except ScheduleError:
             raise
         except Exception as exc:

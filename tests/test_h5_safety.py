@@ -210,3 +210,15 @@ def test_devices_folders_and_pipes_are_named_as_such(tmp_path):
             read_operating_points(path)
     code, out, exc = run_cli("design", "/dev/zero", "--out", tmp_path / "x.h5")
     assert exc is None and code == 2 and "character device" in out, out
+
+
+def test_text_inputs_that_are_devices_are_refused_before_reading(family, tmp_path):
+    # reading /dev/zero as text would never end
+    for args in (("check", family, "--points", "/dev/zero"),
+                 ("simulate", family, "--model", "x:y", "--trajectory", "/dev/zero", "--out",
+                  tmp_path / "sim"),
+                 ("simulate", family, "--model", "x:y", "--table", "/dev/zero", "--out",
+                  tmp_path / "sim")):
+        code, out, exc = run_cli(*args)
+        assert exc is None and code == 2, out
+        assert "character device" in out, out

@@ -87,13 +87,16 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     """
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
-    from ..paths import refuse_output_over_input
+    from ..paths import input_file, refuse_output_over_input
     from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
     from ..store import read_family
     from .export import export_settings
 
     refuse_output_over_input([], [family_file, trajectory, table_file, design_file],
                              folders=[out])
+    for path, what in ((trajectory, "trajectory"), (table_file, "table file")):
+        if path is not None:
+            input_file(path, what)  # a folder, a device or a pipe is named as such
     family = read_family(family_file)
     entry = _trusted_entry(model_entry, design_file, family)
     model = _load_model(entry)
