@@ -68,6 +68,7 @@ MAX_CHECK_SAMPLES = 100_000  # the checks hold every sample's plant and controll
 MAX_GRID_POINTS = 1_000_000  # product of the breakpoint counts, less the holes
 MAX_GAMMA_MARGIN = 10.0  # 1000 % above the worst optimum; beyond it use policy "fixed"
 MAX_GAMMA_VALUE = 1e100  # gamma**2 must stay far from overflow
+MAX_MATRIX_ENTRY = 1e100  # plant and controller entries: products must stay far from overflow
 
 
 # --------------------------------------------------------------------------- dataclasses

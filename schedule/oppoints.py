@@ -24,6 +24,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from .design_file import MAX_MATRIX_ENTRY
 from .errors import InputError
 from .h5util import (
     H5Contents,
@@ -178,6 +179,13 @@ def _validate(pts: OperatingPoints, where: str) -> None:
             raise InputError(f"{where}: points/{name} holds NaN or inf at point {k} "
                              f"({point_text([v.name for v in pts.variables], values[k])}); "
                              "fix the linearization")
+        huge = np.abs(arr.reshape(N, -1)).max(axis=1, initial=0.0) > MAX_MATRIX_ENTRY
+        if name != "values" and huge.any():
+            k = int(np.argmax(huge))
+            raise InputError(f"{where}: points/{name} holds an entry of magnitude "
+                             f"{np.abs(arr[k]).max():.3g} at point {k}, beyond "
+                             f"{MAX_MATRIX_ENTRY:g}; rescale the plant's units (signals of "
+                             "order one)")
     for label, names, size in (("states", pts.state_names, n), ("inputs", pts.input_names, m),
                                ("outputs", pts.output_names, p)):
         if len(names) != size:

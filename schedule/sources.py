@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .design_file import DesignSpec
+from .design_file import MAX_MATRIX_ENTRY, DesignSpec
 from .envelope import RectangularGrid, ScatteredPoints, point_text
 from .errors import InputError
 from .names import check_names
@@ -191,6 +191,10 @@ def as_linear_plant(result) -> LinearPlant:
     for label, M in (("A", A), ("B", B), ("C", C), ("D", D)):
         if not np.isfinite(M).all():
             raise InputError(f"the model returned NaN or inf in {label}; fix the linearization")
+        if M.size and np.abs(M).max() > MAX_MATRIX_ENTRY:
+            raise InputError(f"the model returned {label} with an entry of magnitude "
+                             f"{np.abs(M).max():.3g}, beyond {MAX_MATRIX_ENTRY:g}; rescale the "
+                             "plant's units (signals of order one)")
     m, p = B.shape[1], C.shape[0]
     if names is None or not any(names):
         states = tuple(f"x{i + 1}" for i in range(n))

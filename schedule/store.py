@@ -39,6 +39,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from .design_file import MAX_MATRIX_ENTRY
 from .errors import InputError
 from .h5util import STR as _STR
 from .h5util import H5Contents, check_format, expect, open_checked, read_variables, write_variables
@@ -474,7 +475,8 @@ def _validate_family(family: Family, where: str) -> None:
             if arr.ndim < 1 or arr.shape[0] != N:
                 raise InputError(f"{where}: {group}/{key} has shape {arr.shape}; the first "
                                  f"axis must be the {N} points")
-            _real_finite(where, f"{group}/{key}", arr, ok)
+            _real_finite(where, f"{group}/{key}", arr, ok,
+                         MAX_MATRIX_ENTRY if group in ("plant", "controller") else None)
     A = np.asarray(family.plant["A"])
     if A.ndim != 3 or A.shape[1] != A.shape[2]:
         raise InputError(f"{where}: plant/A has shape {A.shape}, expected (N, n, n)")
@@ -497,19 +499,29 @@ def _validate_family(family: Family, where: str) -> None:
                                  "'schedule design' (or refit it)")
 
 
-def _real_finite(where: str, name: str, arr: np.ndarray, rows: np.ndarray) -> None:
-    """``arr`` holds real numbers, finite in the rows ``rows`` (the 'ok' points)."""
+def _real_finite(where: str, name: str, arr: np.ndarray, rows: np.ndarray,
+                 limit: float | None = None) -> None:
+    """``arr`` holds real numbers, finite (and at most ``limit`` in magnitude) in the rows
+    ``rows`` (the 'ok' points)."""
     arr = np.asarray(arr)
     if np.iscomplexobj(arr):
         raise InputError(f"{where}: {name} holds complex numbers; give real matrices")
     if arr.dtype.kind not in "biuf":
         raise InputError(f"{where}: {name} holds {arr.dtype} values, expected real numbers")
     if arr.dtype.kind == "f" and rows.any():
-        bad = ~np.isfinite(arr[rows].reshape(int(rows.sum()), -1)).all(axis=1)
+        sub = arr[rows].reshape(int(rows.sum()), -1)
+        bad = ~np.isfinite(sub).all(axis=1)
         if bad.any():
             k = int(np.flatnonzero(rows)[np.argmax(bad)])
             raise InputError(f"{where}: {name} holds NaN or inf at point {k}, which is "
                              "marked 'ok'; the family is damaged: re-run 'schedule design'")
+        if limit is not None:
+            huge = np.abs(sub).max(axis=1, initial=0.0) > limit
+            if huge.any():
+                k = int(np.flatnonzero(rows)[np.argmax(huge)])
+                raise InputError(f"{where}: {name} holds an entry beyond {limit:g} in "
+                                 f"magnitude at point {k}; the family is damaged or badly "
+                                 "scaled: rescale the plant and re-run 'schedule design'")
 
 
 # ----------------------------------------------------------------------------- partial results

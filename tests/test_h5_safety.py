@@ -162,6 +162,7 @@ def _attr(name, value):
     (_set("points/A", np.zeros((2, 1, 1), dtype=complex)), "complex"),
     (_set("points/A", np.zeros((2, 2, 2))), "points/B has shape"),
     (_set("points/A", np.full((2, 1, 1), np.nan)), "NaN"),
+    (_poke("points/B", 2.7e303), "magnitude 2.7e\\+303 at point 0, beyond 1e\\+100"),
     (_set("names/states", np.array(["x\r\n"], dtype=h5py.string_dtype())), "control character"),
 ])
 def test_operating_point_file_damage_is_one_line(oppoints, tmp_path, edit, match):
