@@ -72,7 +72,7 @@ def _temp_name_pattern(path: Path) -> re.Pattern:
 def _writer_alive(pid: int, mtime: float, full: str) -> bool:
     """Could process ``pid`` still be writing the temporary ``full`` (modified at ``mtime``)?"""
     if pid == os.getpid():
-        return full in _ACTIVE
+        return os.path.abspath(full) in _ACTIVE
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
@@ -152,7 +152,7 @@ def write_file_atomic(path: str | os.PathLike, writer: Callable[[str], None],
         fd, tmp = tempfile.mkstemp(prefix=_temp_prefix(path), suffix=".part", dir=parent)
     except OSError as exc:
         raise write_error(what, path, exc) from None
-    _ACTIVE.add(tmp)
+    _ACTIVE.add(os.path.abspath(tmp))
     try:
         os.close(fd)
         writer(tmp)
@@ -163,7 +163,7 @@ def write_file_atomic(path: str | os.PathLike, writer: Callable[[str], None],
     except OSError as exc:
         raise write_error(what, path, exc) from None
     finally:
-        _ACTIVE.discard(tmp)
+        _ACTIVE.discard(os.path.abspath(tmp))
         try:
             os.unlink(tmp)
         except OSError:
@@ -238,7 +238,7 @@ def write_dir_atomic(path: str | os.PathLike, files: dict[str, str | bytes],
         tmp = tempfile.mkdtemp(prefix=_temp_prefix(path), suffix=".part", dir=parent)
     except OSError as exc:
         raise write_error(what, path, exc) from None
-    _ACTIVE.add(tmp)
+    _ACTIVE.add(os.path.abspath(tmp))
     old = None
     try:
         for name, content in files.items():
@@ -253,7 +253,7 @@ def write_dir_atomic(path: str | os.PathLike, files: dict[str, str | bytes],
                 old = tmp  # tmp now holds the previous folder
             else:
                 old = tempfile.mkdtemp(prefix=_temp_prefix(path), suffix=".old", dir=parent)
-                _ACTIVE.add(old)
+                _ACTIVE.add(os.path.abspath(old))
                 os.rmdir(old)
                 os.replace(path, old)
                 os.replace(tmp, path)
@@ -269,5 +269,5 @@ def write_dir_atomic(path: str | os.PathLike, files: dict[str, str | bytes],
             if t is not None:
                 if os.path.exists(t):
                     shutil.rmtree(t, ignore_errors=True)
-                _ACTIVE.discard(t)
+                _ACTIVE.discard(os.path.abspath(t))
     return [path / name for name in files]

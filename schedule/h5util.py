@@ -465,12 +465,15 @@ def _inspect(f, path: Path, what: str, heaps: dict, data, size: int, base: int, 
                 totals["stored"] += count * aid.dtype.itemsize
 
     def check_dataset(ds: h5py.Dataset, name: str) -> None:
-        if ds.is_virtual:
+        dcpl = ds.id.get_create_plist()
+        layout = dcpl.get_layout()
+        if layout == h5py.h5d.VIRTUAL:
             raise fail(f"dataset {name}", "is a virtual dataset (its data live in other files)",
                        "store the array itself in the file")
-        if ds.external:
+        if dcpl.get_external_count():
             raise fail(f"dataset {name}", "keeps its data in an external raw file "
-                       f"({ds.external[0][0]!r})", "store the array itself in the file")
+                       f"({dcpl.get_external(0)[0].decode('utf-8', 'replace')!r})",
+                       "store the array itself in the file")
         shape = ds.shape
         if shape is None:
             raise fail(f"dataset {name}", "has no dataspace (a null dataset)")
@@ -489,7 +492,6 @@ def _inspect(f, path: Path, what: str, heaps: dict, data, size: int, base: int, 
             raise fail(f"dataset {name}", f"declares {_describe_bytes(declared)} but stores "
                        f"{_describe_bytes(stored)} (compressed, sparse or damaged)",
                        "store plain uncompressed arrays (h5py's default create_dataset)")
-        layout = ds.id.get_create_plist().get_layout()
         offset = ds.id.get_offset() if layout == h5py.h5d.CONTIGUOUS else None
         if offset is not None and offset + stored > size:
             raise fail(f"dataset {name}", "lies beyond the end of the file",
@@ -508,14 +510,18 @@ def _inspect(f, path: Path, what: str, heaps: dict, data, size: int, base: int, 
             raise fail(f"group {prefix or '/'}", f"is nested deeper than {MAX_DEPTH} levels")
         for key in group:
             name = f"{prefix}{key}"
-            link = group.get(key, getlink=True)
-            if isinstance(link, h5py.ExternalLink):
-                raise fail(f"'{name}'", f"is an external link to {link.filename!r}",
-                           "store the data in the file itself")
-            if isinstance(link, h5py.SoftLink):
-                raise fail(f"'{name}'", f"is a soft link to {link.path!r}",
+            kind = group.id.links.get_info(key.encode("utf-8")).type
+            if kind != h5py.h5l.TYPE_HARD:
+                link = group.get(key, getlink=True)
+                if isinstance(link, h5py.ExternalLink):
+                    raise fail(f"'{name}'", f"is an external link to {link.filename!r}",
+                               "store the data in the file itself")
+                if isinstance(link, h5py.SoftLink):
+                    raise fail(f"'{name}'", f"is a soft link to {link.path!r}",
+                               "store each object once, under its own name")
+                raise fail(f"'{name}'", "is a user-defined link",
                            "store each object once, under its own name")
-            obj = group.get(key)
+            obj = group[key]
             info = h5py.h5o.get_info(obj.id)
             ident = (info.fileno, info.addr)
             if ident in seen:
