@@ -360,27 +360,40 @@ def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None 
 
 
 # ----------------------------------------------------------------------------- where
-def spec_for_family(family: Family, model: str | None = None):
-    """The DesignSpec stored with a family (None when the family holds no design text).
+def spec_for_family(family: Family, model: str | None = None, design=None):
+    """The DesignSpec stored with a family, without its code (None when it holds no design).
 
-    ``model`` ("module:function") overrides the design's source with a model
-    for the true plant at check points.
+    A family file is data: the model entries of its stored design text are
+    set aside unimported (:func:`schedule.sources.without_code`; the checks then
+    use the interpolated plant, labelled a weaker check) unless the user names
+    the code: ``model`` ("module:function", the true plant at check points) or
+    ``design`` (the path of a design file whose model entries the user trusts;
+    without stored design text it gives the whole design).
     """
+    from .sources import with_code_from, with_model, without_code
+
+    trusted = None
+    if design is not None:
+        from .design_file import load_design
+
+        trusted = load_design(design)
     if not family.design_text:
+        if trusted is not None:
+            return with_model(trusted, model) if model is not None else trusted
         if model is not None:
             raise InputError("the family holds no design text, so a --model cannot be "
-                             "combined with weights; check with the interpolated plant")
+                             "combined with weights; pass --design FILE too, or check with "
+                             "the interpolated plant")
         return None
     from .design_file import parse_design
     from .store import family_base_dir
 
     base = family_base_dir(family) or "."
-    spec = parse_design(family.design_text, base)
+    spec = without_code(parse_design(family.design_text, base, name="the family's design"))
+    if trusted is not None:
+        spec = with_code_from(spec, trusted)
     if model is not None:
-        if ":" not in model:
-            raise InputError(f"model {model!r} must be written module:function")
-        spec = replace(spec, source=replace(spec.source, model=model, model_file=None,
-                                            operating_points=None))
+        spec = with_model(spec, model)
     return spec
 
 

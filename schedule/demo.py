@@ -49,9 +49,9 @@ TABLE_FORMATS = ("csv", "json", "c", "fmu")
 NEXT_COMMANDS = (
     f"schedule design {DESIGN_FILE} --out crane.h5",
     "schedule inspect crane.h5",
-    "schedule check crane.h5 --report report",
+    f"schedule check crane.h5 --design {DESIGN_FILE} --report check-report",
     "schedule export crane.h5 --format c --out table",
-    "schedule simulate crane.h5 --out sim",
+    f"schedule simulate crane.h5 --design {DESIGN_FILE} --out sim",
 )
 
 
@@ -113,16 +113,30 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     from .design_file import load_design
     from .export import build_table, file_sha256, write_tables
     from .family import design_family
+    from .paths import refuse_output_over_input
     from .report import write_report
     from .simulate import crane_trajectory, result_csv, result_plots, simulate
     from .sources import load_nonlinear_model
+    from .table_files import folder_target
 
     announce = stage or (lambda name: None)
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"demo output {out} is a file; give a folder path with --out")
-    out.mkdir(parents=True, exist_ok=True)
-    spec = load_design(copy_demo_inputs(out))
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create demo output folder {out}: {exc.strerror}; choose "
+                         "another --out") from None
+    design_path = copy_demo_inputs(out)
+    spec = load_design(design_path)
+    tables = out / TABLE_DIR
+    refuse_output_over_input(
+        [out / FAMILY_FILE, out / SUMMARY_FILE]
+        + [folder_target(tables, f) for f in TABLE_FORMATS if f != "c"],
+        [design_path, spec.source.operating_points, spec.source.validation,
+         bundled_design_path(), bundled_design_path().parent / ENVELOPE_FILE],
+        folders=[out / REPORT_DIR, out / SIMULATION_DIR, folder_target(tables, "c")])
     names = [v.name for v in spec.variables]
     units = [v.unit for v in spec.variables]
     files: dict[str, Path] = {}
@@ -143,8 +157,11 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     table = build_table(family, sample_time=spec.export.sample_time, method=spec.export.method,
                         prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path),
                         limits=spec.limits)
-    tables = out / TABLE_DIR
-    tables.mkdir(exist_ok=True)
+    try:
+        tables.mkdir(exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create folder {tables}: {exc.strerror}; choose another "
+                         "--out") from None
     paths, (fmu,) = write_tables(table, TABLE_FORMATS, tables)
     for p in paths:
         key = {".h": "c_header", ".c": "c_source"}.get(p.suffix, p.suffix.lstrip("."))

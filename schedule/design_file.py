@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError
+from .names import name_problem
 from .types import LinearPlant, SchedulingVariable
 
 if sys.version_info >= (3, 11):
@@ -70,6 +71,14 @@ REQUIREMENT_FORMS = {
 }
 WEIGHT_NUMBERS = ("gain", "peak_sensitivity", "bandwidth", "low_frequency_error", "limit",
                   "high_frequency_limit", "level")
+
+# Sizes beyond which a design file is refused before any memory is spent on it.
+MAX_DESIGN_BYTES = 4_000_000  # a design file is a few kB of text
+MAX_CHECK_SAMPLES = 100_000  # the checks hold every sample's plant and controller in memory
+MAX_GRID_POINTS = 1_000_000  # product of the breakpoint counts, less the holes
+MAX_GAMMA_MARGIN = 10.0  # 1000 % above the worst optimum; beyond it use policy "fixed"
+MAX_GAMMA_VALUE = 1e100  # gamma**2 must stay far from overflow
+MAX_MATRIX_ENTRY = 1e100  # plant and controller entries: products must stay far from overflow
 
 
 # --------------------------------------------------------------------------- dataclasses
@@ -164,7 +173,12 @@ class WeightsSpec:
 
 @dataclass(frozen=True)
 class SourceSpec:
-    """Where the linearized plants come from (paths resolved against the design folder)."""
+    """Where the linearized plants come from (paths resolved against the design folder).
+
+    ``ignored`` lists the code entries (model, model_file, nonlinear_model) of a
+    design read from a data file and set aside unimported
+    (:func:`schedule.sources.without_code`); empty for a design file the user gave.
+    """
 
     operating_points: Path | None = None
     model: str | None = None
@@ -174,6 +188,7 @@ class SourceSpec:
     validation: Path | None = None
     nonlinear_model_file: Path | None = None
     nonlinear_function: str | None = None
+    ignored: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -385,7 +400,17 @@ class _Reader:
         dup = _first_duplicate(v)
         if dup is not None:
             raise self.fail(path, f"name '{dup}' appears twice", "list each name once")
+        for name in v:
+            self.plain(path, name)
         return tuple(v)
+
+    def plain(self, path: str, text: str) -> str:
+        """Refuse control, format and separator characters in a name, unit or title."""
+        problem = name_problem(text)
+        if problem is not None:
+            raise self.fail(path, f"{text[:40]!r} {problem}",
+                            "use printable characters only (no newlines, tabs or escapes)")
+        return text
 
     def float_array(self, v: Any, path: str, ndim: int) -> np.ndarray:
         try:
@@ -454,14 +479,23 @@ def load_design(path: str | os.PathLike) -> DesignSpec:
         schema (docs/design-file.md); the one-line message names the file, the
         key path and the fix.
     """
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"design file {path} does not exist; check the path")
+    from .paths import input_file
+
+    path = input_file(path, "design file")
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"design file {path} cannot be read ({exc}); save it as UTF-8 "
-                         "text") from None
+        with open(path, "rb") as fh:
+            data = fh.read(MAX_DESIGN_BYTES + 1)
+    except OSError as exc:
+        raise InputError(f"design file {path} cannot be read ({exc.strerror}); check the "
+                         "file") from None
+    if len(data) > MAX_DESIGN_BYTES:
+        raise InputError(f"design file {path} is larger than {MAX_DESIGN_BYTES // 1000} kB; "
+                         "a design file is a short TOML text, give the right file")
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"design file {path} is not UTF-8 text (byte {exc.start}); save it "
+                         "as UTF-8") from None
     return parse_design(text, path.resolve().parent, name=str(path))
 
 
@@ -472,7 +506,16 @@ def parse_design(text: str, base_dir: str | os.PathLike, name: str = "<design te
     ``name`` is used in error messages (the file name when called from
     :func:`load_design`).
     """
+    try:
+        return _parse(text, base_dir, name)
+    except RecursionError:
+        raise InputError(f"{name}: tables or arrays are nested too deeply; a design file "
+                         "needs only a few levels") from None
+
+
+def _parse(text: str, base_dir: str | os.PathLike, name: str) -> DesignSpec:
     r = _Reader(name)
+    text = text.removeprefix("\ufeff")  # a UTF-8 byte-order mark is not content
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -481,7 +524,7 @@ def parse_design(text: str, base_dir: str | os.PathLike, name: str = "<design te
                          ) from None
     base = Path(base_dir)
     r.keys(data, "", TOP_KEYS, required=("variable", "source", "channels"))
-    title = r.string(data, "", "title", "") or ""
+    title = r.plain("title", r.string(data, "", "title", "") or "")
     variables = _parse_variables(r, data["variable"])
     source = _parse_source(r, r.table(data["source"], "source"), base)
     grid = _parse_grid(r, data.get("grid"), variables, source)
@@ -519,7 +562,7 @@ def _parse_variables(r: _Reader, items: Any) -> tuple[SchedulingVariable, ...]:
         key = f"variable[{i}]"
         item = r.table(item, key)
         r.keys(item, key, ("name", "unit", "lower", "upper"), ("name", "lower", "upper"))
-        name = r.string(item, key, "name")
+        name = r.plain(_join(key, "name"), r.string(item, key, "name"))
         if not name.isidentifier():
             raise r.fail(_join(key, "name"), f"'{name}' is not a plain identifier",
                          "use letters, digits and underscores (it names grid keys)")
@@ -527,6 +570,7 @@ def _parse_variables(r: _Reader, items: Any) -> tuple[SchedulingVariable, ...]:
         if not isinstance(unit, str):
             raise r.fail(_join(key, "unit"), f"expected a string, got {_tname(unit)}",
                          'write the unit in "quotes" ("" for none)')
+        r.plain(_join(key, "unit"), unit)
         lo = r.number(item, key, "lower")
         hi = r.number(item, key, "upper")
         if lo >= hi:
@@ -650,6 +694,11 @@ def _parse_grid(r: _Reader, t: Any, variables, source: SourceSpec) -> GridSpec:
             raise r.fail(key, f"breakpoint {bad:g} is outside the bounds [{v.lower:g}, "
                          f"{v.upper:g}]", "move it inside or widen the variable's bounds")
         bps.append(bp)
+    total = math.prod(len(b) for b in bps)
+    if total > MAX_GRID_POINTS:
+        raise r.fail("grid", f"the breakpoints span {total:.3g} grid points, more than "
+                     f"{MAX_GRID_POINTS}", "use fewer breakpoints, or refine where the checks "
+                     "fail")
     holes = None
     if "holes" in t:
         holes = r.float_array(t["holes"], "grid.holes", 2)
@@ -731,7 +780,7 @@ def _parse_units(r: _Reader, t: Any, names: tuple[str, ...]) -> tuple[tuple[str,
         if not isinstance(unit, str):
             raise r.fail(_join(key, name), f"expected a string, got {_tname(unit)}",
                          'write the unit in "quotes" ("" for none)')
-        out.append((name, unit))
+        out.append((name, r.plain(_join(key, name), unit)))
     return tuple(out)
 
 
@@ -771,7 +820,7 @@ def _parse_weight(r: _Reader, t: dict, key: str, group: str, chan_key: str,
     kind, required, optional = REQUIREMENT_FORMS[group]
     own = required + optional
     r.keys(t, key, (chan_key,) + own + ("gain", "zeros", "poles"), required=(chan_key,))
-    name = r.string(t, key, chan_key)
+    name = r.plain(_join(key, chan_key), r.string(t, key, chan_key))
     nums = {k: _parse_number(r, t[k], _join(key, k), variables) for k in WEIGHT_NUMBERS
             if k in t}
     forms = f"{', '.join(required)} (the {group} requirement), gain, or zeros/poles/gain"
@@ -918,7 +967,14 @@ def _parse_gamma(r: _Reader, t: dict) -> GammaSpec:
     r.keys(t, "gamma", ("policy", "margin", "value"))
     policy = r.choice(t, "gamma", "policy", "common", GAMMA_POLICIES)
     margin = r.number(t, "gamma", "margin", 0.05, nonneg=True)
+    if margin > MAX_GAMMA_MARGIN:
+        raise r.fail("gamma.margin", f"value {margin:g} is above {MAX_GAMMA_MARGIN:g} "
+                     f"({MAX_GAMMA_MARGIN:.0%} above the worst optimum)",
+                     "give a relative margin such as 0.05, or policy = \"fixed\" with a value")
     value = r.number(t, "gamma", "value", None, positive=True)
+    if value is not None and value > MAX_GAMMA_VALUE:
+        raise r.fail("gamma.value", f"value {value:g} is above {MAX_GAMMA_VALUE:g}",
+                     "scale the weights so that gamma is near 1")
     if policy == "fixed" and value is None:
         raise r.fail("gamma.value", "missing (policy \"fixed\" needs it)",
                      "add value = <gamma > 0> or use policy = \"common\"")
@@ -944,7 +1000,12 @@ def _parse_check(r: _Reader, t: dict) -> CheckSpec:
     if pm >= 180.0:
         raise r.fail("check.phase_margin_deg", f"value {pm:g} is not below 180",
                      "give a phase margin in degrees, 0 <= value < 180")
-    return CheckSpec(samples=r.integer(t, k, "samples", 64, minimum=0),
+    samples = r.integer(t, k, "samples", 64, minimum=0)
+    if samples > MAX_CHECK_SAMPLES:
+        raise r.fail("check.samples", f"value {samples} is above {MAX_CHECK_SAMPLES}",
+                     f"give at most {MAX_CHECK_SAMPLES} samples (refine where checks fail "
+                     "instead)")
+    return CheckSpec(samples=samples,
                      sampler=r.choice(t, k, "sampler", "sobol", SAMPLERS),
                      seed=r.integer(t, k, "seed", 0, minimum=0),
                      gamma_tolerance=r.number(t, k, "gamma_tolerance", 0.02, nonneg=True),

@@ -366,8 +366,9 @@ def points_from_file(path: str | os.PathLike, variables: Sequence[SchedulingVari
     path = Path(path)
     variables = validate_variables(variables)
     names = [v.name for v in variables]
-    if not path.is_file():
-        raise InputError(f"points file {path} does not exist; check the path")
+    from .paths import input_file
+
+    input_file(path, "points file")
     try:
         with path.open(newline="", encoding="utf-8") as fh:
             rows = [r for r in csv.reader(fh)

@@ -26,7 +26,6 @@ the end.
 
 from __future__ import annotations
 
-import glob
 import hashlib
 import os
 import time
@@ -227,12 +226,10 @@ def _fingerprint(points: np.ndarray, plant_stack: dict, build_reasons: Sequence[
 
 
 def _remove_stale_temps(path: Path) -> None:
-    """Delete temporary files left by a killed atomic write of ``path``."""
-    for name in glob.glob(glob.escape(str(path)) + ".*.tmp"):
-        try:
-            os.unlink(name)
-        except OSError:
-            pass
+    """Delete temporary files left by a killed atomic write of ``path`` (see schedule.atomic)."""
+    from .atomic import remove_stale_temps
+
+    remove_stale_temps(path)
 
 
 class _PartialState:

@@ -217,11 +217,43 @@ class ScheduledController:
 
     @classmethod
     def from_family(cls, family: Family) -> ScheduledController:
-        """The scheduled controller stored in the family (``family.interpolant``)."""
+        """The scheduled controller stored in the family (``family.interpolant``).
+
+        The stored arrays are tried at the first synthesized point: a damaged
+        interpolant (arrays that do not fit together or give matrices of other
+        shapes than the family's) raises InputError here, not a numpy error later.
+        """
         if not family.interpolant:
-            raise InputError("the family file holds no interpolant; run `schedule design` to "
-                             "fit one, or call ScheduledController.fit(family, form, kind)")
-        return cls.from_arrays(family.interpolant)
+            ok = int(np.sum(np.asarray(family.status) == "ok"))
+            why = str(family.extra.get("interpolant_error", "") or "").strip()
+            if ok < 2:
+                raise InputError(f"the family holds {ok} synthesized operating point(s) and no "
+                                 "interpolant: scheduling needs at least two; add design "
+                                 "points and run `schedule design` again")
+            raise InputError("the family file holds no interpolant"
+                             + (f" (fitting failed: {why})" if why else "")
+                             + "; run `schedule design` to fit one, or call "
+                             "ScheduledController.fit(family, form, kind)")
+        try:
+            sc = cls.from_arrays(family.interpolant)
+            rows = np.flatnonzero(np.asarray(family.status) == "ok")[:1]
+            if rows.size:
+                p = np.asarray(family.points, dtype=float)[rows]
+                for got, want in ((sc.evaluate(p), family.controller),
+                                  (sc.plant_at(p), family.plant)):
+                    for k, v in want.items():
+                        if k in got and (got[k].shape[1:] != np.shape(v)[1:]
+                                         or not np.isfinite(got[k]).all()):
+                            raise ValueError(f"it gives {k} of shape {got[k].shape[1:]} "
+                                             f"(family: {np.shape(v)[1:]}) or non-finite")
+        except ScheduleError:
+            raise
+        except (ValueError, TypeError, IndexError, KeyError, ArithmeticError,
+                np.linalg.LinAlgError) as exc:
+            msg = " ".join(str(exc).split())[:100]
+            raise InputError(f"the family's stored interpolant is damaged ({msg}); re-run "
+                             "`schedule design` or fit the interpolant again") from None
+        return sc
 
     def to_arrays(self) -> dict:
         """The family-file dict ``{"arrays": {name: ndarray}, "attrs": {name: str|int|float}}``."""
@@ -610,18 +642,26 @@ def evidence_from_arrays(extra: dict) -> list[LooResult] | None:
     """Inverse of :func:`evidence_to_arrays`; None when ``extra`` holds no LOO table."""
     if "loo_candidates" not in extra:
         return None
-    labels = [str(v) for v in np.atleast_1d(extra["loo_candidates"])]
-    failures = [str(v) for v in np.atleast_1d(extra.get("loo_failure", [""] * len(labels)))]
-    gamma = float(np.asarray(extra["loo_gamma"]))
-    idx = np.atleast_1d(np.asarray(extra["loo_point_index"])).astype(np.int64)
-    out = []
-    for c, label in enumerate(labels):
-        form, _, kind = label.partition("/")
-        out.append(LooResult(form, kind, gamma, idx,
-                             np.asarray(extra["loo_rel_error"], float).reshape(len(labels), -1)[c],
-                             np.asarray(extra["loo_norm"], float).reshape(len(labels), -1)[c],
-                             np.asarray(extra["loo_stable"]).reshape(len(labels), -1)[c]
-                             .astype(bool), failures[c]))
+    try:
+        labels = [str(v) for v in np.atleast_1d(extra["loo_candidates"])]
+        failures = [str(v) for v in np.atleast_1d(extra.get("loo_failure", [""] * len(labels)))]
+        gamma = float(np.asarray(extra["loo_gamma"]))
+        idx = np.atleast_1d(np.asarray(extra["loo_point_index"])).astype(np.int64)
+        out = []
+        for c, label in enumerate(labels):
+            form, _, kind = label.partition("/")
+            out.append(LooResult(form, kind, gamma, idx,
+                                 np.asarray(extra["loo_rel_error"], float)
+                                 .reshape(len(labels), -1)[c],
+                                 np.asarray(extra["loo_norm"], float).reshape(len(labels), -1)[c],
+                                 np.asarray(extra["loo_stable"]).reshape(len(labels), -1)[c]
+                                 .astype(bool), failures[c]))
+    except (ValueError, TypeError, IndexError, KeyError) as exc:
+        if isinstance(exc, ScheduleError):
+            raise
+        msg = " ".join(str(exc).split())[:100]
+        raise InputError(f"the family's stored leave-one-out table is damaged ({msg}); re-run "
+                         "`schedule design`") from None
     return out
 
 

@@ -24,12 +24,25 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from .design_file import MAX_MATRIX_ENTRY
 from .errors import InputError
-from .h5util import atomic_h5, decode, read_variables, strings, write_variables
+from .h5util import (
+    H5Contents,
+    atomic_h5,
+    check_format,
+    decode,
+    expect,
+    open_checked,
+    read_variables,
+    strings,
+    write_variables,
+)
+from .names import check_names
 from .types import LinearPlant, SchedulingVariable, point_text
 
 FORMAT_NAME = "schedule-operating-points"
 FORMAT_VERSION = 1
+_FIX = "regenerate or re-export the operating-point file"
 
 
 @dataclass(frozen=True)
@@ -87,35 +100,51 @@ def write_operating_points(path: str | os.PathLike, points: OperatingPoints) -> 
 
 
 def read_operating_points(path: str | os.PathLike) -> OperatingPoints:
-    """Read and validate an operating-point file; raise InputError naming the problem."""
+    """Read and validate an operating-point file; raise InputError naming the problem.
+
+    The file's structure, dtypes and shapes are checked from its metadata
+    (:func:`schedule.h5util.open_checked`, :func:`_check_layout`) before any
+    array is read, so a damaged or forged file costs no more memory than its size.
+    """
     path = Path(path)
-    if not path.is_file():
-        raise InputError(f"operating-point file {path} does not exist; check the path")
-    try:
-        with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != FORMAT_NAME:
-                raise InputError(f"{path} is not an operating-point file (attribute 'format' "
-                                 f"should be '{FORMAT_NAME}')")
-            version = int(f.attrs.get("format_version", -1))
-            if version != FORMAT_VERSION:
-                raise InputError(f"{path} has operating-point format version {version}; this "
-                                 f"tool reads version {FORMAT_VERSION}")
-            variables, breakpoints = read_variables(f)
-            pts = OperatingPoints(
-                variables=variables,
-                values=np.asarray(f["points/values"][()], dtype=float),
-                A=f["points/A"][()], B=f["points/B"][()], C=f["points/C"][()],
-                D=f["points/D"][()],
-                state_names=decode(f["names/states"]), input_names=decode(f["names/inputs"]),
-                output_names=decode(f["names/outputs"]), breakpoints=breakpoints,
-                description=str(f.attrs.get("description", "")))
-    except InputError:
-        raise
-    except (OSError, KeyError) as exc:
-        raise InputError(f"{path} is corrupt or truncated ({exc}); regenerate or re-export "
-                         "the operating-point file") from None
+    with open_checked(path, "operating-point file", _FIX) as (f, contents):
+        check_format(f, path, FORMAT_NAME, FORMAT_VERSION, "operating-point file", _FIX)
+        _check_layout(contents, path)
+        variables, breakpoints = read_variables(f)
+        description = f.attrs.get("description", "")
+        pts = OperatingPoints(
+            variables=variables,
+            values=np.asarray(f["points/values"][()], dtype=float),
+            A=f["points/A"][()], B=f["points/B"][()], C=f["points/C"][()],
+            D=f["points/D"][()],
+            state_names=decode(f["names/states"]), input_names=decode(f["names/inputs"]),
+            output_names=decode(f["names/outputs"]), breakpoints=breakpoints,
+            description=description if isinstance(description, str) else "")
     _validate(pts, str(path))
     return pts
+
+
+def _check_layout(c: H5Contents, path: Path) -> None:
+    """Dtypes and shapes of every dataset, consistent with one another, before reading."""
+    d = expect(c, path, "variables/names", "string", (None,), "(d,)")[0]
+    for key in ("units", "lower", "upper"):
+        expect(c, path, f"variables/{key}", "string" if key == "units" else "number", (d,),
+               f"({d},), one per variable")
+    N = expect(c, path, "points/values", "number", (None, d), f"(N, {d})")[0]
+    n = expect(c, path, "points/A", "number", (N, None, None), f"({N}, n, n)")[1]
+    expect(c, path, "points/A", "number", (N, n, n), f"({N}, n, n)")
+    m = expect(c, path, "points/B", "number", (N, n, None), f"({N}, {n}, m)")[2]
+    p = expect(c, path, "points/C", "number", (N, None, n), f"({N}, p, {n})")[1]
+    expect(c, path, "points/D", "number", (N, p, m), f"({N}, {p}, {m})")
+    for key, size in (("states", n), ("inputs", m), ("outputs", p)):
+        expect(c, path, f"names/{key}", "string", (size,), f"({size},), one name per "
+               f"{key[:-1]}")
+    bps = [name for name in c.datasets if name.startswith("variables/breakpoints/")]
+    for name in bps:
+        expect(c, path, name, "number", (None,), "(k,), one list per variable")
+    if bps and len(bps) != d:
+        raise InputError(f"{path}: variables/breakpoints holds {len(bps)} lists for {d} "
+                         "variables; give one per variable or none")
 
 
 def _validate(pts: OperatingPoints, where: str) -> None:
@@ -126,6 +155,14 @@ def _validate(pts: OperatingPoints, where: str) -> None:
     N = values.shape[0]
     if N == 0:
         raise InputError(f"{where}: the file holds no operating points")
+    for name, arr in (("values", values), ("A", pts.A), ("B", pts.B), ("C", pts.C),
+                      ("D", pts.D)):
+        if np.iscomplexobj(arr):
+            raise InputError(f"{where}: points/{name} holds complex numbers; give the real "
+                             "matrices of a real state-space model")
+        if np.asarray(arr).dtype.kind not in "biuf":
+            raise InputError(f"{where}: points/{name} holds {np.asarray(arr).dtype} values, "
+                             "expected real numbers")
     A, B, C, D = (np.asarray(x) for x in (pts.A, pts.B, pts.C, pts.D))
     if A.ndim != 3 or A.shape[0] != N or A.shape[1] != A.shape[2]:
         raise InputError(f"{where}: points/A has shape {A.shape}, expected ({N}, n, n)")
@@ -142,6 +179,13 @@ def _validate(pts: OperatingPoints, where: str) -> None:
             raise InputError(f"{where}: points/{name} holds NaN or inf at point {k} "
                              f"({point_text([v.name for v in pts.variables], values[k])}); "
                              "fix the linearization")
+        huge = np.abs(arr.reshape(N, -1)).max(axis=1, initial=0.0) > MAX_MATRIX_ENTRY
+        if name != "values" and huge.any():
+            k = int(np.argmax(huge))
+            raise InputError(f"{where}: points/{name} holds an entry of magnitude "
+                             f"{np.abs(arr[k]).max():.3g} at point {k}, beyond "
+                             f"{MAX_MATRIX_ENTRY:g}; rescale the plant's units (signals of "
+                             "order one)")
     for label, names, size in (("states", pts.state_names, n), ("inputs", pts.input_names, m),
                                ("outputs", pts.output_names, p)):
         if len(names) != size:
@@ -149,6 +193,9 @@ def _validate(pts: OperatingPoints, where: str) -> None:
                              f"{label}; give one name per {label[:-1]}")
         if len(set(names)) != len(names):
             raise InputError(f"{where}: names/{label} has duplicate names; make them unique")
+        check_names(names, f"{where}: names/{label}")
+    check_names([v.name for v in pts.variables], f"{where}: variables/names")
+    check_names([v.unit for v in pts.variables], f"{where}: variables/units")
     for j, v in enumerate(pts.variables):
         if not (np.isfinite(v.lower) and np.isfinite(v.upper) and v.lower < v.upper):
             raise InputError(f"{where}: scheduling variable '{v.name}' has bounds "

@@ -18,20 +18,23 @@ Figures, in our own visual style (:data:`STYLE`):
 Leave-one-out predictions that do not decide the verdict (evidence only) are
 drawn apart, as hollow diamonds outside the colour scales.
 
-Every file is written to a temporary name in the target folder and renamed,
-so a failed run never leaves a half-written file.
+The report folder is written whole: every figure and page is rendered in
+memory and the folder is put in place in one step
+(:func:`schedule.atomic.write_dir_atomic`), so a killed or failed run leaves
+the previous report (or none), never a mix of old and new files.
 """
 
 from __future__ import annotations
 
 import html
+import io
 import itertools
 import os
 from pathlib import Path
 
 import numpy as np
 
-from .atomic import write_file_atomic, write_text_atomic
+from .atomic import write_dir_atomic
 from .check import CheckResult
 from .errors import InputError
 
@@ -68,11 +71,21 @@ EVIDENCE = "#d68910"  # leave-one-out evidence that does not gate the verdict
 
 
 class _AggFigures:
-    """The two pyplot calls we use, on bare Agg figures: no global backend switch, no GUI.
+    """The pyplot calls we use, on bare Agg figures: no global backend switch, no GUI.
 
     Figures use matplotlib's constrained layout, which places colour bars and their
-    labels beside their own axes, clear of the neighbouring panel's labels.
+    labels beside their own axes, clear of the neighbouring panel's labels. ``save``
+    renders a figure to PNG bytes kept in ``files`` (name -> bytes); the report
+    folder is written from them in one step.
     """
+
+    def __init__(self) -> None:
+        self.files: dict[str, bytes] = {}
+
+    def save(self, fig, path: Path) -> None:
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=110, bbox_inches="tight")
+        self.files[path.name] = buffer.getvalue()
 
     @staticmethod
     def subplots(*args, figsize=None, **kw):
@@ -88,9 +101,10 @@ class _AggFigures:
         fig.clear()
 
 
-def _save_figure(fig, path: Path) -> None:
-    write_file_atomic(path, lambda tmp: fig.savefig(tmp, format="png", dpi=110,
-                                                    bbox_inches="tight"), "figure")
+def _report_member(name: str) -> bool:
+    """A file name that an earlier report may have left in the folder (replaced, not kept)."""
+    return name in ("summary.md", "summary.html", "gamma_opt.png", "margins.png",
+                    "controller_sv.png") or (name.startswith("ratio_") and name.endswith(".png"))
 
 
 # The pass criterion's numbers, read where the verdict reads them (the check's settings),
@@ -195,7 +209,7 @@ def _ratio_figures(plt, result: CheckResult) -> list[tuple[str, object]]:
 def _ratio_plots(plt, result: CheckResult, out: Path) -> list[Path]:
     paths = []
     for name, fig in _ratio_figures(plt, result):
-        _save_figure(fig, out / name)
+        plt.save(fig, out / name)
         plt.close(fig)
         paths.append(out / name)
     return paths
@@ -277,7 +291,7 @@ def _gamma_opt_plot(plt, result: CheckResult, out: Path) -> Path | None:
     if fig is None:
         return None
     path = out / "gamma_opt.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -311,7 +325,7 @@ def _margins_figure(plt, result: CheckResult):
 def _margins_plot(plt, result: CheckResult, out: Path) -> Path:
     fig = _margins_figure(plt, result)
     path = out / "margins.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -357,7 +371,7 @@ def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path)
         return None
     fig = _controller_sv_figure(plt, controller, family)
     path = out / "controller_sv.png"
-    _save_figure(fig, path)
+    plt.save(fig, path)
     plt.close(fig)
     return path
 
@@ -519,16 +533,17 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
     Raises
     ------
     InputError
-        If ``out_dir`` exists and is not a folder, or cannot be created.
+        If ``out_dir`` is a file, holds files that are not an earlier report's,
+        or cannot be written; the previous report is then left as it was.
     """
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"report folder {out} is a file; give a folder path")
     try:
-        out.mkdir(parents=True, exist_ok=True)
+        out.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"cannot create report folder {out} ({exc.strerror}); check the "
-                         "path and permissions") from None
+        raise InputError(f"cannot create the folder of report {out} ({exc.strerror}); check "
+                         "the path and permissions") from None
     if controller is None and getattr(family, "interpolant", None):
         from .errors import ScheduleError
         from .interpolate import ScheduledController
@@ -552,8 +567,8 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
         if c is not None:
             figures.append(c)
     md = markdown_summary(result, [str(f) for f in figures])
-    md_path = out / "summary.md"
-    html_path = out / "summary.html"
-    write_text_atomic(md_path, md, "report page")
-    write_text_atomic(html_path, _html(md), "report page")
-    return {"markdown": md_path, "html": html_path, "figures": figures}
+    files: dict[str, str | bytes] = dict(plt.files)
+    files["summary.md"] = md
+    files["summary.html"] = _html(md)
+    write_dir_atomic(out, files, "report folder", replaceable=_report_member)
+    return {"markdown": out / "summary.md", "html": out / "summary.html", "figures": figures}

@@ -13,8 +13,12 @@
 - :func:`operating_points_for` gives the design points and plants for either
   source, with the grid structure and a report of the holes.
 
-User code is imported with importlib (``spec_from_file_location`` for a file);
-nothing read from a data file is ever evaluated.
+User code is imported with importlib (``spec_from_file_location`` for a file),
+and only from a design the user named: a design file given on the command line
+or a ``--model`` option. A design read back from a family file is data; its
+code entries are set aside unimported (:func:`without_code`, with a note from
+:func:`ignored_code_note`) unless the user names them again
+(:func:`with_code_from`). Nothing read from a data file is ever evaluated.
 """
 
 from __future__ import annotations
@@ -23,19 +27,81 @@ import importlib
 import importlib.util
 import sys
 from collections.abc import Callable, Mapping
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 
-from .design_file import DesignSpec
+from .design_file import MAX_MATRIX_ENTRY, DesignSpec
 from .envelope import RectangularGrid, ScatteredPoints, point_text
 from .errors import InputError
+from .names import check_names
 from .types import LinearPlant
 
-__all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "operating_points_for",
-           "OperatingSet", "as_linear_plant", "check_consistent"]
+__all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "nonlinear_model_from",
+           "operating_points_for", "OperatingSet", "as_linear_plant", "check_consistent",
+           "without_code", "with_code_from", "with_model", "ignored_code_note"]
 
 ModelFn = Callable[[Mapping[str, float]], LinearPlant]
+
+
+# --------------------------------------------------------------------------- whose code
+def _code_entries(source) -> tuple[str, ...]:
+    """The code a design's source names, as it would be written in the design file."""
+    out = []
+    if source.model is not None:
+        out.append(f'source.model = "{source.model}"')
+    if source.model_file is not None:
+        out.append(f'source.model_file = "{source.model_file}" (function {source.function})')
+    if source.nonlinear_model is not None:
+        out.append(f'source.nonlinear_model = "{source.nonlinear_model}"')
+    if source.nonlinear_model_file is not None:
+        out.append(f'source.nonlinear_model_file = "{source.nonlinear_model_file}" '
+                   f'(name {source.nonlinear_function})')
+    return tuple(out)
+
+
+def without_code(spec: DesignSpec) -> DesignSpec:
+    """``spec`` with its code entries set aside (recorded in ``source.ignored``).
+
+    For a design read from a data file (a family file's stored design text):
+    a received file must not choose code to run, and its SHA-256 digest has no
+    key, so anyone can edit the text and recompute it.
+    """
+    src = spec.source
+    return replace(spec, source=replace(src, model=None, model_file=None, function=None,
+                                        nonlinear_model=None, nonlinear_model_file=None,
+                                        nonlinear_function=None, ignored=_code_entries(src)))
+
+
+def with_code_from(spec: DesignSpec, trusted: DesignSpec) -> DesignSpec:
+    """``spec`` with the code entries of ``trusted``, a design file the user named."""
+    t = trusted.source
+    return replace(spec, source=replace(spec.source, model=t.model, model_file=t.model_file,
+                                        function=t.function, nonlinear_model=t.nonlinear_model,
+                                        nonlinear_model_file=t.nonlinear_model_file,
+                                        nonlinear_function=t.nonlinear_function, ignored=()))
+
+
+def with_model(spec: DesignSpec, model: str) -> DesignSpec:
+    """``spec`` whose plant comes from ``model`` ("module:function", named by the user)."""
+    parts = model.split(":")
+    if len(parts) != 2 or not all(p.isidentifier() for p in parts[0].split(".")) \
+            or not parts[1].isidentifier():
+        raise InputError(f"model {model!r} must be written module:function")
+    return replace(spec, source=replace(spec.source, model=model, model_file=None,
+                                        function=None, operating_points=None, ignored=()))
+
+
+def ignored_code_note(spec: DesignSpec | None,
+                      options: str = "--design FILE (a design file you trust) or --model "
+                                     "module:function") -> str | None:
+    """One line saying which code a family's stored design names and that it was not imported."""
+    if spec is None or not spec.source.ignored:
+        return None
+    return (f"the family's stored design names {'; '.join(spec.source.ignored)}; it was not "
+            "imported, because a data file never chooses code to run: pass "
+            f"{options} to use it")
 
 
 # --------------------------------------------------------------------------- import helpers
@@ -113,8 +179,18 @@ def as_linear_plant(result) -> LinearPlant:
     else:
         raise InputError(f"the model returned {type(result).__name__}; return a LinearPlant or "
                          "an (A, B, C, D) tuple")
+    mats = {}
+    for label, M in (("A", A), ("B", B), ("C", C), ("D", D)):
+        if np.iscomplexobj(M):
+            M = np.asarray(M)
+            if np.any(M.imag != 0):
+                raise InputError(f"the model returned a complex {label} (imaginary parts up "
+                                 f"to {np.max(np.abs(M.imag)):.3g}); return the real matrices "
+                                 "of a real state-space model")
+            M = M.real
+        mats[label] = M
     try:
-        A, B, C, D = (np.atleast_2d(np.asarray(M, dtype=float)) for M in (A, B, C, D))
+        A, B, C, D = (np.atleast_2d(np.asarray(mats[k], dtype=float)) for k in "ABCD")
     except (TypeError, ValueError):
         raise InputError("the model returned matrices that are not numeric arrays; return "
                          "float arrays") from None
@@ -128,6 +204,10 @@ def as_linear_plant(result) -> LinearPlant:
     for label, M in (("A", A), ("B", B), ("C", C), ("D", D)):
         if not np.isfinite(M).all():
             raise InputError(f"the model returned NaN or inf in {label}; fix the linearization")
+        if M.size and np.abs(M).max() > MAX_MATRIX_ENTRY:
+            raise InputError(f"the model returned {label} with an entry of magnitude "
+                             f"{np.abs(M).max():.3g}, beyond {MAX_MATRIX_ENTRY:g}; rescale the "
+                             "plant's units (signals of order one)")
     m, p = B.shape[1], C.shape[0]
     if names is None or not any(names):
         states = tuple(f"x{i + 1}" for i in range(n))
@@ -141,10 +221,12 @@ def as_linear_plant(result) -> LinearPlant:
                              f"{label}s; give one name per {label}")
         if len(set(nm)) != len(nm):
             raise InputError(f"the model returned duplicate {label} names; make them unique")
+        check_names(nm, f"the model returned {label} names")
     for label, un, size in zip(("state", "input", "output"), units, (n, m, p), strict=True):
         if len(un) not in (0, size):
             raise InputError(f"the model returned {len(un)} {label} units for {size} "
                              f"{label}s; give one unit per {label} (\"\" for none) or none")
+        check_names(un, f"the model returned {label} units")
     return LinearPlant(A, B, C, D, states, ins, outs, *(tuple(str(u) for u in un)
                                                         for un in units))
 
@@ -164,8 +246,9 @@ def load_model(spec: DesignSpec) -> ModelFn:
     elif src.model_file is not None:
         fn = _import_file(Path(src.model_file), src.function or "")
     else:
-        raise InputError(f"{spec.name}: the design has no model (source.model or "
-                         "source.model_file); add one or use the operating-point file")
+        raise InputError(ignored_code_note(spec) or f"{spec.name}: the design has no model "
+                         "(source.model or source.model_file); add one or use the "
+                         "operating-point file")
     names = spec.variable_names
 
     def model(point) -> LinearPlant:
@@ -218,6 +301,9 @@ def load_nonlinear_model(spec: DesignSpec):
         where = f"source.nonlinear_model = \"{src.nonlinear_model}\""
         obj = import_entry(src.nonlinear_model, "source.nonlinear_model", callable_only=False)
     else:
+        note = ignored_code_note(spec)
+        if note:
+            raise InputError(note)
         raise InputError(f"{spec.name}: the design has no nonlinear model; add "
                          "nonlinear_model = \"module:function\" or nonlinear_model_file = "
                          "\"file.py\" with nonlinear_function = \"name\" to [source]")

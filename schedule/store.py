@@ -40,19 +40,22 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from .design_file import MAX_MATRIX_ENTRY
 from .errors import InputError
 from .h5util import STR as _STR
+from .h5util import H5Contents, check_format, expect, open_checked, read_variables, write_variables
 from .h5util import atomic_h5 as _atomic_h5
 from .h5util import decode as _decode
 from .h5util import decode_one as _decode_one
-from .h5util import read_variables, write_variables
 from .h5util import strings as _strings
+from .names import check_names
 from .types import Family
 
 FORMAT_NAME = "schedule-family"
 FORMAT_VERSION = 1
 PARTIAL_FORMAT_NAME = "schedule-family-partial"
 PARTIAL_FORMAT_VERSION = 1
+_FIX = "re-run 'schedule design' or restore the file"
 
 PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
 CONTROLLER_KEYS = ("A", "B", "C", "D")
@@ -288,44 +291,79 @@ def read_interpolant(path: str | os.PathLike) -> dict | None:
 def read_family(path: str | os.PathLike) -> Family:
     """Read and check a family file.
 
+    The file's structure is checked from its metadata first
+    (:func:`schedule.h5util.open_checked`: no links leaving the file, no
+    virtual or external data, plain dtypes, declared sizes the file can hold,
+    then :func:`_check_layout`: every shape consistent with the points and the
+    signal counts), then the content digest, then the values
+    (:func:`_validate_family`: finite numbers at the synthesized points, names).
+
     Raises
     ------
     InputError
-        One line naming the file and the problem: missing, not HDF5 / truncated /
-        corrupt (including a content digest that does not match), not a family
-        file, an unsupported format version, or inconsistent sizes.
+        One line naming the file and the problem: missing, not a regular file,
+        not HDF5 / truncated / corrupt (including a content digest that does not
+        match), not a family file, an unsupported format version, or
+        inconsistent sizes or values.
     """
     path = Path(path)
-    if not path.is_file():
-        raise InputError(f"family file {path} does not exist; run 'schedule design' first or "
-                         "check the path")
-    try:
-        with h5py.File(path, "r") as f:
-            fmt = _attr_value(f.attrs.get("format", ""))
-            if fmt != FORMAT_NAME:
-                raise InputError(f"{path} is not a family file (attribute 'format' is "
-                                 f"{fmt!r}, expected '{FORMAT_NAME}'); give a file written by "
-                                 "'schedule design'")
-            version = _attr_value(f.attrs.get("format_version", -1))
-            if version != FORMAT_VERSION:
-                raise InputError(f"{path} has family format version {version}; this tool "
-                                 f"reads version {FORMAT_VERSION}; re-run 'schedule design'")
-            stored = _attr_value(f.attrs.get("content_sha256", ""))
-            if stored != _digest(f):
-                raise InputError(f"{path} is corrupt (content digest does not match); "
-                                 "re-run 'schedule design' or restore the file")
-            family = _read_open_family(f)
-    except InputError:
-        raise
-    except Exception as exc:  # h5py raises OSError, KeyError, RuntimeError, ... on damage
-        if _starts_unlike_hdf5(path):
-            raise InputError(f"{path} is not an HDF5 file; give a family file written by "
-                             "'schedule design'") from None
-        msg = " ".join(str(exc).split())[:120]
-        raise InputError(f"{path} is corrupt or truncated ({type(exc).__name__}: {msg}); "
-                         "re-run 'schedule design' or restore the file") from None
+    with open_checked(path, "family file", _FIX) as (f, contents):
+        check_format(f, path, FORMAT_NAME, FORMAT_VERSION, "family file",
+                     "give a file written by 'schedule design'")
+        _check_layout(f, contents, path)
+        stored = _attr_value(f.attrs.get("content_sha256", ""))
+        if stored != _digest(f):
+            raise InputError(f"{path} is corrupt (content digest does not match); "
+                             "re-run 'schedule design' or restore the file")
+        family = _read_open_family(f)
     _validate_family(family, str(path))
     return family
+
+
+def _check_layout(f: h5py.File, c: H5Contents, path: Path) -> None:
+    """Dtypes and shapes of every dataset, consistent with one another, before reading data."""
+    for key in ("gamma",):
+        v = f.attrs.get(key)
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, float, np.integer,
+                                                                 np.floating)):
+            raise InputError(f"{path}: attribute '{key}' is not a number; {_FIX}")
+    for key in ("design_text", "design_base_dir", "tool_version", "created",
+                "content_sha256"):
+        v = f.attrs.get(key, "")
+        if not isinstance(v, (str, bytes)):
+            raise InputError(f"{path}: attribute '{key}' is not text; {_FIX}")
+    d = expect(c, path, "variables/names", "string", (None,), "(d,)")[0]
+    for key in ("units", "lower", "upper"):
+        expect(c, path, f"variables/{key}", "string" if key == "units" else "number", (d,),
+               f"({d},), one per variable")
+    N = expect(c, path, "points/values", "number", (None, d), f"(N, {d})")[0]
+    expect(c, path, "points/grid_index", "number", (N, d), f"({N}, {d})", required=False)
+    for key, kind in (("status", "string"), ("reasons", "string"), ("gamma_opt", "number")):
+        expect(c, path, f"points/{key}", kind, (N,), f"({N},), one per point")
+    n = expect(c, path, "plant/A", "number", (N, None, None), f"({N}, n, n)")[1]
+    expect(c, path, "plant/A", "number", (N, n, n), f"({N}, n, n)")
+    nw = expect(c, path, "plant/B1", "number", (N, n, None), f"({N}, {n}, w)")[2]
+    nu = expect(c, path, "plant/B2", "number", (N, n, None), f"({N}, {n}, u)")[2]
+    nz = expect(c, path, "plant/C1", "number", (N, None, n), f"({N}, z, {n})")[1]
+    ny = expect(c, path, "plant/C2", "number", (N, None, n), f"({N}, y, {n})")[1]
+    for key, rows, cols in (("D11", nz, nw), ("D12", nz, nu), ("D21", ny, nw), ("D22", ny, nu)):
+        expect(c, path, f"plant/{key}", "number", (N, rows, cols), f"({N}, {rows}, {cols})")
+    k = expect(c, path, "controller/A", "number", (N, None, None), f"({N}, k, k)")[1]
+    for key, rows, cols in (("A", k, k), ("B", k, ny), ("C", nu, k), ("D", nu, ny)):
+        expect(c, path, f"controller/{key}", "number", (N, rows, cols),
+               f"({N}, {rows}, {cols})")
+    for label, size in (("measured", ny), ("controls", nu), ("exogenous", nw),
+                        ("performance", nz), ("states", n)):
+        shape = expect(c, path, f"names/{label}", "string", (None,), f"({size},)")
+        if shape[0] not in (0, size):
+            raise InputError(f"{path}: names/{label} holds {shape[0]} names for {size} "
+                             "signals; the file is inconsistent")
+    for name, (shape, _dtype) in c.datasets.items():
+        if name.startswith("pieces/"):
+            expect(c, path, name, "number", (N,) + (None,) * (len(shape) - 1),
+                   f"({N}, ...), one entry per point")
+        elif name.startswith("variables/breakpoints/"):
+            expect(c, path, name, "number", (None,), "(k,)")
 
 
 def _read_open_family(f: h5py.File) -> Family:
@@ -376,13 +414,22 @@ def _decode_names(f: h5py.File, label: str) -> tuple[str, ...]:
 
 
 def _validate_family(family: Family, where: str) -> None:
-    """Sizes and values that every reader may rely on; InputError naming the field."""
+    """Sizes and values that every reader may rely on; InputError naming the field.
+
+    Used on write (a family built in Python) and on read (after the digest, so
+    that a file edited with a recomputed digest is held to the same rules):
+    shapes, real finite numbers wherever a point is 'ok' (failed points hold
+    zeros), points inside the variable bounds, breakpoints and grid indices
+    that agree with the points, finite interpolant arrays, plain names.
+    """
     points = np.asarray(family.points)
     d = len(family.variables)
     if points.ndim != 2 or points.shape[1] != d:
         raise InputError(f"{where}: points have shape {points.shape}, expected (N, {d}) for "
                          f"{d} scheduling variables")
     N = points.shape[0]
+    if N == 0:
+        raise InputError(f"{where}: the family holds no operating points")
     status = np.asarray(family.status)
     if status.shape != (N,) or len(family.reasons) != N or np.shape(family.gamma_opt) != (N,):
         raise InputError(f"{where}: status/reasons/gamma_opt must each hold {N} entries (one "
@@ -390,14 +437,48 @@ def _validate_family(family: Family, where: str) -> None:
     bad = sorted(set(map(str, status)) - {"ok", "failed"})
     if bad:
         raise InputError(f"{where}: point status {bad[0]!r} is not 'ok' or 'failed'")
-    if family.grid_index is not None and np.shape(family.grid_index) != (N, d):
-        raise InputError(f"{where}: grid_index has shape {np.shape(family.grid_index)}, "
-                         f"expected ({N}, {d})")
-    if family.breakpoints is not None and len(family.breakpoints) != d:
-        raise InputError(f"{where}: {len(family.breakpoints)} breakpoint lists for {d} "
-                         "scheduling variables")
+    ok = status == "ok"
+    for v in family.variables:
+        if not (np.isfinite(v.lower) and np.isfinite(v.upper) and v.lower < v.upper):
+            raise InputError(f"{where}: scheduling variable '{v.name}' has bounds "
+                             f"[{v.lower}, {v.upper}]; need finite lower < upper")
+    _real_finite(where, "points/values", points, np.ones(N, bool))
+    lo = np.array([v.lower for v in family.variables])
+    hi = np.array([v.upper for v in family.variables])
+    outside = np.any((points < lo) | (points > hi), axis=1)
+    if outside.any():
+        k = int(np.argmax(outside))
+        raise InputError(f"{where}: point {k} lies outside the scheduling-variable bounds; "
+                         "the file is inconsistent")
+    if family.breakpoints is not None:
+        if len(family.breakpoints) != d:
+            raise InputError(f"{where}: {len(family.breakpoints)} breakpoint lists for {d} "
+                             "scheduling variables")
+        for j, bp in enumerate(family.breakpoints):
+            bp = np.asarray(bp, dtype=float)
+            if bp.ndim != 1 or bp.size == 0 or not np.isfinite(bp).all() or \
+                    np.any(np.diff(bp) <= 0):
+                raise InputError(f"{where}: the breakpoints of {family.variables[j].name} are "
+                                 "not finite and strictly increasing")
+    if family.grid_index is not None:
+        gi = np.asarray(family.grid_index)
+        if gi.shape != (N, d):
+            raise InputError(f"{where}: grid_index has shape {gi.shape}, expected ({N}, {d})")
+        if family.breakpoints is None:
+            raise InputError(f"{where}: grid_index is given without breakpoints")
+        for j, bp in enumerate(family.breakpoints):
+            col = gi[:, j]
+            if gi.dtype.kind not in "iu" or np.any(col < 0) or np.any(col >= len(bp)) or \
+                    not np.allclose(np.asarray(bp, dtype=float)[np.clip(col, 0, len(bp) - 1)],
+                                    points[:, j], rtol=1e-12, atol=0.0):
+                raise InputError(f"{where}: grid_index of {family.variables[j].name} does not "
+                                 "point at the breakpoints of the points")
     if not (np.isfinite(family.gamma) and family.gamma > 0):
         raise InputError(f"{where}: common gamma {family.gamma} must be a positive number")
+    opt = np.asarray(family.gamma_opt)
+    if np.iscomplexobj(opt) or np.any(np.isinf(opt)) or np.any(opt[np.isfinite(opt)] <= 0):
+        raise InputError(f"{where}: gamma_opt must hold positive numbers (NaN where not "
+                         "computed)")
     for group, data, keys in (("plant", family.plant, PLANT_KEYS),
                               ("controller", family.controller, CONTROLLER_KEYS),
                               ("pieces", family.pieces, tuple(family.pieces))):
@@ -408,6 +489,8 @@ def _validate_family(family: Family, where: str) -> None:
             if arr.ndim < 1 or arr.shape[0] != N:
                 raise InputError(f"{where}: {group}/{key} has shape {arr.shape}; the first "
                                  f"axis must be the {N} points")
+            _real_finite(where, f"{group}/{key}", arr, ok,
+                         MAX_MATRIX_ENTRY if group in ("plant", "controller") else None)
     A = np.asarray(family.plant["A"])
     if A.ndim != 3 or A.shape[1] != A.shape[2]:
         raise InputError(f"{where}: plant/A has shape {A.shape}, expected (N, n, n)")
@@ -415,10 +498,50 @@ def _validate_family(family: Family, where: str) -> None:
     if family.state_names and len(family.state_names) != n:
         raise InputError(f"{where}: {len(family.state_names)} state names for {n} states")
     for label, attr in _NAME_FIELDS:
+        check_names(getattr(family, attr), f"{where}: names/{label}")
         units = family.units.get(label)
         if units is not None and len(units) != len(getattr(family, attr)):
             raise InputError(f"{where}: {len(units)} units for {len(getattr(family, attr))} "
                              f"{label} signals; give one unit per signal")
+        if units is not None:
+            check_names(units, f"{where}: names/units/{label}")
+    check_names([v.name for v in family.variables], f"{where}: variables/names")
+    check_names([v.unit for v in family.variables], f"{where}: variables/units")
+    if family.interpolant is not None:
+        for key, value in dict(family.interpolant.get("arrays", {})).items():
+            arr = np.asarray(value)
+            if arr.dtype.kind in "USO":
+                continue
+            if np.iscomplexobj(arr) or arr.dtype.kind not in "biuf" or \
+                    (arr.dtype.kind == "f" and not np.isfinite(arr).all()):
+                raise InputError(f"{where}: interpolant array '{key}' holds NaN, inf or "
+                                 "non-real values; the interpolant is damaged: re-run "
+                                 "'schedule design' (or refit it)")
+
+
+def _real_finite(where: str, name: str, arr: np.ndarray, rows: np.ndarray,
+                 limit: float | None = None) -> None:
+    """``arr`` holds real numbers, finite (and at most ``limit`` in magnitude) in the rows
+    ``rows`` (the 'ok' points)."""
+    arr = np.asarray(arr)
+    if np.iscomplexobj(arr):
+        raise InputError(f"{where}: {name} holds complex numbers; give real matrices")
+    if arr.dtype.kind not in "biuf":
+        raise InputError(f"{where}: {name} holds {arr.dtype} values, expected real numbers")
+    if arr.dtype.kind == "f" and rows.any():
+        sub = arr[rows].reshape(int(rows.sum()), -1)
+        bad = ~np.isfinite(sub).all(axis=1)
+        if bad.any():
+            k = int(np.flatnonzero(rows)[np.argmax(bad)])
+            raise InputError(f"{where}: {name} holds NaN or inf at point {k}, which is "
+                             "marked 'ok'; the family is damaged: re-run 'schedule design'")
+        if limit is not None:
+            huge = np.abs(sub).max(axis=1, initial=0.0) > limit
+            if huge.any():
+                k = int(np.flatnonzero(rows)[np.argmax(huge)])
+                raise InputError(f"{where}: {name} holds an entry beyond {limit:g} in "
+                                 f"magnitude at point {k}; the family is damaged or badly "
+                                 "scaled: rescale the plant and re-run 'schedule design'")
 
 
 # ----------------------------------------------------------------------------- partial results
@@ -477,12 +600,3 @@ def read_partial(path: str | os.PathLike) -> tuple[dict, dict] | None:
         raise InputError(f"{path} is unreadable ({type(exc).__name__}); delete it and run "
                          "without --resume") from None
     return arrays, attrs
-
-
-def _starts_unlike_hdf5(path) -> bool:
-    """True when the file does not begin with the HDF5 signature (a text file, say)."""
-    try:
-        with open(path, "rb") as fh:
-            return fh.read(8) != b"\x89HDF\r\n\x1a\n"
-    except OSError:
-        return False

@@ -315,14 +315,15 @@ def test_cli_refine(coarse, tmp_path):
     runner = CliRunner()
     src = coarse[0].base_dir / "family.h5"
     out = tmp_path / "refined.h5"
+    design = str(coarse[0].base_dir / "design.toml")
     res = runner.invoke(main, ["refine", str(src), "--out", str(out), "--budget", "20",
-                               "--samples", "8", "--json"])
+                               "--samples", "8", "--json", "--design", design])
     assert res.exit_code == 0, res.output
     data = json.loads(res.output)
     assert data["passed"] and len(data["added"]) >= 1
     assert len(read_family(out).points) == 4 + len(data["added"])
     res = runner.invoke(main, ["refine", str(src), "--out", str(tmp_path / "r2.h5"),
-                               "--budget", "0", "--samples", "8", "--quiet"])
+                               "--budget", "0", "--samples", "8", "--quiet", "--design", design])
     assert res.exit_code == 1 and "FAIL" in res.output
 
 

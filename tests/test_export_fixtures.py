@@ -53,8 +53,11 @@ def make_family(breakpoints=((3.0, 10.0, 30.0), (2000.0, 20000.0)), n=3, ny=2, n
         status[k] = "failed"
         mats[k] = tuple(np.zeros_like(m) for m in mats[k])
     controller = {k: np.stack([m[i] for m in mats]) for i, k in enumerate("ABCD")}
-    plant = {k: np.zeros((N, 1, 1)) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12",
-                                               "D21", "D22")}
+    # placeholder plant: one state, one exogenous input and one error output, with the
+    # controller's measured outputs (ny) and controls (nu), as the family format requires
+    rows = {"A": 1, "B1": 1, "B2": 1, "C1": 1, "C2": ny, "D11": 1, "D12": 1, "D21": ny, "D22": ny}
+    cols = {"A": 1, "B1": 1, "B2": nu, "C1": 1, "C2": 1, "D11": 1, "D12": nu, "D21": 1, "D22": nu}
+    plant = {k: np.zeros((N, rows[k], cols[k])) for k in rows}
     if with_plant:
         rng = np.random.default_rng(11)
         plant.update({"A": np.zeros((N, n, n)), "B1": np.zeros((N, n, 1)),

@@ -47,8 +47,9 @@ def _controller_family(n=1):
     return Family(
         variables=(SchedulingVariable("speed", "m/s", 0.0, 10.0),), points=pts,
         status=np.array(["ok"] * N), reasons=("",) * N, gamma_opt=np.ones(N), gamma=1.1,
-        plant={k: np.zeros((N, 1, 1)) for k in ("A", "B1", "B2", "C1", "C2", "D11", "D12",
-                                                 "D21", "D22")},
+        # placeholder plant with the controller's two measured outputs and one control
+        plant={k: np.zeros((N, 2 if k in ("C2", "D21", "D22") else 1, 1)) for k in
+               ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")},
         controller={"A": np.repeat(Ac[None], N, 0), "B": np.repeat(Bc[None], N, 0),
                     "C": np.repeat(Cc[None], N, 0), "D": np.repeat(Dc[None], N, 0)},
         pieces={}, measured_names=("pos", "vel"), control_names=("force",),
@@ -170,7 +171,8 @@ def test_simulate_command(tmp_path, monkeypatch):
     traj.write_text("time,speed,ref:pos,gust\n0,0,0,0\n0.5,2,1,0\n4,10,1,0.5\n")
     out = tmp_path / "sim"
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out),
-                                    "--trajectory", str(traj), "--sample-time", "0.05"])
+                                    "--trajectory", str(traj), "--sample-time", "0.05",
+                                    "--model", "h4_testmodel:make"])
     assert res.exit_code == 0, res.output
     names = sorted(p.name for p in out.iterdir())
     assert names == ["response.png", "schedule.png", "simulation.csv", "summary.json"]
@@ -182,7 +184,7 @@ def test_simulate_command(tmp_path, monkeypatch):
     bad.write_text("time,speed,wind\n0,0,0\n1,1,1\n")
     out2 = tmp_path / "sim2"
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2),
-                                    "--trajectory", str(bad)])
+                                    "--trajectory", str(bad), "--model", "h4_testmodel:make"])
     assert res.exit_code == 2 and "unknown column 'wind'" in res.output
     assert not out2.exists()
     # an exported table brings its own sample time: --sample-time would be ignored
@@ -199,7 +201,8 @@ def test_simulate_command(tmp_path, monkeypatch):
     far = tmp_path / "far.csv"
     far.write_text("time,speed\n0,9\n1,10\n2,12\n3,12\n")
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out2),
-                                    "--trajectory", str(far), "--sample-time", "0.05"])
+                                    "--trajectory", str(far), "--sample-time", "0.05",
+                                    "--model", "h4_testmodel:make"])
     assert res.exit_code == 2 and "the trajectory leaves the envelope: speed =" in res.output
     assert "speed = 12 m/s at t = 2 s (2 of 4 samples outside [0, 10] m/s)" in res.output
     assert not out2.exists()
@@ -227,7 +230,8 @@ def test_simulate_step_comparison_with_limits(tmp_path, monkeypatch):
     out = tmp_path / "sim"
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(out),
                                     "--trajectory", str(traj), "--sample-time", "0.05",
-                                    "--step", "pos=3", "--step-at", "speed=5"])
+                                    "--step", "pos=3", "--step-at", "speed=5",
+                                    "--model", "h4_testmodel:make"])
     assert res.exit_code == 0, res.output
     assert {"step.png", "step.csv"} <= {p.name for p in out.iterdir()}
     summary = json.loads((out / "summary.json").read_text())
@@ -238,7 +242,8 @@ def test_simulate_step_comparison_with_limits(tmp_path, monkeypatch):
     # a step needs limits to compare with and without anti-windup
     write_family(fam_path, _controller_family(1))
     res = CliRunner().invoke(main, ["simulate", str(fam_path), "--out", str(tmp_path / "s2"),
-                                    "--trajectory", str(traj), "--step", "pos=3"])
+                                    "--trajectory", str(traj), "--step", "pos=3",
+                                    "--model", "h4_testmodel:make"])
     assert res.exit_code == 2 and "no actuator limits" in res.output
 
 

@@ -26,10 +26,15 @@ def make_family(N: int = 6, seed: int = 0, grid: bool = True) -> Family:
     shapes = {"A": (n, n), "B1": (n, nw), "B2": (n, nu), "C1": (nz, n), "C2": (ny, n),
               "D11": (nz, nw), "D12": (nz, nu), "D21": (ny, nw), "D22": (ny, nu)}
     status = np.array(["ok"] * (N - 1) + ["failed"])
+    points = rng.random((N, 2)) * [10, 1] + [0, 1]
+    breakpoints = (np.array([0.0, 5.0, 10.0]), np.array([1.0, 2.0])) if grid else None
+    grid_index = rng.integers(0, 2, size=(N, 2)) if grid else None
+    if grid:  # grid points lie on the breakpoints
+        points = np.column_stack([b[i] for b, i in zip(breakpoints, grid_index.T, strict=True)])
     return Family(
         variables=(SchedulingVariable("speed", "m/s", 0.0, 10.0),
                    SchedulingVariable("load", "kg", 1.0, 2.0)),
-        points=rng.random((N, 2)) * [10, 1] + [0, 1], status=status,
+        points=points, status=status,
         reasons=("",) * (N - 1) + ("model: solver diverged (ünïcode ok)",),
         gamma_opt=np.r_[rng.random(N - 1) + 1, np.nan], gamma=2.5,
         plant={k: rng.normal(size=(N,) + s) for k, s in shapes.items()},
@@ -38,8 +43,7 @@ def make_family(N: int = 6, seed: int = 0, grid: bool = True) -> Family:
         pieces={"F": rng.normal(size=(N, nu, n)), "Z": rng.normal(size=(N, n, n))},
         measured_names=("y1", "y2"), control_names=("u",), exogenous_names=("d:w", "n:y1"),
         performance_names=("e:y1", "u:u"), state_names=("x1", "x2", "w_perf:y1"),
-        breakpoints=(np.array([0.0, 5.0, 10.0]), np.array([1.0, 2.0])) if grid else None,
-        grid_index=rng.integers(0, 2, size=(N, 2)) if grid else None,
+        breakpoints=breakpoints, grid_index=grid_index,
         design_text='title = "t"\n', tool_version="9.9", created="2024-01-02T03:04:05+00:00",
         interpolant={"arrays": {"coef": rng.normal(size=(4, 3)), "knots/speed": np.arange(3.0),
                                 "labels": np.array(["a", "b"])},

@@ -10,7 +10,9 @@ import sys
 
 import click
 
+from ..design_file import MAX_CHECK_SAMPLES
 from ..errors import InputError
+from .common import code_notes, design_inputs, design_option
 
 
 def _fmt(x, spec=".4g") -> str:
@@ -69,7 +71,7 @@ def print_result(result, quiet: bool = False) -> None:
 
 @click.command("check")
 @click.argument("family_file", type=click.Path(dir_okay=False))
-@click.option("--samples", type=click.IntRange(min=0), default=None,
+@click.option("--samples", type=click.IntRange(min=0, max=MAX_CHECK_SAMPLES), default=None,
               help="Random in-between samples. Default: design [check] samples (64).")
 @click.option("--sampler", type=click.Choice(["sobol", "latin_hypercube"]), default=None,
               help="Space-filling sampler. Default: design [check] sampler (sobol).")
@@ -79,6 +81,7 @@ def print_result(result, quiet: bool = False) -> None:
 @click.option("--model", default=None,
               help="module:function giving the true plant at a point (overrides the "
                    "design's source for the checks).")
+@design_option
 @click.option("--json", "as_json", is_flag=True, help="Print the full result as JSON.")
 @click.option("--report", "report_dir", type=click.Path(file_okay=False), default=None,
               help="Write plots and a summary page (Markdown and HTML) into this folder.")
@@ -91,27 +94,35 @@ def print_result(result, quiet: bool = False) -> None:
               help="Let failing leave-one-out predictions fail the check even when the "
                    "in-between points use the true plant (by default they are evidence only).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the verdict lines.")
-def check_command(family_file, samples, sampler, seed, points_file, model, as_json, report_dir,
-                  jobs, cluster, no_gamma_opt, strict_loo, quiet):
+def check_command(family_file, samples, sampler, seed, points_file, model, design_file, as_json,
+                  report_dir, jobs, cluster, no_gamma_opt, strict_loo, quiet):
     """Check the scheduled controller of FAMILY_FILE at frozen in-between points.
 
     Stability, closed-loop norm against gamma, disk and classical margins, the
     price of interpolation (gamma_opt) and a scheduling-rate bound. Exit code 0
     when all checks pass, 1 when some fail, 2 for bad input.
+
+    The true plant at the in-between points comes from --model, or from the
+    model named in the design file given with --design. A model named only in
+    the family file is not imported (the file is data); the checks then use the
+    family's interpolated plant and say so (a weaker check).
     """
     from ..check import CheckSettings, check_family, spec_for_family
+    from ..paths import refuse_output_over_input
     from ..progress import ProgressBar
     from ..store import read_family
 
+    refuse_output_over_input([], [family_file, points_file, design_file], folders=[report_dir])
     family = read_family(family_file)
     spec = None
-    if model is not None:
-        spec = spec_for_family(family, model=model)
+    if model is not None or design_file is not None:
+        spec = spec_for_family(family, model=model, design=design_file)
     elif family.design_text:
         try:
             spec = spec_for_family(family)
         except InputError:
             spec = None  # check_family notes it and uses the interpolated plant
+    refuse_output_over_input([], design_inputs(spec), folders=[report_dir])
     settings = CheckSettings.from_spec(spec, samples=samples, sampler=sampler, seed=seed,
                                        points_file=points_file,
                                        gamma_opt=False if no_gamma_opt else None,
@@ -122,6 +133,7 @@ def check_command(family_file, samples, sampler, seed, points_file, model, as_js
                               progress=bar)
     finally:
         bar.close()
+    result.notes[:0] = code_notes(family, spec, design_file)
     if report_dir is not None:
         from ..interpolate import ScheduledController
         from ..report import write_report

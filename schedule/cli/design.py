@@ -11,6 +11,7 @@ import numpy as np
 from ..errors import InputError
 from ..family import CHUNK_SIZE
 from ..types import point_text
+from .common import design_inputs
 
 
 def _summary(run, out: str) -> dict:
@@ -98,13 +99,16 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
     interpolant and writes the family file.
     """
     from ..design_file import load_design
-    from ..family import run_design
+    from ..family import partial_path, run_design
+    from ..paths import refuse_output_over_input
     from ..progress import ProgressBar
 
+    refuse_output_over_input([out, partial_path(out)], [spec])
     try:
         design = load_design(spec)
     except FileNotFoundError:
         raise InputError(f"design file {spec} does not exist; check the path") from None
+    refuse_output_over_input([out, partial_path(out)], design_inputs(design))
     bar = ProgressBar(enabled=False if quiet else None, stream=sys.stderr)
     try:
         run = run_design(design, out, jobs=jobs, cluster=cluster, resume=resume, progress=bar,

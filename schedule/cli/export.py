@@ -74,6 +74,22 @@ def _raw_limits(items) -> dict:
     return out
 
 
+def _refuse_overwrite(family_file, formats, out, breakpoints) -> None:
+    """No table may replace the family file or a breakpoints file (see docs/tables.md)."""
+    from ..paths import refuse_output_over_input
+
+    inputs = [family_file]
+    if breakpoints and os.path.isfile(breakpoints):
+        inputs.append(breakpoints)
+    out = Path(out)
+    if len(formats) == 1:
+        files, folders = ([], [out]) if formats[0] == "c" else ([out], [])
+    else:
+        files = [folder_target(out, f) for f in formats if f != "c"]
+        folders = [folder_target(out, "c")] if "c" in formats else []
+    refuse_output_over_input(files, inputs, folders=folders)
+
+
 @click.command("export")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--format", "-f", "formats", multiple=True,
@@ -129,6 +145,7 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                          "table)")
     if "c" in formats:
         check_prefix(prefix)
+    _refuse_overwrite(family_file, formats, out, breakpoints)
     for fmt in ("c", "fmu"):
         if fmt in formats and sample_time == 0:
             raise InputError(f"format {fmt} needs a discrete table; give --sample-time "

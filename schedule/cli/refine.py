@@ -8,6 +8,11 @@ import sys
 import click
 import numpy as np
 
+from ..design_file import MAX_CHECK_SAMPLES
+from ..errors import InputError
+from ..sources import ignored_code_note
+from .common import design_inputs, design_option
+
 
 @click.command("refine")
 @click.argument("family_file", type=click.Path(dir_okay=False))
@@ -15,10 +20,11 @@ import numpy as np
               help="Refined family file to write (atomically).")
 @click.option("--budget", type=click.IntRange(min=0), default=8, show_default=True,
               help="Maximum number of new design points over all rounds.")
-@click.option("--samples", type=click.IntRange(min=0), default=None,
+@click.option("--samples", type=click.IntRange(min=0, max=MAX_CHECK_SAMPLES), default=None,
               help="Random in-between samples per check. Default: design [check].")
 @click.option("--model", default=None,
               help="module:function for the plant at new points (overrides the design).")
+@design_option
 @click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
               help="Worker processes.")
 @click.option("--cluster", default=None, help="dask scheduler address (overrides --jobs).")
@@ -27,19 +33,29 @@ import numpy as np
               help="Let failing leave-one-out predictions fail the check even when the "
                    "in-between points use the true plant (by default they are evidence only).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the final verdict.")
-def refine_command(family_file, out, budget, samples, model, jobs, cluster, strict_loo, as_json,
-                   quiet):
+def refine_command(family_file, out, budget, samples, model, design_file, jobs, cluster,
+                   strict_loo, as_json, quiet):
     """Refine FAMILY_FILE: synthesize new points where frozen-point checks fail, refit, recheck.
 
-    Exit code 0 when the refined family passes every check, 1 when checks still
-    fail (budget spent or nothing left to add), 2 for bad input.
+    The plant at new points comes from --model, or from the model named in the
+    design file given with --design; a model named only inside the family file
+    is not imported (the file is data). Exit code 0 when the refined family
+    passes every check, 1 when checks still fail (budget spent or nothing left
+    to add), 2 for bad input.
     """
     from ..check import CheckSettings, spec_for_family
+    from ..paths import refuse_output_over_input
     from ..refine import refine_family
     from ..store import read_family, write_family
 
+    refuse_output_over_input([out], [family_file, design_file])
     family = read_family(family_file)
-    spec = spec_for_family(family, model=model)
+    spec = spec_for_family(family, model=model, design=design_file)
+    refuse_output_over_input([out], design_inputs(spec))
+    if spec is not None and spec.source.model is None and spec.source.model_file is None:
+        note = ignored_code_note(spec)
+        if note:
+            raise InputError(f"refinement needs the plant model at new points: {note}")
     settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False,
                                        loo_gates=True if strict_loo else None)
     outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster)

@@ -7,20 +7,26 @@ import json
 import click
 
 from ..errors import InputError
+from .common import design_option
 
 
 def _model_entry(family) -> str | None:
-    """``source.nonlinear_model`` of the family's design text (None when absent)."""
+    """The nonlinear model the family's design text names, as written there (None if none)."""
     text = family.design_text or ""
     try:
         import tomllib
     except ImportError:  # pragma: no cover - Python 3.10
         import tomli as tomllib
     try:
-        value = tomllib.loads(text).get("source", {}).get("nonlinear_model")
-    except tomllib.TOMLDecodeError:
+        source = tomllib.loads(text).get("source", {})
+    except (tomllib.TOMLDecodeError, RecursionError):
         return None
-    return value if isinstance(value, str) else None
+    if not isinstance(source, dict):
+        return None
+    for key in ("nonlinear_model", "nonlinear_model_file"):
+        if isinstance(source.get(key), str):
+            return f'source.{key} = "{source[key]}"'
+    return None
 
 
 def _load_model(entry: str):
@@ -30,23 +36,27 @@ def _load_model(entry: str):
     return nonlinear_model_from(obj, f"nonlinear model \"{entry}\"")
 
 
-def _design_model(family):
-    """``(model, label)`` from the family's design (``nonlinear_model`` or
-    ``nonlinear_model_file``, relative to the design's folder); ``(None, None)`` if none."""
-    from ..design_file import parse_design
-    from ..sources import load_nonlinear_model
+def _trusted_model(model_entry: str | None, design_file: str | None, family):
+    """``(model, label)``: the nonlinear model the user named (--model, or the --design
+    file's ``nonlinear_model`` / ``nonlinear_model_file``); never one named only inside the
+    family file, which is data."""
+    if model_entry:
+        return _load_model(model_entry), model_entry
+    if design_file is not None:
+        from ..design_file import load_design
+        from ..sources import load_nonlinear_model
 
-    try:
-        spec = parse_design(family.design_text or "", family.design_base_dir or ".",
-                            name="family design text")
-    except InputError:
-        entry = _model_entry(family)
-        return (_load_model(entry), entry) if entry else (None, None)
-    src = spec.source
-    if src.nonlinear_model is None and src.nonlinear_model_file is None:
-        return None, None
-    label = src.nonlinear_model or f"{src.nonlinear_model_file}:{src.nonlinear_function}"
-    return load_nonlinear_model(spec), label
+        spec = load_design(design_file)
+        src = spec.source
+        label = src.nonlinear_model or f"{src.nonlinear_model_file}:{src.nonlinear_function}"
+        return load_nonlinear_model(spec), label
+    stored = _model_entry(family)
+    if stored:
+        raise InputError(f"the family's stored design names {stored}; it was not imported, "
+                         "because a data file never chooses code to run: pass --design FILE "
+                         "(the design file you trust) or --model module:function")
+    raise InputError("no nonlinear model to simulate: pass --model module:function or "
+                     "--design FILE naming source.nonlinear_model or nonlinear_model_file")
 
 
 #: the bundled crane's large step: trolley 60 m at the longest rope and the heaviest payload
@@ -106,7 +116,9 @@ def _looks_like_crane(model) -> bool:
               help="Discretization when exporting now. Default: design [export], else tustin.")
 @click.option("--model", "model_entry", default=None,
               help="module:name of the nonlinear model (or of a function returning it). "
-                   "Default: the design's source.nonlinear_model or nonlinear_model_file.")
+                   "Default: source.nonlinear_model or nonlinear_model_file of the --design "
+                   "file.")
+@design_option
 @click.option("--substeps", type=click.IntRange(1, 1000), default=4, show_default=True,
               help="Runge-Kutta steps per sample interval.")
 @click.option("--step", "step_text", default=None,
@@ -118,33 +130,35 @@ def _looks_like_crane(model) -> bool:
 @click.option("--no-step", is_flag=True, help="Skip the anti-windup step comparison.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def simulate_command(family_file, out, trajectory, table_file, sample_time, method,
-                     model_entry, substeps, step_text, step_at, no_step, as_json):
+                     model_entry, design_file, substeps, step_text, step_at, no_step,
+                     as_json):
     """Simulate the nonlinear model of FAMILY_FILE under its scheduled discrete controller.
 
     The controller sees each measured output minus its reference (the position error
     for a position) and adds its output to the trim controls; its state is carried
     across schedule changes. Its command is limited as the design's [[limits]] say, and
     a large reference step is run with and without the anti-windup path (step.png).
+    The model comes from --model or from the design file given with --design; one
+    named only inside the family file is not imported.
     """
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
+    from ..paths import input_file, refuse_output_over_input
     from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
     from ..store import read_family
     from .export import export_settings
 
+    refuse_output_over_input([], [family_file, trajectory, table_file, design_file],
+                             folders=[out])
+    for path, what in ((trajectory, "trajectory"), (table_file, "table file")):
+        if path is not None:
+            input_file(path, what)  # a folder, a device or a pipe is named as such
     family = read_family(family_file)
     if table_file is not None and (sample_time is not None or method is not None):
         given = "--sample-time" if sample_time is not None else "--method"
         raise InputError(f"{given} applies when the table is exported now, but --table "
                          f"{table_file} brings its own ({given} would be ignored); drop one")
-    if model_entry:
-        entry, model = model_entry, _load_model(model_entry)
-    else:
-        model, entry = _design_model(family)
-    if model is None:
-        raise InputError("the family's design names no nonlinear model; add nonlinear_model "
-                         "(or nonlinear_model_file) to [source] or pass --model "
-                         "module:function")
+    model, entry = _trusted_model(model_entry, design_file, family)
     if table_file is not None:
         controller = TableController(table_file)
     else:

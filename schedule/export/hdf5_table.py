@@ -15,11 +15,11 @@ import json
 import os
 from pathlib import Path
 
-import h5py
 import numpy as np
 
 from ..atomic import write_file_atomic
 from ..errors import InputError
+from ..h5util import new_h5, open_checked
 from .table import FORMAT_NAME, FORMAT_VERSION, MATRICES, ScheduledTable, table_from_metadata
 
 
@@ -28,7 +28,7 @@ def write_hdf5_table(path: str | os.PathLike, table: ScheduledTable) -> Path:
     meta = table.metadata()
 
     def writer(tmp: str) -> None:
-        with h5py.File(tmp, "w", track_order=True, libver="earliest") as f:
+        with new_h5(tmp) as f:  # built in memory: a full disk cannot crash HDF5
             f.attrs["format"] = FORMAT_NAME
             f.attrs["format_version"] = FORMAT_VERSION
             f.attrs["metadata"] = json.dumps(meta)
@@ -49,7 +49,7 @@ def read_hdf5_table(path: str | os.PathLike) -> ScheduledTable:
     """Read an HDF5 table written by :func:`write_hdf5_table`."""
     path = Path(path)
     try:
-        with h5py.File(path, "r") as f:
+        with open_checked(path, "HDF5 table", "re-export it") as (f, _contents):
             if f.attrs.get("format") != FORMAT_NAME:
                 raise InputError(f"{path} is not a scheduled table (attribute 'format' should "
                                  f"be '{FORMAT_NAME}')")
