@@ -109,7 +109,10 @@ __all__ = [
 PSD_RTOL = 1e-8  # min eig(X) >= -PSD_RTOL * max(1, ||X||) counts as X >= 0
 COUPLING_RTOL = 1e-9  # rho(XY) must be below gamma^2 (1 - COUPLING_RTOL)
 Z_COND_WARN = 1e10  # warn above this condition number of Z
-GAMMA_MAX = 1e12  # doubling stops here: no upper bound means infeasible
+GAMMA_MAX = 1e12  # doubling stops here (scaled gamma): no upper bound means infeasible
+ZERO_INFIMUM = 1e-10  # scaled gamma below which a search with no lower end stops
+NEAR_SINGULAR_RATIO = 1e-5  # D12 / D21 singular value ratio named when the search fails
+DESIGN_MARGIN = 1e-3  # smallest relative step above gamma_opt we advise for a controller
 SHIFT_COND_MAX = 1e10  # condition number of I + Dk D22 above this: loop shift ill-posed
 
 PIECE_KEYS = (
@@ -192,7 +195,14 @@ class Controller:
 
 @dataclass(frozen=True)
 class Normalized:
-    """Plant with D12 = [0; I], D21 = [0, I] (up to rounding) and the transforms."""
+    """The plant in the scaled coordinates of :meth:`GeneralizedPlant.scaling`.
+
+    ``D12 = [0; I]``, ``D21 = [0, I]`` (up to rounding); the states are
+    ``x~ = diag(t)^-1 x``; ``z~ = Sz z``, ``w = Sw' w~``, ``u = Tu u~``, ``y~ = Ty y``;
+    the gamma of this problem is ``gamma / gamma_scale`` (near 1 for a problem whose
+    optimum is of the order of its data). ``d11_bound`` is the Parrott-type bound in
+    these units.
+    """
 
     A: np.ndarray
     B1: np.ndarray
@@ -210,15 +220,22 @@ class Normalized:
     d11_bound: float = float("nan")
     x_side: _Side | None = None
     y_side: _Side | None = None
+    t: np.ndarray | None = None
+    gamma_scale: float = 1.0
+    d12_ratio: float = 1.0
+    d21_ratio: float = 1.0
 
 
 # ============================================================ normalization
 def normalize(plant: GeneralizedPlant) -> Normalized:
-    """Rotate z, w and scale u, y so that ``D12 = [0; I]`` and ``D21 = [0, I]``.
+    """The plant in well-scaled coordinates: ``D12 = [0; I]``, ``D21 = [0, I]``, balanced
+    states and a gamma normalized near 1 (see :class:`schedule.plant.PlantScaling`).
 
-    From the SVDs ``D12 = U S V'`` and ``D21 = U2 [S2 0] V2'``:
-    ``Sz = [U(:, nu:)'; U(:, :nu)']``, ``Tu = V S^-1``,
-    ``Sw = [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2'``.
+    With the SVDs ``D12 = U S V'`` and ``D21 = U2 [S2 0] V2'``:
+    ``Sz = [U(:, nu:)'; U(:, :nu)'] / sigma_z``, ``Tu = sigma_z V S^-1``,
+    ``Sw = sigma_w [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2' / sigma_w`` and the
+    balanced state coordinates ``x = diag(t) x~``; gamma of the scaled problem is
+    ``gamma / gamma_scale``, ``gamma_scale = sigma_z / sigma_w``.
     """
     if isinstance(plant, GeneralizedPlant):  # kept on the plant (by content)
         return plant.memo("normalized", lambda: _normalize(plant))
@@ -226,32 +243,21 @@ def normalize(plant: GeneralizedPlant) -> Normalized:
 
 
 def _normalize(plant: GeneralizedPlant) -> Normalized:
-    nw, nu, nz, ny = plant.nw, plant.nu, plant.nz, plant.ny
-    u, s, vt = np.linalg.svd(plant.D12)
-    if s[-1] <= 1e-12 * max(s[0], 1e-300):
-        raise PlantError(
-            f"D12 ({nz}x{nu}) is rank deficient (smallest singular value {s[-1]:.2e}); "
-            "add a weight on the control effort"
-        )
-    Sz = np.vstack([u[:, nu:].T, u[:, :nu].T])
-    Tu = vt.T / s[None, :]
-    u2, s2, vt2 = np.linalg.svd(plant.D21)
-    if s2[-1] <= 1e-12 * max(s2[0], 1e-300):
-        raise PlantError(
-            f"D21 ({ny}x{nw}) is rank deficient (smallest singular value {s2[-1]:.2e}); "
-            "add a measurement-noise weight"
-        )
-    Sw = np.vstack([vt2[ny:], vt2[:ny]])
-    Ty = u2.T / s2[:, None]
-    return _apply_transforms(plant, Sz, Sw, Tu, Ty)
+    sc = plant.scaling()
+    Sz = sc.Rz / sc.sigma_z
+    Tu = sc.Tu0 * sc.sigma_z
+    Sw = sc.Rw * sc.sigma_w
+    Ty = sc.Ty0 / sc.sigma_w
+    return _apply_transforms(plant, Sz, Sw, Tu, Ty, sc)
 
 
-def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
-    A = plant.A
-    B1 = plant.B1 @ Sw.T
-    B2 = plant.B2 @ Tu
-    C1 = Sz @ plant.C1
-    C2 = Ty @ plant.C2
+def _apply_transforms(plant, Sz, Sw, Tu, Ty, sc) -> Normalized:
+    t = sc.t
+    A = plant.A * (t[None, :] / t[:, None])
+    B1 = (plant.B1 / t[:, None]) @ Sw.T
+    B2 = (plant.B2 / t[:, None]) @ Tu
+    C1 = Sz @ (plant.C1 * t[None, :])
+    C2 = Ty @ (plant.C2 * t[None, :])
     D11 = Sz @ plant.D11 @ Sw.T
     D12 = Sz @ plant.D12 @ Tu
     D21 = Ty @ plant.D21 @ Sw.T
@@ -273,6 +279,10 @@ def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
         d11_bound=_parrott_of(D11, dims),
         x_side=_side(A, B1, B2, C1, D11, D12),
         y_side=_side(A.T, C1.T, C2.T, B1.T, D11.T, D21.T),
+        t=t,
+        gamma_scale=sc.gamma_scale,
+        d12_ratio=sc.d12_ratio,
+        d21_ratio=sc.d21_ratio,
     )
 
 
@@ -287,13 +297,14 @@ def _d11_split(D: np.ndarray, dims):
 
 
 def parrott_bound(plant: GeneralizedPlant | Normalized) -> float:
-    """``max(sigma_max[D1111, D1112], sigma_max[D1111', D1121'])`` of the normalized D11.
+    """``max(sigma_max[D1111, D1112], sigma_max[D1111', D1121'])`` of the normalized D11,
+    in the plant's own units.
 
     Every achievable gamma is strictly larger (Glover and Doyle 1988; Zhou,
     Doyle and Glover 1996, Theorem 17.1). Zero when D11 = 0.
     """
     P = plant if isinstance(plant, Normalized) else normalize(plant)
-    return P.d11_bound
+    return P.d11_bound * P.gamma_scale
 
 
 def _parrott_of(D11: np.ndarray, dims) -> float:
@@ -356,22 +367,25 @@ def _primal(P: Normalized):
     return P.A, P.B1, P.B2, P.C1, P.D11, P.D12
 
 
-def _solve_side(data, gamma: float, name: str, gain: bool = True):
-    """Solve one Riccati side; returns (X, gain or None, reason)."""
+def _solve_side(data, gamma: float, name: str, gain: bool = True, shown: float | None = None):
+    """Solve one Riccati side at the scaled gamma; returns (X, gain or None, reason).
+
+    ``shown`` is gamma in the plant's units, for the messages."""
+    shown = gamma if shown is None else shown
     try:
         Ah, Rh, Qh, Rm, S, B = _x_data(data, gamma)
     except np.linalg.LinAlgError:
         return (
             None,
             None,
-            (f"{name} Riccati data singular at gamma={gamma:.6g} (gamma at the D11 bound)"),
+            (f"{name} Riccati data singular at gamma={shown:.6g} (gamma at the D11 bound)"),
         )
     res = solve_riccati(Ah, Rh, Qh)
     if not res.ok:
         return (
             None,
             None,
-            (f"{name} Riccati has no stabilizing solution at gamma={gamma:.6g} ({res.reason})"),
+            (f"{name} Riccati has no stabilizing solution at gamma={shown:.6g} ({res.reason})"),
         )
     X = res.X
     ev = res.eigenvalues
@@ -381,7 +395,7 @@ def _solve_side(data, gamma: float, name: str, gain: bool = True):
             None,
             None,
             (
-                f"{name} not positive semidefinite at gamma={gamma:.6g} "
+                f"{name} not positive semidefinite at gamma={shown:.6g} "
                 f"(min eigenvalue {m:.3e} relative to ||{name}||)"
             ),
         )
@@ -393,15 +407,21 @@ def feasibility(plant: GeneralizedPlant | Normalized, gamma: float) -> str:
     """Empty string when gamma is achievable, else the one-line reason it is not.
 
     Tests, in order: the Parrott-type D11 bound, the X Riccati (stabilizing,
-    X >= 0), the Y Riccati (stabilizing, Y >= 0) and ``rho(XY) < gamma^2``.
+    X >= 0), the Y Riccati (stabilizing, Y >= 0) and ``rho(XY) < gamma^2``, all in the
+    scaled coordinates of :func:`normalize` (the answer does not depend on units).
     """
     P = plant if isinstance(plant, Normalized) else normalize(plant)
     return _solve_all(P, gamma, gains=False)[-1]
 
 
 def _solve_all(P: Normalized, gamma: float, gains: bool = True):
+    """The existence test at ``gamma`` (in the plant's units) on the scaled plant.
+
+    Returns ``(X, Y, F, L, rho, reason)`` of the scaled problem (``rho`` is rho(XY) there,
+    to be compared with the scaled gamma squared)."""
+    g = gamma / P.gamma_scale
     pb = P.d11_bound
-    if not gamma > pb * (1 + 1e-12):
+    if not g > pb * (1 + 1e-12):
         return (
             None,
             None,
@@ -409,18 +429,18 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
             None,
             np.nan,
             (
-                f"gamma={gamma:.6g} is not above the D11 bound {pb:.6g} "
+                f"gamma={gamma:.6g} is not above the D11 bound {pb * P.gamma_scale:.6g} "
                 "(max sigma_max of [D1111 D1112] and [D1111; D1121])"
             ),
         )
-    X, F, reason = _solve_side(P.x_side, gamma, "X", gains)
+    X, F, reason = _solve_side(P.x_side, g, "X", gains, gamma)
     if reason:
         return None, None, None, None, np.nan, reason
-    Y, Ft, reason = _solve_side(P.y_side, gamma, "Y", gains)
+    Y, Ft, reason = _solve_side(P.y_side, g, "Y", gains, gamma)
     if reason:
         return None, None, None, None, np.nan, reason
     rho = float(np.max(np.abs(np.linalg.eigvals(X @ Y))))
-    if rho >= gamma * gamma * (1 - COUPLING_RTOL):
+    if rho >= g * g * (1 - COUPLING_RTOL):
         return (
             None,
             None,
@@ -428,7 +448,7 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
             None,
             rho,
             (
-                f"coupling condition rho(XY)={rho:.6g} >= gamma^2={gamma * gamma:.6g} "
+                f"coupling condition rho(XY)/gamma^2={rho / (g * g):.6g} >= 1 "
                 f"at gamma={gamma:.6g}"
             ),
         )
@@ -596,7 +616,7 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
     eps = 0.3 * math.log1p(rtol)
     close = 0.4 * math.log1p(rtol)
     for _ in range(400):
-        if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < 1e-10)):
+        if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < ZERO_INFIMUM)):
             break
         up = hi == math.inf
         down = not up and lo * step < hi
@@ -701,10 +721,11 @@ def _bracket(test, start: float, floor: float, what: str) -> tuple[float, float,
 
 
 def _side_ok(P: Normalized, side: str):
+    """Test of one Riccati side at a SCALED gamma."""
     data = P.x_side if side == "X" else P.y_side
 
     def test(g: float) -> bool:
-        return not _solve_side(data, g, side)[2]
+        return not _solve_side(data, g, side, shown=g * P.gamma_scale)[2]
 
     return test
 
@@ -717,7 +738,8 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
     sub-problems, each located by bisection to ``rtol`` and reported at the
     lower end of its bracket, so the value never exceeds the true optimum
     (Doyle, Glover, Khargonekar and Francis 1989, section IV: the X and Y
-    conditions are necessary for the output-feedback problem).
+    conditions are necessary for the output-feedback problem). The bisection runs
+    on the scaled problem of :func:`normalize`.
 
     Raises
     ------
@@ -725,7 +747,7 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
         when a partition or rank condition fails (from normalization).
     """
     P = normalize(plant)
-    pb = parrott_bound(P)
+    pb = P.d11_bound
     bound = pb
     start = max(2 * pb, 1.0)
     for side in ("X", "Y"):
@@ -735,7 +757,7 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
             continue
         lo, hi = _bisect(test, lo, hi, rtol)
         bound = max(bound, lo)
-    return float(bound)
+    return float(bound * P.gamma_scale)
 
 
 def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | None = None) -> float:
@@ -745,20 +767,32 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
     bound) and an upper bound found by repeated multiplication; feasibility at
     gamma is the existence test of
     Glover and Doyle (1988): stabilizing X >= 0 and Y >= 0 and
-    ``rho(XY) < gamma^2`` (plus the Parrott-type D11 bound). The returned
-    gamma is achievable: :func:`central_controller` succeeds at it (though the
-    controller is ill-conditioned so close to the optimum; design a few
-    percent above it). ``hint`` (e.g. the optimal gamma of a neighbouring
-    operating point) starts the bracket there with a 3 % step, which roughly
-    halves the number of Riccati solves; the result does not depend on it
+    ``rho(XY) < gamma^2`` (plus the Parrott-type D11 bound). The search runs on the
+    scaled problem of :func:`normalize` (balanced states, unit-free u and y, gamma
+    near 1), so the result scales exactly with the units of z and w and does not
+    depend on the state coordinates. ``hint`` (e.g. the optimal gamma of a
+    neighbouring operating point) starts the bracket there with a 3 % step, which
+    roughly halves the number of Riccati solves; the result does not depend on it
     beyond ``rtol``.
+
+    The returned gamma is achievable, but it is within ``rtol`` of the optimum where the
+    central controller becomes ill-conditioned (``I - gamma^-2 Y X`` nearly singular):
+    :func:`central_controller` may refuse it or warn. Design at least
+    ``gamma_opt (1 + DESIGN_MARGIN)`` above it (a few percent is the usual practice).
+    When the infimum is zero (nothing limits the performance, e.g. a one-block problem
+    whose P11 can be cancelled), the search stops at ``ZERO_INFIMUM`` times the
+    problem's natural scale (``gamma_scale``) and returns that value: every larger
+    gamma is achievable.
 
     Raises
     ------
     PlantError
-        when :meth:`GeneralizedPlant.check_conditions` fails.
+        when :meth:`GeneralizedPlant.check_conditions` fails, or when D12 or D21 is
+        so close to singular that no gamma can be found (names the singular value
+        ratio and the remedy).
     InfeasibleGammaError
-        when no feasible gamma exists up to 1e12 (names the failing condition).
+        when no feasible gamma exists up to 1e12 times the natural scale (names the
+        failing condition).
     """
     plant.check_conditions()
     if not (0 < rtol < 1):
@@ -767,43 +801,65 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
 
 
 def _optimal_gamma(P: Normalized, rtol: float, hint: float | None = None) -> float:
-    """optimal_gamma on a normalized plant: quick search, full check at the end."""
-    g = _search_one(_Quick(P), P.d11_bound, rtol, hint)
-    if math.isfinite(g) and not _solve_all(P, g, gains=False)[-1]:
-        return g
+    """optimal_gamma on a normalized plant: quick search on the scaled gamma, full check
+    at the end; returns gamma in the plant's units."""
+    gs = P.gamma_scale
+    h = None if hint is None or not math.isfinite(hint) else float(hint) / gs
+    g = _search_one(_Quick(P), P.d11_bound, rtol, h)
+    if math.isfinite(g) and not _solve_all(P, g * gs, gains=False)[-1]:
+        return g * gs
     # the quick test and the full check disagree (or nothing was found): search again
     # with the full check at every step; it decides and explains
 
-    def test(_idx, gs):
-        out = [_solve_all(P, float(gk), gains=False) for gk in gs]
+    def test(_idx, gk):
+        out = [_solve_all(P, float(x) * gs, gains=False) for x in gk]
         ok = np.array([not r[-1] for r in out])
-        phi = np.array([r[-2] / (gk * gk) - 1.0 for r, gk in zip(out, gs, strict=True)])
+        phi = np.array([r[-2] / (x * x) - 1.0 for r, x in zip(out, gk, strict=True)])
         return ok, phi
 
     hints = None if not math.isfinite(g) else np.array([g])
     g = float(_search(test, np.array([P.d11_bound]), rtol, hints)[0])
     if not np.isfinite(g):
-        raise InfeasibleGammaError(
-            f"no feasible gamma up to {GAMMA_MAX:.0e}; at that gamma: "
-            f"{_solve_all(P, GAMMA_MAX)[-1]}"
-        )
-    return g
+        raise _no_gamma_error(P)
+    return g * gs
+
+
+def _no_gamma_error(P: Normalized) -> ScheduleError:
+    """The error for a plant where no gamma up to GAMMA_MAX (scaled) is feasible: a nearly
+    singular D12 or D21 is named with its ratio and remedy, else the failing condition."""
+    for name, ratio, what in (("D12", P.d12_ratio, "control effort"),
+                              ("D21", P.d21_ratio, "measurement noise")):
+        if ratio < NEAR_SINGULAR_RATIO:
+            return PlantError(
+                f"{name} is nearly singular (smallest/largest singular value {ratio:.2e}) and "
+                f"no gamma up to {GAMMA_MAX * P.gamma_scale:.3g} could be found; give every "
+                f"{'control' if name == 'D12' else 'measurement'} a weight of comparable "
+                f"size (a small weight on the missing {what} channel)"
+            )
+    top = GAMMA_MAX * P.gamma_scale
+    return InfeasibleGammaError(
+        f"no feasible gamma up to {top:.3g}; at that gamma: {_solve_all(P, top)[-1]}"
+    )
 
 
 # ====================================================== controller assembly
 def _controller_normalized(P: Normalized, pieces: ObserverPieces, gamma: float):
-    """Central controller for the normalized plant with D22 = 0 (Zhou et al. 1996, Thm 17.1)."""
+    """Central controller of the scaled plant with D22 = 0 (Zhou et al. 1996, Thm 17.1),
+    in the scaled coordinates; ``gamma`` in the plant's units."""
     _, nw, nu, nz, ny = P.dims
-    # pieces are stored in the original signals: map them to the normalized ones
-    F2 = np.linalg.solve(P.Tu, pieces.state_feedback)
-    F1 = P.Sw @ pieces.worst_disturbance
-    L1 = pieces.performance_injection @ P.Sz.T
-    L2 = np.linalg.solve(P.Ty.T, pieces.observer_gain.T).T
-    Z = pieces.Z
+    t = P.t
+    g = gamma / P.gamma_scale
+    # pieces are stored in the plant's own signals and state coordinates: map them to
+    # the scaled ones (x = diag(t) x~)
+    F2 = np.linalg.solve(P.Tu, pieces.state_feedback * t[None, :])
+    F1 = np.linalg.solve(P.Sw.T, pieces.worst_disturbance * t[None, :])
+    L1 = np.linalg.solve(P.Sz.T, (pieces.performance_injection / t[:, None]).T).T
+    L2 = np.linalg.solve(P.Ty.T, (pieces.observer_gain / t[:, None]).T).T
+    Z = pieces.Z / t[:, None] * t[None, :]
     d1111, d1112, d1121, d1122 = _d11_blocks(P)
     r = nz - nu
     if r > 0:
-        M = gamma * gamma * np.eye(r) - d1111 @ d1111.T
+        M = g * g * np.eye(r) - d1111 @ d1111.T
         Dk = -d1121 @ d1111.T @ np.linalg.solve(M, d1112) - d1122
     else:
         Dk = -d1122
@@ -840,9 +896,11 @@ def assemble_controller(
 def _assemble(P: Normalized, D22: np.ndarray, pieces: ObserverPieces, gamma: float):
     """:func:`assemble_controller` on a normalized plant (``D22`` of the original one)."""
     Ak, Bk, Ck, Dk = _controller_normalized(P, pieces, gamma)
-    Tu, Ty = P.Tu, P.Ty
-    Bk = Bk @ Ty
-    Ck = Tu @ Ck
+    Tu, Ty, t = P.Tu, P.Ty, P.t
+    # back to the plant's signals and state coordinates (x = diag(t) x~)
+    Ak = Ak * (t[:, None] / t[None, :])
+    Bk = t[:, None] * (Bk @ Ty)
+    Ck = (Tu @ Ck) / t[None, :]
     Dk = Tu @ Dk @ Ty
     if not np.any(D22):
         return Ak, Bk, Ck, Dk
@@ -868,7 +926,8 @@ def _pieces_at(P: Normalized, gamma: float):
         raise InfeasibleGammaError(f"{reason}; choose a larger gamma (see optimal_gamma)")
     _, nw, nu, nz, ny = P.dims
     n = X.shape[0]
-    Zinv = np.eye(n) - (Y @ X) / (gamma * gamma)
+    g = gamma / P.gamma_scale
+    Zinv = np.eye(n) - (Y @ X) / (g * g)
     zc = float(np.linalg.cond(Zinv))
     if not np.isfinite(zc) or zc > 1e14:
         raise NumericalError(
@@ -883,12 +942,14 @@ def _pieces_at(P: Normalized, gamma: float):
             stacklevel=3,
         )
     Z = np.linalg.inv(Zinv)
+    t = P.t
+    # in the plant's own signals and state coordinates (x = diag(t) x~)
     pieces = ObserverPieces(
-        state_feedback=P.Tu @ F[nw:],
-        worst_disturbance=P.Sw.T @ F[:nw],
-        observer_gain=L[:, nz:] @ P.Ty,
-        performance_injection=L[:, :nz] @ P.Sz,
-        Z=Z,
+        state_feedback=(P.Tu @ F[nw:]) / t[None, :],
+        worst_disturbance=(P.Sw.T @ F[:nw]) / t[None, :],
+        observer_gain=t[:, None] * (L[:, nz:] @ P.Ty),
+        performance_injection=t[:, None] * (L[:, :nz] @ P.Sz),
+        Z=Z * (t[:, None] / t[None, :]),
     )
     return pieces, zc
 
@@ -1128,7 +1189,7 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     close = 0.4 * math.log1p(rtol)
     for _ in range(400):
         done = failed | (np.isfinite(hi) & (hi <= lo * (1 + rtol)))
-        done |= np.isfinite(hi) & (lo == 0) & (hi < 1e-10)
+        done |= np.isfinite(hi) & (lo == 0) & (hi < ZERO_INFIMUM)
         active = np.flatnonzero(~done)
         if active.size == 0:
             break
@@ -1233,11 +1294,12 @@ def _features(Ps: list[Normalized]) -> np.ndarray:
 
 
 def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
-    """Lockstep search in passes: every 64th plant from a cold start, then every 16th,
+    """Lockstep search (on the scaled gammas) in passes: every 64th plant from a cold start, then every 16th,
     every 4th and all others, each warm-started from the optimum of the plant already
     solved that is nearest in plant data (see :func:`_features`)."""
     K = len(Ps)
     test = _Stacked(Ps)
+    scales = np.array([P.gamma_scale for P in Ps])
     out = np.full(K, np.nan)
     done = np.zeros(K, dtype=bool)
     F = _features(Ps) if K > 1 else np.zeros((K, 0))
@@ -1249,7 +1311,9 @@ def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
         solved = np.flatnonzero(done & np.isfinite(out))
         if solved.size:
             d2 = ((F[now, None, :] - F[None, solved, :]) ** 2).sum(axis=2)
-            hints = out[solved[d2.argmin(axis=1)]]
+            near = solved[d2.argmin(axis=1)]
+            # the scaled gammas of two plants differ by the ratio of their gamma scales
+            hints = out[near] * scales[near] / scales[now]
 
         def sub_test(act, g, now=now):
             return test(now[act], g)
@@ -1325,11 +1389,12 @@ def synthesize_many(
                 groups.setdefault(P.dims, []).append(i)
         for idx in groups.values():
             Ps = [normalized[i] for i in idx]
-            pbs = np.array([parrott_bound(P) for P in Ps])
+            pbs = np.array([P.d11_bound for P in Ps])
             found = _passes(Ps, pbs, rtol)
             for i, g in zip(idx, found, strict=True):
                 P = normalized[i]
-                if np.isfinite(g) and not _solve_all(P, float(g), gains=False)[-1]:
+                g = float(g) * P.gamma_scale
+                if np.isfinite(g) and not _solve_all(P, g, gains=False)[-1]:
                     gopt[i] = g
                     continue
                 try:  # disagreement or failure: the scalar path decides and explains
