@@ -419,6 +419,8 @@ def _check_cheapness(p: GeneralizedPlant, sc: PlantScaling) -> None:
     accurate to 1e-5 up to about 700, off by 1e-3 to 2e-2 from about 800 on; the limit
     keeps a factor of 40 above the well-posed designs).
     """
+    if p.n < 2:  # one state: a 2 x 2 Hamiltonian has a single pair, nothing to separate
+        return
     t = sc.t
     A = p.A * (t[None, :] / t[:, None])
     B1 = (p.B1 / t[:, None]) * sc.sigma_w
@@ -436,9 +438,9 @@ def _check_cheapness(p: GeneralizedPlant, sc: PlantScaling) -> None:
             raise PlantError(
                 f"{name} is nearly singular for this plant (smallest/largest singular value "
                 f"{ratio:.2e}; a {what} is weighted {measure:.3g} times more lightly than its "
-                f"effect, limit {CHEAP_LIMIT:g}): the Riccati equations lose accuracy; give "
+                f"effect, limit {CHEAP_LIMIT:g}), so the Riccati equations lose accuracy; give "
                 f"every {what} a weight of comparable effect (a small weight on the missing "
-                f"{effort} channel)"
+                f"{effort} channel, or a larger one where it is too small)"
             )
 
 
