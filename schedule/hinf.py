@@ -85,6 +85,7 @@ from .errors import (
 from .plant import GeneralizedPlant
 from .riccati import (
     RESIDUAL_RTOL,
+    SCALING_EXP,
     _symplectic_scaling,
     axis_distance,
     solve_riccati,
@@ -106,13 +107,14 @@ __all__ = [
     "synthesize_many",
 ]
 
-PSD_RTOL = 1e-8  # min eig(X) >= -PSD_RTOL * max(1, ||X||) counts as X >= 0
+PSD_RTOL = 1e-8  # min eig >= -PSD_RTOL max(1, ||X||) of the balanced X counts as X >= 0
 COUPLING_RTOL = 1e-9  # rho(XY) must be below gamma^2 (1 - COUPLING_RTOL)
 Z_COND_WARN = 1e10  # warn above this condition number of Z
 GAMMA_MAX = 1e12  # doubling stops here (scaled gamma): no upper bound means infeasible
 ZERO_INFIMUM = 1e-10  # scaled gamma below which a search with no lower end stops
 NEAR_SINGULAR_RATIO = 1e-5  # D12 / D21 singular value ratio named when the search fails
 DESIGN_MARGIN = 1e-3  # smallest relative step above gamma_opt we advise for a controller
+RESCALE_FACTOR = 8.0  # the quick test re-balances its Hamiltonian when gamma moves this much
 SHIFT_COND_MAX = 1e10  # condition number of I + Dk D22 above this: loop shift ill-posed
 
 PIECE_KEYS = (
@@ -388,15 +390,15 @@ def _solve_side(data, gamma: float, name: str, gain: bool = True, shown: float |
             (f"{name} Riccati has no stabilizing solution at gamma={shown:.6g} ({res.reason})"),
         )
     X = res.X
-    ev = res.eigenvalues
-    m = float(ev[0] / max(1.0, abs(ev[-1])))
+    ev = res.balanced_eigenvalues  # the sign is decided where X has its natural size 1
+    m = float(ev[0] / max(1.0, abs(ev[0]), abs(ev[-1])))
     if m < -PSD_RTOL:
         return (
             None,
             None,
             (
                 f"{name} not positive semidefinite at gamma={shown:.6g} "
-                f"(min eigenvalue {m:.3e} relative to ||{name}||)"
+                f"(min eigenvalue {m:.3e} relative to max(1, ||{name}||) in balanced coordinates)"
             ),
         )
     F = -np.linalg.solve(Rm, S + B.T @ X) if gain else None
@@ -480,10 +482,12 @@ class _QuickSide:
     (module docstring, step 3) is ``H = H0 + W Rm^-1 [D1.'C1, B']`` where
     ``H0 = [A, 0; -C1'C1, -A']`` and ``W = [-B; C1'D1.]``: one small solve, one
     product and one sum per gamma. A symplectic diagonal scaling (as in
-    :func:`schedule.riccati.solve_riccati`) is chosen at the first gamma and kept.
+    :func:`schedule.riccati.solve_riccati`) is chosen at the first gamma and chosen
+    again when gamma moves by more than a factor ``RESCALE_FACTOR`` from there (the
+    blocks of H grow like gamma^-2 at small gamma).
     """
 
-    __slots__ = ("n", "H0", "W", "SBt", "DtD", "E", "dd", "first")
+    __slots__ = ("n", "H0u", "Wu", "SBtu", "H0", "W", "SBt", "DtD", "E", "dd", "g0")
 
     def __init__(self, side: _Side):
         A = side.A
@@ -494,50 +498,54 @@ class _QuickSide:
         H0[:n, :n] = A
         H0[n:, :n] = -side.CtC
         H0[n:, n:] = -A.T
-        self.H0 = H0
-        self.W = np.vstack([-side.B, side.S.T])
-        self.SBt = side.SBt
+        self.H0u = self.H0 = H0
+        self.Wu = self.W = np.vstack([-side.B, side.S.T])
+        self.SBtu = self.SBt = side.SBt
         self.DtD = side.DtD
         E = np.zeros((m, m))
         E[np.arange(side.nw), np.arange(side.nw)] = 1.0
         self.E = E
         self.dd = None
-        self.first = True
+        self.g0 = None
 
-    def _scale(self, H: np.ndarray) -> np.ndarray:
+    def _scale(self, gamma: float, sol_u: np.ndarray) -> None:
+        """Choose the symplectic scaling for the unscaled H at this gamma."""
         n = self.n
+        H = self.H0u + self.Wu @ sol_u
         d = _symplectic_scaling(H[:n, :n], H[:n, n:], -H[n:, :n])
-        self.first = False
+        self.g0 = gamma
         if d is None:
-            return H
+            self.H0, self.W, self.SBt, self.dd = self.H0u, self.Wu, self.SBtu, None
+            return
         left = np.concatenate([1.0 / d, d])
         right = np.concatenate([d, 1.0 / d])
-        self.H0 = self.H0 * left[:, None] * right[None, :]
-        self.W = self.W * left[:, None]
-        self.SBt = self.SBt * right[None, :]
+        self.H0 = self.H0u * left[:, None] * right[None, :]
+        self.W = self.Wu * left[:, None]
+        self.SBt = self.SBtu * right[None, :]
         self.dd = d[:, None] * d[None, :]
-        return H * left[:, None] * right[None, :]
 
     def solve(self, gamma: float) -> tuple[np.ndarray | None, float, float, float]:
         """(X or None, psd measure, axis measure, largest eigenvalue of X): X >= 0
         stabilizing, else None; see :func:`_side_measure` and
         :func:`schedule.riccati.stable_solution`."""
+        Rm = self.DtD - (gamma * gamma) * self.E
         try:
-            sol = np.linalg.solve(self.DtD - (gamma * gamma) * self.E, self.SBt)
+            if self.g0 is None or not (1.0 / RESCALE_FACTOR < gamma / self.g0 < RESCALE_FACTOR):
+                self._scale(gamma, np.linalg.solve(Rm, self.SBtu))
+            sol = np.linalg.solve(Rm, self.SBt)
         except np.linalg.LinAlgError:
             return None, np.nan, np.nan, np.nan
         H = self.H0 + self.W @ sol
-        if self.first:
-            H = self._scale(H)
         hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
         X, ev, code, _value, _margin, axis = stable_solution(H, self.n, hnorm)
         if code:
             return None, np.nan, (axis if code == 1 and axis > 0 else np.nan), np.nan
+        negative = ev[0] < -PSD_RTOL * max(1.0, abs(ev[0]), abs(ev[-1]))  # balanced X
         if self.dd is not None:
             X = X / self.dd
             ev = np.linalg.eigvalsh(X)
         meas = _side_measure(ev)
-        if ev[0] < -PSD_RTOL * max(1.0, abs(ev[-1])):
+        if negative:
             return None, (meas if meas > 0 else np.nan), np.nan, np.nan
         return X, meas, axis, float(ev[-1])
 
@@ -1040,6 +1048,9 @@ class _StackedSide:
                     ok[i] = False
         H = self.H0[idx] + self.W[idx] @ sol
         H[~ok] = np.eye(2 * n)  # placeholders; already failed
+        d = _symplectic_scaling_many(H, n)  # as schedule.riccati.solve_riccati, per plant
+        left = np.concatenate([1.0 / d, d], axis=1)
+        H = H * left[:, :, None] / left[:, None, :]
         w, V = np.linalg.eig(H)
         order = np.argsort(w.real, axis=1)
         wr = np.take_along_axis(w.real, order, axis=1)
@@ -1079,11 +1090,13 @@ class _StackedSide:
         with np.errstate(invalid="ignore"):
             ok &= np.sqrt((res * res).sum(axis=(1, 2))) / denom <= RESIDUAL_RTOL
         X[~ok] = 0.0
+        evb = np.linalg.eigvalsh(X)  # balanced X: the sign is decided at its natural size 1
+        psd = evb[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(evb).max(axis=1))
+        X = X / (d[:, :, None] * d[:, None, :])  # back from the symplectic scaling
         ev = np.linalg.eigvalsh(X)
         big = np.where(-ev[:, 0] > ev[:, -1], ev[:, 0], ev[:, -1])
         with np.errstate(divide="ignore"):
             meas = np.where(ok & (big != 0), -1.0 / np.where(big != 0, big, 1.0), np.nan)
-        psd = ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
         with np.errstate(invalid="ignore"):
             meas = np.where(psd | (meas > 0), meas, np.nan)
         axis[ok & ~psd] = np.nan
@@ -1141,6 +1154,24 @@ class _Stacked:
         meas[bad_c] = np.nan
         meas[bad_c, M_COUPLING] = mc[fail_c]
         return feas, meas
+
+
+def _symplectic_scaling_many(H: np.ndarray, n: int) -> np.ndarray:
+    """Per plant, the diagonal d of :func:`schedule.riccati._symplectic_scaling` for the
+    stacked Hamiltonians H (K, 2n, 2n) (the same rule, vectorized): (K, n)."""
+    A, R, Q = H[:, :n, :n], H[:, :n, n:], -H[:, n:, :n]
+    qn = np.abs(Q).sum(axis=2)
+    rn = np.abs(R).sum(axis=2)
+    an = np.abs(A).sum(axis=2).max(axis=1, keepdims=True)
+    tiny = 1e-8 * np.maximum(an, np.maximum(qn.max(axis=1, keepdims=True),
+                                            rn.max(axis=1, keepdims=True)))
+    ok = ((qn > tiny) | (rn > tiny)) & (tiny > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m = np.maximum(np.sqrt(rn * qn), an)
+        m = np.where(m > 0, m, np.maximum(rn, qn))
+        d2 = np.where(rn >= qn, rn / m, m / qn)
+        e = np.where(ok, np.clip(np.rint(0.5 * np.log2(d2)), -SCALING_EXP, SCALING_EXP), 0.0)
+    return np.exp2(e)
 
 
 def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
