@@ -82,7 +82,8 @@ from .errors import (
     PlantError,
     ScheduleError,
 )
-from .plant import GeneralizedPlant
+from .norms import closed_loop_many, h_infinity_norms
+from .plant import PLANT_KEYS, GeneralizedPlant
 from .riccati import (
     RESIDUAL_RTOL,
     SCALING_EXP,
@@ -102,6 +103,7 @@ __all__ = [
     "optimal_gamma",
     "central_controller",
     "central_controller_checked",
+    "certify_controller",
     "assemble_controller",
     "feasibility",
     "synthesize_many",
@@ -114,6 +116,7 @@ GAMMA_MAX = 1e12  # doubling stops here (scaled gamma): no upper bound means inf
 ZERO_INFIMUM = 1e-10  # scaled gamma below which a search with no lower end stops
 NEAR_SINGULAR_RATIO = 1e-5  # D12 / D21 singular value ratio named when the search fails
 DESIGN_MARGIN = 1e-3  # smallest relative step above gamma_opt we advise for a controller
+CONTROLLER_RTOL = 1e-6  # a controller's certified closed-loop norm may exceed gamma by this
 RESCALE_FACTOR = 8.0  # the quick test re-balances its Hamiltonian when gamma moves this much
 SHIFT_COND_MAX = 1e10  # condition number of I + Dk D22 above this: loop shift ill-posed
 
@@ -986,10 +989,58 @@ def central_controller(plant: GeneralizedPlant, gamma: float) -> Controller:
 
 
 def _central(plant: GeneralizedPlant, P: Normalized, gamma: float) -> Controller:
-    """The central controller of a plant whose conditions were already checked."""
+    """The central controller of a plant whose conditions were already checked, certified
+    (:func:`certify_controller`)."""
     pieces, zc = _pieces_at(P, gamma)
     A, B, C, D = _assemble(P, plant.D22, pieces, gamma)
-    return Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+    K = Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+    certify_controller(plant, K, gamma)
+    return K
+
+
+def certify_controller(plant: GeneralizedPlant, controller, gamma: float) -> float:
+    """Check that ``controller`` meets ``gamma`` on ``plant``; return the closed-loop norm.
+
+    The closed loop (lower LFT, :func:`schedule.norms.closed_loop_many`) must be stable by
+    the package's predicate and its H-infinity norm, certified by
+    :func:`schedule.norms.h_infinity_norms` (upper bound, relative accuracy 1e-9), at most
+    ``gamma (1 + CONTROLLER_RTOL)``. In exact arithmetic the central controller at any
+    gamma above the optimum meets this with room to spare (Glover and Doyle 1988); in
+    floating point a problem that is ill-conditioned at gamma (close to the optimum, or a
+    large gamma_opt with a strongly unstable A) can give a controller that misses it.
+
+    Raises
+    ------
+    NumericalError
+        naming gamma, the closed-loop norm (or why the loop is not stable or the norm not
+        certified), the conditioning of ``I - gamma^-2 Y X`` and the remedy: design
+        further above the optimal gamma.
+    """
+    P = {k: getattr(plant, k)[None] for k in PLANT_KEYS}
+    Kd = {k: np.asarray(getattr(controller, k), dtype=float)[None] for k in "ABCD"}
+    cert = h_infinity_norms(*closed_loop_many(P, Kd), rtol=1e-9)
+    zc = getattr(controller, "z_condition", float("nan"))
+    cond = f"cond(I - Y X/gamma^2) = {zc:.2g}; " if np.isfinite(zc) else ""
+    remedy = ("design further above the optimal gamma (a few percent is the usual practice) "
+              "or rescale the weights")
+    norm, upper = float(cert.norm[0]), float(cert.upper[0])
+    limit = gamma * (1.0 + CONTROLLER_RTOL)
+    st = cert.stability
+    if st is not None and not st.stable[0]:
+        raise NumericalError(
+            f"the central controller at gamma={gamma:.6g} does not stabilize the loop in "
+            f"floating point ({st.reason(0)}); {cond}the problem is ill-conditioned there: "
+            f"{remedy}"
+        )
+    if not upper <= limit:
+        what = (f"closed-loop norm {norm:.9g} = {norm / gamma:.9f} gamma" if not cert.status[0]
+                else f"closed-loop norm not certified ({cert.status[0]}; attained "
+                     f"{norm / gamma:.9f} gamma)")
+        raise NumericalError(
+            f"the central controller at gamma={gamma:.6g} misses its bound in floating point: "
+            f"{what}, tolerance {CONTROLLER_RTOL:g}; {cond}{remedy}"
+        )
+    return norm
 
 
 def central_controller_checked(plant: GeneralizedPlant, gamma: float) -> Controller:

@@ -77,6 +77,7 @@ WELL_POSED_COND = 1e12
 MODAL_COND = 1e6
 
 _MAX_ITER = 60
+_PROBE = 10.0 ** -np.arange(1.0, 9.0)  # relative offsets probed around an unpaired crossing
 
 
 # --------------------------------------------------------------------------- validation
@@ -740,12 +741,16 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> Norm
        crossings ``omega_1 <= ... <= omega_k``. A crossing is confirmed only by the sign
        of ``sigma_max - gamma`` between neighbouring frequencies: sigma_max is evaluated
        at every midpoint and ``lb`` raised to the largest value above gamma; repeat.
-    5. Before declaring convergence (no midpoint above gamma), two consistency tests:
-       the number of crossings must be even (sigma_max is below gamma at 0 and at
+    5. Before declaring convergence (no midpoint above gamma), three consistency tests:
+       every eigenvalue outside the looser band below must have its mirror image
+       ``-conj(lam)`` within half its distance to the axis (the spectrum of a Hamiltonian matrix is symmetric; in a
+       badly conditioned model rounding breaks the symmetry and the crossings cannot be
+       counted), the number of crossings must be even (sigma_max is below gamma at 0 and at
        infinity), and sigma_max is also evaluated at the eigenvalues in the looser band
        ``NEAR_AXIS_RTOL |lam|`` (crossings that rounding pushed off the axis). An odd
-       count adds test points at 0.5 omega_1 and 2 omega_k; if nothing then exceeds
-       gamma the model stays in doubt.
+       count adds test points on both sides of every crossing (relative offsets 1e-1 to
+       1e-8: the interval above gamma of an unpaired crossing starts or ends there); if
+       nothing then exceeds gamma the model stays in doubt.
 
     Every ``lb`` is an evaluated sigma_max, so ``norm`` is always a true lower bound;
     the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
@@ -906,6 +911,7 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
             lb[i], pk[i] = float(s[j]), float(extra[j])
     converged = lb == 0.0
     doubt = np.zeros(M, dtype=bool)
+    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
     DtD = np.swapaxes(D, 1, 2) @ D
     DtC = np.swapaxes(D, 1, 2) @ C
     Bt = np.swapaxes(B, 1, 2)
@@ -936,15 +942,26 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
         use = np.isfinite(mids)
         # parity: sigma_max - gamma < 0 at 0 and at infinity, so crossings come in pairs
         odd = (count % 2 == 1) & (sig0[act] < gamma)
+        # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
+        # (lam and -conj(lam)); an eigenvalue off the axis whose mirror image is missing by
+        # more than half its distance to the axis cannot be placed on either side
+        dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+        dist[:, np.arange(2 * n), np.arange(2 * n)] = np.inf
+        # (eigenvalues in the looser band are probed by sigma_max below instead)
+        unpaired = ((dist.min(axis=2) > 0.5 * are) & (are > NEAR_AXIS_RTOL * mod)
+                    & (are > AXIS_ATOL * hn[:, None])).any(axis=1)
         near = (are <= NEAR_AXIS_RTOL * mod) & upper_half & ~on
         pts = [np.where(use, mids, np.nan)]
         # extra test frequencies only where the iteration would otherwise stop or the
         # count is inconsistent: looser-band eigenvalues, 0.5 w_1 and 2 w_k
         pts.append(np.where(near, ev.imag, np.nan))
-        first = w[:, :1]
-        last = np.max(np.where(on, ev.imag, -np.inf), axis=1, keepdims=True)
-        pts.append(np.where(odd[:, None] & np.isfinite(first), 0.5 * first, np.nan))
-        pts.append(np.where(odd[:, None] & np.isfinite(last), 2.0 * last, np.nan))
+        if odd.any():
+            # a crossing without its partner: the interval above gamma starts or ends at
+            # it, so probe both sides at relative offsets 1e-1 .. 1e-8
+            rel = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE])
+            probe = np.where(odd[:, None, None] & on[:, :, None],
+                             ev.imag[:, :, None] * rel[None, None, :], np.nan)
+            pts.append(probe.reshape(act.size, -1))
         test = np.concatenate(pts, axis=1)
         rr, cc = np.nonzero(np.isfinite(test))
         sig = np.full(test.shape, -np.inf)
@@ -957,16 +974,23 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
         lb[act[up]] = s[up]
         pk[act[up]] = test[np.flatnonzero(up), j[up]]
         stop = ~up
-        converged[act[stop & ~odd]] = True
-        doubt[act[stop & odd]] = True
+        bad = odd | unpaired
+        converged[act[stop & ~bad]] = True
+        doubt[act[stop & bad]] = True
+        why[act[stop & odd]] = 1
+        why[act[stop & unpaired & ~odd]] = 2
     not_done = ~converged & ~doubt
     for i in np.flatnonzero(not_done):
         status[idx[i]] = (f"level-set iteration did not converge in {_MAX_ITER} steps (lower "
                           f"bound {np.ldexp(lb[i], et[idx[i]]):.6g})")
     for i in np.flatnonzero(doubt):
-        status[idx[i]] = ("an odd number of imaginary-axis crossings of the Hamiltonian at "
-                          f"level {np.ldexp((1 + 2 * rtol) * lb[i], et[idx[i]]):.6g} (a crossing "
-                          "lost to rounding): the upper bound is not certified")
+        level = np.ldexp((1 + 2 * rtol) * lb[i], et[idx[i]])
+        status[idx[i]] = (
+            f"an odd number of imaginary-axis crossings of the Hamiltonian at level {level:.6g} "
+            "(a crossing lost to rounding): the upper bound is not certified" if why[i] == 1
+            else f"the Hamiltonian at level {level:.6g} has eigenvalues without their mirror "
+                 "image -conj(lambda) (rounding in an ill-conditioned model): its crossings "
+                 "cannot be counted, the upper bound is not certified")
     cert_ok = converged
     sub = _finish(lb, pk, ~cert_ok, [status[i] for i in idx], et[idx], ea[idx], rtol, at_inf)
     norm[idx], peak[idx], upper[idx] = sub.norm, sub.peak, sub.upper
