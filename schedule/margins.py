@@ -436,11 +436,36 @@ def mu_upper_bound(M: np.ndarray, refine: bool = True, sweeps: int = 3) -> np.nd
     return _mu_bound(np.asarray(M, dtype=complex), refine)[0]
 
 
-def _mu_bound(M: np.ndarray, refine: bool):
-    """(bound, log d) of :func:`mu_upper_bound`."""
+def _mu_two(M: np.ndarray):
+    """Exact ``inf_D sigma_max(D M D^-1)`` for 2 x 2 M (equal to mu, Doyle 1982).
+
+    With ``D M D^-1 = [[a, b t], [c / t, d]]``, ``sigma_max^2 = (F + sqrt(F^2 - 4 |det|^2)) / 2``
+    where ``F = ||D M D^-1||_F^2`` and ``det = ad - bc`` does not depend on t; sigma_max grows
+    with F, and ``F = |a|^2 + |d|^2 + |b|^2 t^2 + |c|^2 / t^2`` is smallest at
+    ``t^2 = |c| / |b|``: ``F = |a|^2 + |d|^2 + 2 |b| |c|`` (derived here).
+    """
+    a, b = M[..., 0, 0], M[..., 0, 1]
+    c, d = M[..., 1, 0], M[..., 1, 1]
+    ab, ac = np.abs(b), np.abs(c)
+    F = np.abs(a) ** 2 + np.abs(d) ** 2 + 2.0 * ab * ac
+    det2 = np.abs(a * d - b * c) ** 2
+    val = np.sqrt(np.maximum(0.5 * (F + np.sqrt(np.maximum(F * F - 4.0 * det2, 0.0))), 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        x = np.where((ab > 0) & (ac > 0), 0.5 * (np.log(ac) - np.log(np.where(ab > 0, ab, 1.0))),
+                     0.0)
+    return val, np.stack([np.zeros_like(x), x], axis=-1)
+
+
+def _mu_bound(M: np.ndarray, refine: bool, start: np.ndarray | None = None):
+    """(bound, log d) of :func:`mu_upper_bound`; ``start`` optionally replaces Osborne's
+    first D (a warm start from a neighbouring frequency)."""
     m = M.shape[-1]
     if m == 1:
         return np.abs(M[..., 0, 0]), np.zeros(M.shape[:-1])
+    if m == 2:
+        return _mu_two(M)
+    if start is not None:
+        return _optimal_scaling(M, start, _scaled_sigma(M, start))
     logd = _osborne(M)
     best = _scaled_sigma(M, logd)
     plain = sigma_max(M)
@@ -585,26 +610,28 @@ def _worst_mu(R: FrequencyResponder, w: np.ndarray, H: np.ndarray):
     """
     N = R.N
     rows = np.arange(N)
-    vals, _ = _mu_bound(H, refine=False)
+    vals, logd = _mu_bound(H, refine=False)
     done = np.zeros(vals.shape, dtype=bool)
+    done[:] = H.shape[-1] == 2  # the two-loop bound is exact already
     for _ in range(vals.shape[1]):
         k = np.argmax(vals, axis=1)
         todo = ~done[rows, k]
         if not todo.any():
             break
         r = rows[todo]
-        vals[r, k[todo]] = _mu_bound(H[r, k[todo]], refine=True)[0]
+        vals[r, k[todo]], logd[r, k[todo]] = _mu_bound(H[r, k[todo]], refine=True)
         done[r, k[todo]] = True
     k = np.argmax(vals, axis=1)
     best = vals[rows, k]
     wbest = w[rows, k]
+    start = logd[rows, k]
     below = np.where(w < wbest[:, None], w, -np.inf).max(axis=1)
     above = np.where(w > wbest[:, None], w, np.inf).min(axis=1)
     a = np.where(np.isfinite(below), below, wbest)
     b = np.where(np.isfinite(above), above, wbest)
 
     def fun(ww):
-        return _mu_bound(R(ww[:, None])[:, 0], refine=True)[0]
+        return _mu_bound(R(ww[:, None])[:, 0], refine=True, start=start)[0]
 
     cand, wcand = _golden(fun, a, b, FREQUENCY_ITERATIONS)
     better = cand > best
