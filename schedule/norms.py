@@ -68,6 +68,13 @@ AXIS_ATOL = 1e-9
 #: Looser band searched for crossings that rounding pushed off the axis before the
 #: iteration is declared converged (each candidate is only a test frequency).
 NEAR_AXIS_RTOL = 1e-3
+#: An eigenvalue of a Hamiltonian whose mirror image -conj(lam) is missing by more than
+#: this fraction of |lam| (and by more than half its distance to the axis) shows that
+#: rounding has destroyed the spectrum's symmetry: the crossings cannot be counted.
+UNPAIRED_RTOL = 0.1
+#: Hamiltonian eigenvalues closer than ORIGIN_RTOL ||H||_1 to the origin are not counted
+#: as crossings (a double eigenvalue at 0 splits by about sqrt(eps) ||H|| under rounding).
+ORIGIN_RTOL = 1e-6
 
 #: Largest condition number of ``I - D22 DK`` accepted as a well-posed loop.
 WELL_POSED_COND = 1e12
@@ -741,16 +748,19 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> Norm
        crossings ``omega_1 <= ... <= omega_k``. A crossing is confirmed only by the sign
        of ``sigma_max - gamma`` between neighbouring frequencies: sigma_max is evaluated
        at every midpoint and ``lb`` raised to the largest value above gamma; repeat.
-    5. Before declaring convergence (no midpoint above gamma), three consistency tests:
-       every eigenvalue outside the looser band below must have its mirror image
-       ``-conj(lam)`` within half its distance to the axis (the spectrum of a Hamiltonian matrix is symmetric; in a
-       badly conditioned model rounding breaks the symmetry and the crossings cannot be
-       counted), the number of crossings must be even (sigma_max is below gamma at 0 and at
-       infinity), and sigma_max is also evaluated at the eigenvalues in the looser band
-       ``NEAR_AXIS_RTOL |lam|`` (crossings that rounding pushed off the axis). An odd
-       count adds test points on both sides of every crossing (relative offsets 1e-1 to
-       1e-8: the interval above gamma of an unpaired crossing starts or ends there); if
-       nothing then exceeds gamma the model stays in doubt.
+    5. Before declaring convergence (no midpoint above gamma), three consistency tests.
+       The spectrum must be symmetric about the axis (``lam`` and ``-conj(lam)``): an
+       eigenvalue whose mirror image is missing by more than half its distance to the
+       axis and by more than ``UNPAIRED_RTOL |lam|`` shows a spectrum destroyed by
+       rounding (a badly conditioned model); a smaller asymmetry only leaves the side of
+       that eigenvalue open, and it is probed as below. sigma_max is evaluated at the
+       eigenvalues in the looser band ``NEAR_AXIS_RTOL |lam|`` (crossings that rounding
+       pushed off the axis). The number of crossings must be even (sigma_max is below
+       gamma at 0 and at infinity); an odd count adds test points on both sides of every
+       crossing and of every eigenvalue whose side is open (relative offsets 1e-1 to
+       1e-8 and half the frequency: the interval above gamma of an unpaired crossing
+       starts or ends there, possibly at 0). If nothing then exceeds gamma while the
+       count is odd or the spectrum unusable, the model stays in doubt.
 
     Every ``lb`` is an evaluated sigma_max, so ``norm`` is always a true lower bound;
     the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
@@ -936,7 +946,11 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
         upper_half = ev.imag > 0
         on = (are <= AXIS_RTOL * mod + AXIS_ATOL * hn[:, None]) & upper_half
         w = np.sort(np.where(on, ev.imag, np.inf), axis=1)
-        count = on.sum(axis=1)
+        # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
+        # (a peak at w = 0 meeting the level) splits there by rounding along either axis;
+        # the region is decided by sigma_max(0), so they are left out of the counts
+        origin = mod <= ORIGIN_RTOL * hn[:, None]
+        count = (on & ~origin).sum(axis=1)
         # midpoints between neighbouring crossings (sign change of sigma_max - gamma)
         mids = 0.5 * (w[:, :-1] + w[:, 1:])
         use = np.isfinite(mids)
@@ -947,20 +961,25 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
         # more than half its distance to the axis cannot be placed on either side
         dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
         dist[:, np.arange(2 * n), np.arange(2 * n)] = np.inf
-        # (eigenvalues in the looser band are probed by sigma_max below instead)
-        unpaired = ((dist.min(axis=2) > 0.5 * are) & (are > NEAR_AXIS_RTOL * mod)
-                    & (are > AXIS_ATOL * hn[:, None])).any(axis=1)
-        near = (are <= NEAR_AXIS_RTOL * mod) & upper_half & ~on
+        pair_error = dist.min(axis=2)
+        sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn[:, None]) | origin
+        # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
+        unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
+        # eigenvalues in the looser band, or whose side of the axis rounding leaves open,
+        # are probed by sigma_max at their frequency
+        near = ((are <= NEAR_AXIS_RTOL * mod) | ~sided) & upper_half & ~on
         pts = [np.where(use, mids, np.nan)]
-        # extra test frequencies only where the iteration would otherwise stop or the
-        # count is inconsistent: looser-band eigenvalues, 0.5 w_1 and 2 w_k
+        # extra test frequencies: the looser-band eigenvalues and those whose side rounding
+        # leaves open, with the midpoint towards 0 (sigma_max - gamma < 0 there)
         pts.append(np.where(near, ev.imag, np.nan))
-        if odd.any():
-            # a crossing without its partner: the interval above gamma starts or ends at
-            # it, so probe both sides at relative offsets 1e-1 .. 1e-8
-            rel = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE])
-            probe = np.where(odd[:, None, None] & on[:, :, None],
-                             ev.imag[:, :, None] * rel[None, None, :], np.nan)
+        pts.append(np.where(near, 0.5 * ev.imag, np.nan))
+        # a crossing without its partner (odd count), or an eigenvalue whose side is open:
+        # the interval above gamma starts or ends there, so probe both sides at relative
+        # offsets 1e-1 .. 1e-8
+        lone = (odd[:, None] & on) | (~sided & upper_half & ~on)
+        if lone.any():
+            rel = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE, [0.5]])
+            probe = np.where(lone[:, :, None], ev.imag[:, :, None] * rel[None, None, :], np.nan)
             pts.append(probe.reshape(act.size, -1))
         test = np.concatenate(pts, axis=1)
         rr, cc = np.nonzero(np.isfinite(test))
