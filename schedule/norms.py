@@ -85,6 +85,7 @@ MODAL_COND = 1e6
 
 _MAX_ITER = 60
 _PROBE = 10.0 ** -np.arange(1.0, 9.0)  # relative offsets probed around an unpaired crossing
+_PROBE_REL = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE, [0.5]])
 
 
 # --------------------------------------------------------------------------- validation
@@ -218,10 +219,13 @@ def stability_from_eigenvalues(A: np.ndarray, lam: np.ndarray) -> Stability:
         nan = np.full(N, np.nan)
         return Stability(np.full(N, -np.inf), np.ones(N, bool), nan.astype(complex), nan, lam)
     scale = np.abs(A).sum(axis=1).max(axis=1)
-    allow = _allowance(lam, scale)
+    mod = np.abs(lam)
+    allow = STABILITY_RTOL * mod + (STABILITY_EPS * _EPS) * scale[:, None]
     slack = -lam.real - allow  # > 0 where the eigenvalue passes
-    relative_ok = (-lam.real > STABILITY_RTOL * np.abs(lam)).all(axis=1)
     stable = (slack > 0).all(axis=1)
+    relative_ok = stable.copy()
+    if not stable.all():
+        relative_ok = (-lam.real > STABILITY_RTOL * mod).all(axis=1)
     # rounding allowance too large on the given coordinates: try the balanced norm
     for i in np.flatnonzero(relative_ok & ~stable):
         _, (d, _p) = scipy.linalg.matrix_balance(A[i], permute=False, separate=True)
@@ -740,9 +744,10 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> Norm
        so that its entries are at most 1; the norm and the frequency are scaled back.
     2. Stability by the package's predicate (:func:`stability`); unstable models get
        ``inf``.
-    3. Lower bound ``lb``: sigma_max at 0, at infinity (D) and at the best three of the
-       pole moduli and pole imaginary parts (screened in modal form, then evaluated by
-       direct solves).
+    3. Lower bound ``lb``: sigma_max at 0, at infinity (D), at the imaginary parts of the
+       complex poles and the moduli of the real poles (Bruinsma and Steinbuch 1990; above
+       order 16 the best three after a screening in modal form), evaluated by direct
+       solves.
     4. ``gamma = (1 + 2 rtol) lb``. The eigenvalues of ``H(gamma)`` within
        ``AXIS_RTOL |lam| + AXIS_ATOL ||H||_1`` of the imaginary axis are candidate
        crossings ``omega_1 <= ... <= omega_k``. A crossing is confirmed only by the sign
@@ -829,17 +834,38 @@ def _exponents(M: np.ndarray) -> np.ndarray:
     return np.frexp(np.abs(M).reshape(N, -1).max(axis=1))[1]
 
 
-def _sigma_direct(A, B, C, D, w):
-    """sigma_max(G_i(j w_i)) by direct stacked complex solves (models and w of equal
-    length)."""
-    if w.size == 0:
-        return np.zeros(0)
-    n = A.shape[1]
-    M = 1j * w[:, None, None] * np.eye(n) - A
-    with np.errstate(all="ignore"):
-        G = C @ np.linalg.solve(M, B.astype(complex)) + D
-    s = sigma_max(G)
-    return np.where(np.isfinite(s), s, np.inf)
+_SAFE = 2.0 ** 100  # blocks with entries within [2^-100, 2^100] need no scaling
+SCREEN_ORDER = 16  # above this order the pole candidates are screened in modal form
+
+
+def _scale_models(A, B, C, D):
+    """Exact power-of-2 scaling so that no entry exceeds 1 (see :func:`h_infinity_norms`,
+    step 1): ``(A, B, C, D, et, ea)``, the norm scales back by ``2^et`` and the frequency
+    by ``2^ea`` (``et``, ``ea`` None when the entries are all moderate and nothing was
+    scaled)."""
+    N, n = A.shape[0], A.shape[1]
+    blocks = (A, B, C, D) if n else (D,)
+    if N == 1:  # the common single-model call: scalar tests
+        tops = [float(np.abs(M).max()) if M.size else 0.0 for M in blocks]
+        if max(tops) <= _SAFE and all(t == 0.0 or t >= 1.0 / _SAFE for t in tops):
+            return A, B, C, D, None, None
+    maxima = [np.abs(M).reshape(N, -1).max(axis=1) if M.size else np.zeros(N)
+              for M in (A, B, C, D)]
+    big = np.max(maxima, axis=0)
+    small = np.min([np.where(x > 0, x, _SAFE) for x in maxima], axis=0)
+    if not (big > _SAFE).any() and not (small < 1.0 / _SAFE).any():
+        return A, B, C, D, None, None
+    zero = np.zeros(N, dtype=int)
+    ea = np.frexp(maxima[0])[1] if n else zero
+    A = np.ldexp(A, -ea[:, None, None])
+    B = np.ldexp(B, -ea[:, None, None])
+    eb = _exponents(B) if n else zero
+    ec = np.frexp(maxima[2])[1] if n else zero
+    et = np.maximum(eb + ec, np.frexp(maxima[3])[1])
+    B = np.ldexp(B, -eb[:, None, None])
+    C = np.ldexp(C, -(et - eb)[:, None, None])
+    D = np.ldexp(D, -et[:, None, None])
+    return A, B, C, D, et, ea
 
 
 def _certify(A, B, C, D, rtol) -> NormCertificate:
@@ -849,177 +875,189 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
     norm = np.zeros(N)
     peak = np.zeros(N)
     status = [""] * N
-    if N == 0:
+    if N == 0 or p == 0 or m == 0:
         return NormCertificate(norm, peak, norm.copy(), status)
-    if p == 0 or m == 0:
-        return NormCertificate(norm, peak, norm.copy(), status)
-    # 1. exact power-of-2 scaling: time (A, B), then inputs and outputs so that every
-    # entry is at most 1 in magnitude (nothing overflows; tiny entries may underflow,
-    # negligible against the others)
-    ea = _exponents(A) if n else np.zeros(N, dtype=int)
-    A = np.ldexp(A, -ea[:, None, None])
-    B = np.ldexp(B, -ea[:, None, None])
-    eb = _exponents(B) if n else np.zeros(N, dtype=int)
-    ec = _exponents(C) if n else np.zeros(N, dtype=int)
-    ed = _exponents(D)
-    et = np.maximum(eb + ec, ed)
-    B = np.ldexp(B, -eb[:, None, None])
-    C = np.ldexp(C, -(et - eb)[:, None, None])
-    D = np.ldexp(D, -et[:, None, None])
+    # 1. exact power-of-2 scaling where entries are extreme
+    A, B, C, D, et, ea = _scale_models(A, B, C, D)
     sd = sigma_max(D)
     if n == 0:
-        lb, pk = sd, np.zeros(N)
-        return _finish(lb, pk, np.zeros(N, bool), status, et, ea, rtol, np.zeros(N, bool))
-    # 2. stability
-    lam, V = np.linalg.eig(A)
+        return _finish(sd, np.zeros(N), np.zeros(N, bool), status, et, ea, rtol)
+    # 2. stability (3. needs the eigenvectors only to screen many candidates)
+    screen = n > SCREEN_ORDER
+    if screen:
+        lam, V = np.linalg.eig(A)
+    else:
+        lam = np.linalg.eigvals(A)
     st = stability_from_eigenvalues(A, lam)
-    bad = ~st.stable
-    for i in np.flatnonzero(bad):
-        status[i] = st.reason(i, "model")
-    norm[bad], peak[bad] = np.inf, np.nan
-    idx = np.flatnonzero(~bad)
+    good = st.stable
     upper = np.full(N, np.inf)
-    if idx.size == 0:
-        return NormCertificate(norm, peak, upper, status, st)
-    A, B, C, D, lam, V, sd = A[idx], B[idx], C[idx], D[idx], lam[idx], V[idx], sd[idx]
-    M = idx.size
+    if not good.all():
+        for i in np.flatnonzero(~good):
+            status[i] = st.reason(i, "model")
+        norm[~good], peak[~good] = np.inf, np.nan
+        if not good.any():
+            return NormCertificate(norm, peak, upper, status, st)
+        idx = np.flatnonzero(good)
+        A, B, C, D, lam, sd = A[idx], B[idx], C[idx], D[idx], lam[idx], sd[idx]
+        if screen:
+            V = V[idx]
+    else:
+        idx = None
+    M = A.shape[0]
     rows = np.arange(M)
-    # 3. lower bound: 0 always, the best three of |lam| and |Im lam| (modal screening)
-    cand = np.concatenate([np.abs(lam), np.abs(lam.imag)], axis=1)
-    with np.errstate(all="ignore"):
-        try:
-            VB = np.linalg.solve(V, B.astype(complex))
-            r = 1.0 / (1j * cand[:, :, None] - lam[:, None, :])  # (M, k, n)
-            Gm = ((C @ V)[:, None, :, :] * r[:, :, None, :]) @ VB[:, None] + D[:, None]
-            approx = sigma_max(Gm)
-            approx = np.where(np.isfinite(approx), approx, 0.0)
-            top = np.argsort(approx, axis=1)[:, -3:]
-            cand = np.take_along_axis(cand, top, axis=1)
-        except np.linalg.LinAlgError:
-            pass
+    Bc = B.astype(complex)
+    eye = np.eye(n)
+
+    def sigma_at(sel, w):
+        """sigma_max(G_sel(j w)) by direct stacked complex solves (a true value; nan, from
+        an overflow, counts as inf)."""
+        G = C[sel] @ np.linalg.solve(1j * w[:, None, None] * eye - A[sel], Bc[sel]) + D[sel]
+        s = sigma_max(G)
+        s[s != s] = np.inf
+        return s
+
+    # 3. lower bound: sigma_max at 0, at |Im lam| of the complex poles and |lam| of the
+    # real ones (the best three of them after a modal screening for large orders), and
+    # at infinity (D); each conjugate pair is taken once
+    im = lam.imag
+    cand = np.where(im > 0, im, np.where(im == 0, np.abs(lam.real), 0.0))
+    if screen:
+        with np.errstate(all="ignore"):
+            try:
+                VB = np.linalg.solve(V, Bc)
+                r = 1.0 / (1j * cand[:, :, None] - lam[:, None, :])  # (M, k, n)
+                Gm = ((C @ V)[:, None, :, :] * r[:, :, None, :]) @ VB[:, None] + D[:, None]
+                approx = sigma_max(Gm)
+                approx = np.where(np.isfinite(approx), approx, 0.0)
+                cand = np.take_along_axis(cand, np.argsort(approx, axis=1)[:, -3:], axis=1)
+            except np.linalg.LinAlgError:
+                pass
     cand = np.concatenate([np.zeros((M, 1)), cand], axis=1)
     k = cand.shape[1]
-    sel = np.repeat(rows, k)
-    sig = _sigma_direct(A[sel], B[sel], C[sel], D[sel], cand.ravel()).reshape(M, k)
-    sig0 = sig[:, 0].copy()  # sigma_max at 0
-    best = np.argmax(sig, axis=1)
+    sig = sigma_at(np.repeat(rows, k), cand.ravel()).reshape(M, k)
+    sig0 = sig[:, 0]  # sigma_max at 0
+    best = sig.argmax(axis=1)
     lb = sig[rows, best]
     pk = cand[rows, best]
     at_inf = sd >= lb
     lb = np.where(at_inf, sd, lb)
     pk = np.where(at_inf, np.inf, pk)
     zero = lb == 0.0
-    if zero.any():  # zero at 2n + 2 distinct finite points besides 0: the zero system
-        for i in np.flatnonzero(zero):
-            amax = float(np.abs(lam[i]).max())
-            extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * (amax if amax > 0 else 1.0)
-            s = _sigma_direct(np.broadcast_to(A[i], (extra.size, n, n)),
-                              np.broadcast_to(B[i], (extra.size,) + B.shape[1:]),
-                              np.broadcast_to(C[i], (extra.size,) + C.shape[1:]),
-                              np.broadcast_to(D[i], (extra.size,) + D.shape[1:]), extra)
-            j = int(np.argmax(s))
-            lb[i], pk[i] = float(s[j]), float(extra[j])
+    for i in np.flatnonzero(zero):  # zero at 2n + 2 distinct points besides 0: G = 0
+        amax = float(np.abs(lam[i]).max())
+        extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * (amax if amax > 0 else 1.0)
+        s = sigma_at(np.full(extra.size, i), extra)
+        j = int(np.argmax(s))
+        lb[i], pk[i] = float(s[j]), float(extra[j])
     converged = lb == 0.0
     doubt = np.zeros(M, dtype=bool)
     why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
-    DtD = np.swapaxes(D, 1, 2) @ D
-    DtC = np.swapaxes(D, 1, 2) @ C
-    Bt = np.swapaxes(B, 1, 2)
-    CtC = np.swapaxes(C, 1, 2) @ C
+    Dt = D.transpose(0, 2, 1)
+    DtD = Dt @ D
+    DtC_Bt = np.concatenate([Dt @ C, B.transpose(0, 2, 1)], axis=2)
+    CtC = C.transpose(0, 2, 1) @ C
     eye_m = np.eye(m)
+    diag = np.arange(2 * n)
+    act = np.flatnonzero(~converged)
     for _ in range(_MAX_ITER):
-        act = np.flatnonzero(~converged & ~doubt)
         if act.size == 0:
             break
+        K = act.size
         gamma = (1.0 + 2.0 * rtol) * lb[act]
-        R = gamma[:, None, None] ** 2 * eye_m - DtD[act]
-        X = np.linalg.solve(R, np.concatenate([DtC[act], Bt[act]], axis=2))
+        X = np.linalg.solve(gamma[:, None, None] ** 2 * eye_m - DtD[act], DtC_Bt[act])
+        H = np.empty((K, 2 * n, 2 * n))
         Ah = A[act] + B[act] @ X[:, :, :n]
-        G = B[act] @ X[:, :, n:]
-        Q = CtC[act] + np.swapaxes(DtC[act], 1, 2) @ X[:, :, :n]
-        H = np.concatenate([np.concatenate([Ah, G], axis=2),
-                            np.concatenate([-Q, -np.swapaxes(Ah, 1, 2)], axis=2)], axis=1)
+        H[:, :n, :n] = Ah
+        H[:, :n, n:] = B[act] @ X[:, :, n:]
+        H[:, n:, :n] = -(CtC[act] + DtC_Bt[act, :, :n].transpose(0, 2, 1) @ X[:, :, :n])
+        H[:, n:, n:] = -Ah.transpose(0, 2, 1)
         ev = np.linalg.eigvals(H)
-        hn = np.abs(H).sum(axis=1).max(axis=1)
+        hn = np.abs(H).sum(axis=1).max(axis=1)[:, None]
         mod = np.abs(ev)
         are = np.abs(ev.real)
         upper_half = ev.imag > 0
-        on = (are <= AXIS_RTOL * mod + AXIS_ATOL * hn[:, None]) & upper_half
-        w = np.sort(np.where(on, ev.imag, np.inf), axis=1)
+        on = (are <= AXIS_RTOL * mod + AXIS_ATOL * hn) & upper_half
         # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
         # (a peak at w = 0 meeting the level) splits there by rounding along either axis;
         # the region is decided by sigma_max(0), so they are left out of the counts
-        origin = mod <= ORIGIN_RTOL * hn[:, None]
-        count = (on & ~origin).sum(axis=1)
-        # midpoints between neighbouring crossings (sign change of sigma_max - gamma)
-        mids = 0.5 * (w[:, :-1] + w[:, 1:])
-        use = np.isfinite(mids)
+        origin = mod <= ORIGIN_RTOL * hn
         # parity: sigma_max - gamma < 0 at 0 and at infinity, so crossings come in pairs
-        odd = (count % 2 == 1) & (sig0[act] < gamma)
+        odd = ((on & ~origin).sum(axis=1) % 2 == 1) & (sig0[act] < gamma)
         # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
-        # (lam and -conj(lam)); an eigenvalue off the axis whose mirror image is missing by
-        # more than half its distance to the axis cannot be placed on either side
+        # (lam and -conj(lam)): an eigenvalue whose mirror image is missing by more than
+        # half its distance to the axis cannot be placed on either side
         dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-        dist[:, np.arange(2 * n), np.arange(2 * n)] = np.inf
+        dist[:, diag, diag] = np.inf
         pair_error = dist.min(axis=2)
-        sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn[:, None]) | origin
+        sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn) | origin
         # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
         unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
-        # eigenvalues in the looser band, or whose side of the axis rounding leaves open,
-        # are probed by sigma_max at their frequency
+        # test frequencies: midpoints between neighbouring crossings (sign change of
+        # sigma_max - gamma); the looser-band eigenvalues and those whose side rounding
+        # leaves open, with the midpoint towards 0
+        w = np.sort(np.where(on, ev.imag, np.inf), axis=1)
         near = ((are <= NEAR_AXIS_RTOL * mod) | ~sided) & upper_half & ~on
-        pts = [np.where(use, mids, np.nan)]
-        # extra test frequencies: the looser-band eigenvalues and those whose side rounding
-        # leaves open, with the midpoint towards 0 (sigma_max - gamma < 0 there)
-        pts.append(np.where(near, ev.imag, np.nan))
-        pts.append(np.where(near, 0.5 * ev.imag, np.nan))
+        pts = [0.5 * (w[:, :-1] + w[:, 1:]), np.where(near, ev.imag, np.inf),
+               np.where(near, 0.5 * ev.imag, np.inf)]
         # a crossing without its partner (odd count), or an eigenvalue whose side is open:
-        # the interval above gamma starts or ends there, so probe both sides at relative
-        # offsets 1e-1 .. 1e-8
+        # the interval above gamma starts or ends there, so probe both of its sides
         lone = (odd[:, None] & on) | (~sided & upper_half & ~on)
         if lone.any():
-            rel = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE, [0.5]])
-            probe = np.where(lone[:, :, None], ev.imag[:, :, None] * rel[None, None, :], np.nan)
-            pts.append(probe.reshape(act.size, -1))
+            probe = np.where(lone[:, :, None], ev.imag[:, :, None] * _PROBE_REL, np.inf)
+            pts.append(probe.reshape(K, -1))
         test = np.concatenate(pts, axis=1)
         rr, cc = np.nonzero(np.isfinite(test))
         sig = np.full(test.shape, -np.inf)
         if rr.size:
-            sig[rr, cc] = _sigma_direct(A[act[rr]], B[act[rr]], C[act[rr]], D[act[rr]],
-                                        test[rr, cc])
-        j = np.argmax(sig, axis=1)
-        s = sig[np.arange(act.size), j]
+            sig[rr, cc] = sigma_at(act[rr], test[rr, cc])
+        j = sig.argmax(axis=1)
+        s = sig[np.arange(K), j]
         up = s > gamma
         lb[act[up]] = s[up]
-        pk[act[up]] = test[np.flatnonzero(up), j[up]]
+        pk[act[up]] = test[up, j[up]]
         stop = ~up
         bad = odd | unpaired
         converged[act[stop & ~bad]] = True
         doubt[act[stop & bad]] = True
         why[act[stop & odd]] = 1
         why[act[stop & unpaired & ~odd]] = 2
-    not_done = ~converged & ~doubt
-    for i in np.flatnonzero(not_done):
-        status[idx[i]] = (f"level-set iteration did not converge in {_MAX_ITER} steps (lower "
-                          f"bound {np.ldexp(lb[i], et[idx[i]]):.6g})")
+        act = act[up]
+    sub_status = [""] * M
+
+    def shown(i, x):  # a value of model i in its own units
+        if et is None:
+            return x
+        return float(np.ldexp(x, et[i] if idx is None else et[idx[i]]))
+
+    for i in act:
+        sub_status[i] = (f"level-set iteration did not converge in {_MAX_ITER} steps (lower "
+                         f"bound {shown(i, lb[i]):.6g})")
     for i in np.flatnonzero(doubt):
-        level = np.ldexp((1 + 2 * rtol) * lb[i], et[idx[i]])
-        status[idx[i]] = (
+        level = shown(i, (1 + 2 * rtol) * lb[i])
+        sub_status[i] = (
             f"an odd number of imaginary-axis crossings of the Hamiltonian at level {level:.6g} "
             "(a crossing lost to rounding): the upper bound is not certified" if why[i] == 1
             else f"the Hamiltonian at level {level:.6g} has eigenvalues without their mirror "
                  "image -conj(lambda) (rounding in an ill-conditioned model): its crossings "
                  "cannot be counted, the upper bound is not certified")
-    cert_ok = converged
-    sub = _finish(lb, pk, ~cert_ok, [status[i] for i in idx], et[idx], ea[idx], rtol, at_inf)
+    if idx is None:
+        sub = _finish(lb, pk, ~converged, sub_status, et, ea, rtol)
+        return NormCertificate(sub.norm, sub.peak, sub.upper, sub.status, st)
+    sub = _finish(lb, pk, ~converged, sub_status, None if et is None else et[idx],
+                  None if ea is None else ea[idx], rtol)
     norm[idx], peak[idx], upper[idx] = sub.norm, sub.peak, sub.upper
     for j, i in enumerate(idx):
         status[i] = sub.status[j]
     return NormCertificate(norm, peak, upper, status, st)
 
 
-def _finish(lb, pk, uncertain, status, et, ea, rtol, _at_inf) -> NormCertificate:
+def _finish(lb, pk, uncertain, status, et, ea, rtol) -> NormCertificate:
     """Undo the power-of-2 scaling; norms beyond the floating-point range are in doubt."""
+    if et is None:
+        upper = (1.0 + 2.0 * rtol) * lb
+        if uncertain.any():
+            upper = np.where(uncertain, np.inf, upper)
+        return NormCertificate(lb, pk, upper, status)
     with np.errstate(over="ignore"):
         norm = np.ldexp(lb, et)
         peak = np.where(np.isfinite(pk), np.ldexp(pk, ea), pk)
