@@ -344,6 +344,20 @@ def _side(A, B1, B2, C1, D11, D12) -> _Side:
     return _Side(A, B, B1.shape[1], D1.T @ D1, S, np.hstack([S, B.T]), C1.T @ C1)
 
 
+def _cancelled(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a - b`` with the entries that cancel to rounding level set to exactly zero.
+
+    ``Q = C1'C1 - C1'D1. Rm^-1 D1.'C1`` vanishes identically in some problems (the
+    one-block problem); computed, it is rounding noise of size ``eps ||C1'C1||``, and the
+    symplectic balancing at small gamma scales Q up by ``||R|| / ||A||``, which turns that
+    noise into a spurious indefinite X. An entry is kept when it exceeds 64 eps times the
+    sizes of the two terms it came from.
+    """
+    d = a - b
+    d[np.abs(d) <= 64.0 * np.finfo(float).eps * (np.abs(a) + np.abs(b))] = 0.0
+    return d
+
+
 def _x_data(side: _Side, gamma: float):
     """Riccati data (Ah, Rh, Qh) of the X equation and the pieces needed for F.
 
@@ -357,7 +371,7 @@ def _x_data(side: _Side, gamma: float):
     sol = np.linalg.solve(Rm, side.SBt)
     Ah = side.A - side.B @ sol[:, :n]
     Rh = -side.B @ sol[:, n:]
-    Qh = side.CtC - side.S.T @ sol[:, :n]
+    Qh = _cancelled(side.CtC, side.S.T @ sol[:, :n])
     Rh = 0.5 * (Rh + Rh.T)
     Qh = 0.5 * (Qh + Qh.T)
     return Ah, Rh, Qh, Rm, side.S, side.B
@@ -539,6 +553,8 @@ class _QuickSide:
         except np.linalg.LinAlgError:
             return None, np.nan, np.nan, np.nan
         H = self.H0 + self.W @ sol
+        n = self.n
+        H[n:, :n] = -_cancelled(-self.H0[n:, :n], (self.W[n:] @ sol)[:, :n])
         hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
         X, ev, code, _value, _margin, axis = stable_solution(H, self.n, hnorm)
         if code:
@@ -1098,6 +1114,7 @@ class _StackedSide:
                 except np.linalg.LinAlgError:
                     ok[i] = False
         H = self.H0[idx] + self.W[idx] @ sol
+        H[:, n:, :n] = -_cancelled(-self.H0[idx, n:, :n], (self.W[idx, n:] @ sol)[:, :, :n])
         H[~ok] = np.eye(2 * n)  # placeholders; already failed
         d = _symplectic_scaling_many(H, n)  # as schedule.riccati.solve_riccati, per plant
         left = np.concatenate([1.0 / d, d], axis=1)
