@@ -168,8 +168,8 @@ class PassCriterion:
 
     def describe(self) -> str:
         """The criterion in one line (for the command line and the report)."""
-        return (f"pass at certified norm <= gamma (1 + {self.gamma_tolerance:g}) = "
-                f"{self.norm_limit:.6g}; input disk margins >= {self.gain_margin_db:g} dB / "
+        return (f"stable, certified closed-loop norm <= gamma (1 + {self.gamma_tolerance:g}) = "
+                f"{self.norm_limit:.6g}, input disk margins >= {self.gain_margin_db:g} dB / "
                 f"{self.phase_margin_deg:g} deg (common practice)")
 
     def norm_passes(self, values: dict) -> np.ndarray:
@@ -440,6 +440,11 @@ class CheckResult:
     proposed_breakpoints: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
     gating: np.ndarray | None = None
+
+    @property
+    def criterion(self) -> PassCriterion:
+        """The pass criterion the verdict applied (for display)."""
+        return PassCriterion.from_settings(self.gamma, self.settings)
 
     @property
     def gates(self) -> np.ndarray:

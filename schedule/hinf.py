@@ -1393,9 +1393,9 @@ def _features(Ps: list[Normalized]) -> np.ndarray:
 
 
 def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
-    """Lockstep search (on the scaled gammas) in passes: every 64th plant from a cold start, then every 16th,
-    every 4th and all others, each warm-started from the optimum of the plant already
-    solved that is nearest in plant data (see :func:`_features`)."""
+    """Lockstep search (on the scaled gammas) in passes: every 64th plant from a cold start,
+    then every 16th, every 4th and all others, each warm-started from the optimum of the
+    plant already solved that is nearest in plant data (see :func:`_features`)."""
     K = len(Ps)
     test = _Stacked(Ps)
     scales = np.array([P.gamma_scale for P in Ps])

@@ -170,11 +170,17 @@ def test_gamma_opt_does_not_depend_on_the_units_of_u_and_y(seed):
     gamma_opt is unchanged (11 of 20 such plants were rejected before the fix)."""
     rng = np.random.default_rng(seed)
     d = plant_arrays(rng, n=int(rng.integers(2, 5)), nw=3, nu=2, nz=3, ny=2)
+    # sparse B2 and C2: some modes are reached by one channel only (the weak one, below)
+    d["B2"] = d["B2"] * (rng.random(d["B2"].shape) < 0.6)
+    d["C2"] = d["C2"] * (rng.random(d["C2"].shape) < 0.6)
     g0 = gamma_or_none(d)
     if g0 is None:
         return
 
     def badly(k):
+        if rng.random() < 0.5:  # a change of units: channels scaled 1 and 1e-6, times 10^+-3
+            return (np.diag(np.geomspace(1.0, 1e-6, k))[rng.permutation(k)]
+                    * 10.0 ** rng.uniform(-3, 3))
         U = np.linalg.qr(rng.standard_normal((k, k)))[0]
         Vt = np.linalg.qr(rng.standard_normal((k, k)))[0]
         return U @ np.diag(np.geomspace(1.0, 1e-6, k)) @ Vt * 10.0 ** rng.uniform(-3, 3)
@@ -272,16 +278,16 @@ def test_large_gamma_plants_never_miss_the_bound_silently():
     assert checked >= 16
 
 
-@pytest.mark.parametrize("seed", range(4))
-def test_controllers_near_the_optimum_meet_the_bound_or_refuse(seed):
-    """1 + 1e-3 .. 1 + 1e-7 above gamma_opt (rtol 1e-9): some controllers exceeded the bound
-    by over 1e-4 before the fix."""
-    rng = np.random.default_rng(300 + seed)
-    d = plant_arrays(rng, n=int(rng.integers(2, 6)), nw=3, nu=2, nz=3, ny=2)
-    g = optimal_gamma(GeneralizedPlant(**d), rtol=1e-9)
-    met = [assert_certified_or_refused(d, g * (1 + delta))
-           for delta in (1e-3, 1e-4, 1e-5, 1e-6, 1e-7)]
-    assert met[0]  # a well-scaled plant 1e-3 above its optimum gets a certified controller
+def test_controllers_near_the_optimum_meet_the_bound_or_refuse():
+    """1 + 1e-3 .. 1 + 1e-7 above gamma_opt (rtol 1e-9) on 12 plants: the issue saw
+    controllers exceed the bound by over 1e-4 in 1-3 of about 40 plants."""
+    for seed in range(12):
+        rng = np.random.default_rng(300 + seed)
+        d = plant_arrays(rng, n=int(rng.integers(2, 6)), nw=3, nu=2, nz=3, ny=2)
+        g = optimal_gamma(GeneralizedPlant(**d), rtol=1e-9)
+        met = [assert_certified_or_refused(d, g * (1 + delta))
+               for delta in (1e-3, 1e-4, 1e-5, 1e-6, 1e-7)]
+        assert met[0]  # a well-scaled plant 1e-3 above its optimum: a certified controller
 
 
 def test_zero_infimum_is_consistent_with_what_the_controller_achieves():
