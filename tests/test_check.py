@@ -387,8 +387,9 @@ def reference_norms(A, B, C, D):
 def test_verdict_never_passes_a_loop_above_the_level():
     """The issue's regression: 220 loops (orders 4-12, SISO and 2x2, one mode of damping
     1e-7..1e-1 each), gamma set so that gamma (1 + tol) is 1.001x .. 10x below the known
-    norm: every one must fail the norm check. Before the fix 68 of 220 passed at 1.02x,
-    e.g. a 4-state loop with damping 4.5e-5 whose ratio was reported as 1.275."""
+    norm: every one must fail the norm check. The issue measured loops 0.1 % to 10x over
+    passing (a 4-state loop with damping 4.5e-5 and ratio 1.275 "passed"); on this set the
+    earlier level test passed 83 of the 1100 (loop, level) pairs."""
     rng = np.random.default_rng(220)
     failures = 0
     for n in (4, 6, 8, 10, 12):
