@@ -10,7 +10,10 @@ import sys
 
 import click
 
+from ..design_file import CheckSpec
 from ..errors import InputError
+
+_DEFAULTS = CheckSpec()  # the one list of check defaults
 
 
 def _fmt(x, spec=".4g") -> str:
@@ -68,10 +71,13 @@ def print_result(result, quiet: bool = False) -> None:
 @click.command("check")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--samples", type=click.IntRange(min=0), default=None,
-              help="Random in-between samples. Default: design [check] samples (64).")
+              help="Random in-between samples. Default: design [check] samples "
+                   f"({_DEFAULTS.samples}).")
 @click.option("--sampler", type=click.Choice(["sobol", "latin_hypercube"]), default=None,
-              help="Space-filling sampler. Default: design [check] sampler (sobol).")
-@click.option("--seed", type=int, default=None, help="Sampler seed. Default: design [check].")
+              help="Space-filling sampler. Default: design [check] sampler "
+                   f"({_DEFAULTS.sampler}).")
+@click.option("--seed", type=int, default=None,
+              help=f"Sampler seed. Default: design [check] seed ({_DEFAULTS.seed}).")
 @click.option("--points", "points_file", type=click.Path(dir_okay=False), default=None,
               help="CSV of extra check points; the header names the scheduling variables.")
 @click.option("--model", default=None,
