@@ -104,6 +104,7 @@ __all__ = [
     "central_controller",
     "central_controller_checked",
     "certify_controller",
+    "central_controllers",
     "assemble_controller",
     "feasibility",
     "synthesize_many",
@@ -1004,26 +1005,28 @@ def central_controller(plant: GeneralizedPlant, gamma: float) -> Controller:
     return _central(plant, normalize(plant), gamma)
 
 
-def _central(plant: GeneralizedPlant, P: Normalized, gamma: float) -> Controller:
+def _central(plant: GeneralizedPlant, P: Normalized, gamma: float,
+             certify: bool = True) -> Controller:
     """The central controller of a plant whose conditions were already checked, certified
-    (:func:`certify_controller`)."""
+    (:func:`certify_controller`) unless ``certify`` is False (the caller certifies)."""
     pieces, zc = _pieces_at(P, gamma)
     A, B, C, D = _assemble(P, plant.D22, pieces, gamma)
     K = Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
-    certify_controller(plant, K, gamma)
+    if certify:
+        certify_controller(plant, K, gamma)
     return K
 
 
-def certify_controller(plant: GeneralizedPlant, controller, gamma: float) -> float:
-    """Check that ``controller`` meets ``gamma`` on ``plant``; return the closed-loop norm.
+def certify_controller(plant: GeneralizedPlant, controller, gamma: float) -> None:
+    """Check that ``controller`` meets ``gamma`` on ``plant``.
 
     The closed loop (lower LFT, :func:`schedule.norms.closed_loop_many`) must be stable by
-    the package's predicate and its H-infinity norm, certified by
-    :func:`schedule.norms.h_infinity_norms` (upper bound, relative accuracy 1e-9), at most
+    the package's predicate and its H-infinity norm, by the level test of
+    :func:`schedule.norms.h_infinity_norms` (certified, relative accuracy 1e-9), at most
     ``gamma (1 + CONTROLLER_RTOL)``. In exact arithmetic the central controller at any
-    gamma above the optimum meets this with room to spare (Glover and Doyle 1988); in
-    floating point a problem that is ill-conditioned at gamma (close to the optimum, or a
-    large gamma_opt with a strongly unstable A) can give a controller that misses it.
+    gamma above the optimum meets this (Glover and Doyle 1988); in floating point a problem
+    that is ill-conditioned at gamma (close to the optimum, or a large gamma_opt with a
+    strongly unstable A) can give a controller that misses it.
 
     Raises
     ------
@@ -1032,31 +1035,81 @@ def certify_controller(plant: GeneralizedPlant, controller, gamma: float) -> flo
         certified), the conditioning of ``I - gamma^-2 Y X`` and the remedy: design
         further above the optimal gamma.
     """
-    P = {k: getattr(plant, k)[None] for k in PLANT_KEYS}
-    Kd = {k: np.asarray(getattr(controller, k), dtype=float)[None] for k in "ABCD"}
-    cert = h_infinity_norms(*closed_loop_many(P, Kd), rtol=1e-9)
-    zc = getattr(controller, "z_condition", float("nan"))
-    cond = f"cond(I - Y X/gamma^2) = {zc:.2g}; " if np.isfinite(zc) else ""
-    remedy = ("design further above the optimal gamma (a few percent is the usual practice) "
-              "or rescale the weights")
-    norm, upper = float(cert.norm[0]), float(cert.upper[0])
+    reason = _certify_many([plant], [controller], gamma)[0]
+    if reason:
+        raise NumericalError(reason)
+
+
+def _certify_many(plants, controllers, gamma: float) -> list[str]:
+    """:func:`certify_controller` for many plants at one gamma, batched over the plants of
+    equal sizes (one call of the norm route per size): one reason per plant, "" when the
+    controller is certified."""
+    reasons = [""] * len(plants)
+    groups: dict[tuple, list[int]] = {}
+    for i, (p, K) in enumerate(zip(plants, controllers, strict=True)):
+        groups.setdefault((p.A.shape, p.B1.shape, p.C1.shape, np.shape(K.A)), []).append(i)
     limit = gamma * (1.0 + CONTROLLER_RTOL)
-    st = cert.stability
-    if st is not None and not st.stable[0]:
-        raise NumericalError(
-            f"the central controller at gamma={gamma:.6g} does not stabilize the loop in "
-            f"floating point ({st.reason(0)}); {cond}the problem is ill-conditioned there: "
-            f"{remedy}"
-        )
-    if not upper <= limit:
-        what = (f"closed-loop norm {norm:.9g} = {norm / gamma:.9f} gamma" if not cert.status[0]
-                else f"closed-loop norm not certified ({cert.status[0]}; attained "
-                     f"{norm / gamma:.9f} gamma)")
-        raise NumericalError(
-            f"the central controller at gamma={gamma:.6g} misses its bound in floating point: "
-            f"{what}, tolerance {CONTROLLER_RTOL:g}; {cond}{remedy}"
-        )
-    return norm
+    for idx in groups.values():
+        P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
+        Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float) for i in idx])
+              for k in "ABCD"}
+        try:
+            loops = closed_loop_many(P, Kd)
+        except ScheduleError:  # an ill-posed loop in the group: one plant at a time
+            if len(idx) == 1:
+                reasons[idx[0]] = (f"the central controller at gamma={gamma:.6g} gives an "
+                                   "ill-posed loop (I - D22 DK singular); design at another "
+                                   "gamma or reduce D22")
+                continue
+            for i in idx:
+                reasons[i] = _certify_many([plants[i]], [controllers[i]], gamma)[0]
+            continue
+        cert = h_infinity_norms(*loops, rtol=1e-9, level=limit)
+        st = cert.stability
+        for j, i in enumerate(idx):
+            zc = getattr(controllers[i], "z_condition", float("nan"))
+            cond = f"cond(I - Y X/gamma^2) = {zc:.2g}; " if np.isfinite(zc) else ""
+            remedy = ("design further above the optimal gamma (a few percent is the usual "
+                      "practice) or rescale the weights")
+            if st is not None and not st.stable[j]:
+                reasons[i] = (f"the central controller at gamma={gamma:.6g} does not stabilize "
+                              f"the loop in floating point ({st.reason(j)}); {cond}the problem "
+                              f"is ill-conditioned there: {remedy}")
+            elif not cert.upper[j] <= limit:
+                norm = float(cert.norm[j])
+                what = (f"closed-loop norm at least {norm:.9g} = {norm / gamma:.9f} gamma"
+                        if not cert.status[j] else
+                        f"closed-loop norm not certified ({cert.status[j]}; attained "
+                        f"{norm / gamma:.9f} gamma)")
+                reasons[i] = (f"the central controller at gamma={gamma:.6g} misses its bound "
+                              f"in floating point: {what}, tolerance {CONTROLLER_RTOL:g}; "
+                              f"{cond}{remedy}")
+    return reasons
+
+
+def central_controllers(plants, gamma: float) -> list[tuple[Controller | None, str]]:
+    """:func:`central_controller_checked` for many plants at one common gamma, with the
+    certification (:func:`certify_controller`) batched over the plants of equal sizes.
+
+    Returns one ``(controller, "")`` or ``(None, reason)`` per plant (never raises per
+    plant). The plants must have passed :meth:`GeneralizedPlant.check_conditions`.
+    """
+    gamma = _check_gamma(gamma)
+    out: list[tuple[Controller | None, str]] = []
+    for p in plants:
+        try:
+            out.append((_central(p, normalize(p), gamma, certify=False), ""))
+        except ScheduleError as exc:
+            out.append((None, str(exc)))
+        except (np.linalg.LinAlgError, ArithmeticError) as exc:
+            out.append((None, f"{type(exc).__name__}: {exc}"))
+    done = [i for i, (K, _r) in enumerate(out) if K is not None]
+    if done:
+        reasons = _certify_many([plants[i] for i in done], [out[i][0] for i in done], gamma)
+        for i, r in zip(done, reasons, strict=True):
+            if r:
+                out[i] = (None, r)
+    return out
 
 
 def central_controller_checked(plant: GeneralizedPlant, gamma: float) -> Controller:
@@ -1501,15 +1554,18 @@ def synthesize_many(
                 except ScheduleError as exc:
                     reasons[i] = str(exc)
     results: list[tuple[float, Controller | None, str]] = []
-    for i, p in enumerate(plants):
-        if reasons[i] or gamma is None:
+    todo = [i for i in range(N) if not reasons[i] and gamma is not None]
+    made: dict[int, tuple[Controller | None, str]] = {}
+    if todo:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            for i, res in zip(todo, central_controllers([plants[i] for i in todo], gamma),
+                              strict=True):
+                made[i] = res
+    for i in range(N):
+        if i not in made:
             results.append((float(gopt[i]) if not reasons[i] else float("nan"), None, reasons[i]))
-            continue
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                K = _central(p, normalized[i], gamma)
-            results.append((float(gopt[i]), K, ""))
-        except ScheduleError as exc:
-            results.append((float(gopt[i]), None, str(exc)))
+        else:
+            K, why = made[i]
+            results.append((float(gopt[i]), K, why))
     return results

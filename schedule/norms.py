@@ -727,7 +727,8 @@ def _check_stacks(A, B, C, D):
     return A, B, C, D
 
 
-def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> NormCertificate:
+def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
+                     level: Any = None) -> NormCertificate:
     """Certified H-infinity norms of N models of equal size, in lockstep: the package's
     one norm route (every check and certificate uses it).
 
@@ -771,12 +772,21 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> Norm
     the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
     in doubt gets ``upper = inf`` and a status line: a level test on it says "above".
 
+    With a ``level`` only the question "is ``||G||_inf <= level``?" is answered, more
+    cheaply: a model whose lower bound (step 3) exceeds the level is above it (``upper`` is
+    inf, ``norm`` that lower bound); for the others the Hamiltonian at the level itself is
+    tested first, and when none of its eigenvalues lies in the looser band and its
+    spectrum is symmetric (no crossing of the level) the model is certified below with
+    ``upper = level`` and ``norm`` a lower bound only; the rest get the full computation.
+
     Parameters
     ----------
     A, B, C, D : array_like
         Stacked matrices, shapes (N, n, n), (N, n, m), (N, p, n), (N, p, m).
     rtol : float, optional
         Relative accuracy.
+    level : float or (N,) array, optional
+        The level of a level test (see above).
 
     Returns
     -------
@@ -798,7 +808,9 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8) -> Norm
     14 (1990) 287-293, doi:10.1016/0167-6911(90)90049-Z.
     """
     A, B, C, D = _check_stacks(A, B, C, D)
-    return _certify(A, B, C, D, _check_rtol(rtol))
+    if level is not None:
+        level = np.broadcast_to(np.asarray(level, dtype=float), (A.shape[0],))
+    return _certify(A, B, C, D, _check_rtol(rtol), level)
 
 
 def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
@@ -868,7 +880,7 @@ def _scale_models(A, B, C, D):
     return A, B, C, D, et, ea
 
 
-def _certify(A, B, C, D, rtol) -> NormCertificate:
+def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     """The computation of :func:`h_infinity_norms` on validated float stacks."""
     N, n = A.shape[0], A.shape[1]
     p, m = D.shape[1], D.shape[2]
@@ -916,63 +928,92 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
         s[s != s] = np.inf
         return s
 
-    # 3. lower bound: sigma_max at 0, at |Im lam| of the complex poles and |lam| of the
-    # real ones (the best three of them after a modal screening for large orders), and
-    # at infinity (D); each conjugate pair is taken once
-    im = lam.imag
-    cand = np.where(im > 0, im, np.where(im == 0, np.abs(lam.real), 0.0))
-    if screen:
-        with np.errstate(all="ignore"):
-            try:
-                VB = np.linalg.solve(V, Bc)
-                r = 1.0 / (1j * cand[:, :, None] - lam[:, None, :])  # (M, k, n)
-                Gm = ((C @ V)[:, None, :, :] * r[:, :, None, :]) @ VB[:, None] + D[:, None]
-                approx = sigma_max(Gm)
-                approx = np.where(np.isfinite(approx), approx, 0.0)
-                cand = np.take_along_axis(cand, np.argsort(approx, axis=1)[:, -3:], axis=1)
-            except np.linalg.LinAlgError:
-                pass
-    cand = np.concatenate([np.zeros((M, 1)), cand], axis=1)
-    k = cand.shape[1]
-    sig = sigma_at(np.repeat(rows, k), cand.ravel()).reshape(M, k)
-    sig0 = sig[:, 0]  # sigma_max at 0
-    best = sig.argmax(axis=1)
-    lb = sig[rows, best]
-    pk = cand[rows, best]
-    at_inf = sd >= lb
-    lb = np.where(at_inf, sd, lb)
-    pk = np.where(at_inf, np.inf, pk)
-    zero = lb == 0.0
-    for i in np.flatnonzero(zero):  # zero at 2n + 2 distinct points besides 0: G = 0
-        amax = float(np.abs(lam[i]).max())
-        extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * (amax if amax > 0 else 1.0)
-        s = sigma_at(np.full(extra.size, i), extra)
-        j = int(np.argmax(s))
-        lb[i], pk[i] = float(s[j]), float(extra[j])
-    converged = lb == 0.0
-    doubt = np.zeros(M, dtype=bool)
-    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
     Dt = D.transpose(0, 2, 1)
     DtD = Dt @ D
     DtC_Bt = np.concatenate([Dt @ C, B.transpose(0, 2, 1)], axis=2)
     CtC = C.transpose(0, 2, 1) @ C
     eye_m = np.eye(m)
     diag = np.arange(2 * n)
-    act = np.flatnonzero(~converged)
-    for _ in range(_MAX_ITER):
-        if act.size == 0:
-            break
-        K = act.size
-        gamma = (1.0 + 2.0 * rtol) * lb[act]
+
+    def spectrum(act, gamma):
+        """Eigenvalues of the Hamiltonians H(gamma) of the models act, and ||H||_1."""
         X = np.linalg.solve(gamma[:, None, None] ** 2 * eye_m - DtD[act], DtC_Bt[act])
-        H = np.empty((K, 2 * n, 2 * n))
+        H = np.empty((act.size, 2 * n, 2 * n))
         Ah = A[act] + B[act] @ X[:, :, :n]
         H[:, :n, :n] = Ah
         H[:, :n, n:] = B[act] @ X[:, :, n:]
         H[:, n:, :n] = -(CtC[act] + DtC_Bt[act, :, :n].transpose(0, 2, 1) @ X[:, :, :n])
         H[:, n:, n:] = -Ah.transpose(0, 2, 1)
-        ev = np.linalg.eigvals(H)
-        hn = np.abs(H).sum(axis=1).max(axis=1)[:, None]
+        return np.linalg.eigvals(H), np.abs(H).sum(axis=1).max(axis=1)[:, None]
+
+    lb = sd.copy()  # sigma_max at infinity: a lower bound of every norm
+    pk = np.full(M, np.inf)
+    sig0 = np.zeros(M)
+    below_level = np.zeros(M, dtype=bool)
+    settled = np.zeros(M, dtype=bool)  # decided against the level without the full norm
+    if level is not None:
+        lv = np.asarray(level, dtype=float)
+        lv = lv if idx is None else lv[idx]
+        if et is not None:
+            lv = np.ldexp(lv, -(et if idx is None else et[idx]))
+        test_lv = np.flatnonzero(lv > sd)
+        if test_lv.size:
+            # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
+            # symmetric spectrum -> no crossing of the level, so the norm is below it
+            ev, hn = spectrum(test_lv, lv[test_lv])
+            mod, are = np.abs(ev), np.abs(ev.real)
+            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+            dist[:, diag, diag] = np.inf
+            clear = ((are > NEAR_AXIS_RTOL * mod + AXIS_ATOL * hn)
+                     & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
+            below_level[test_lv[clear]] = settled[test_lv[clear]] = True
+    rest = np.flatnonzero(~settled)
+    # 3. lower bound: sigma_max at 0, at |Im lam| of the complex poles and |lam| of the
+    # real ones (the best three of them after a modal screening for large orders), and
+    # at infinity (D); each conjugate pair is taken once
+    im = lam[rest].imag
+    cand = np.where(im > 0, im, np.where(im == 0, np.abs(lam[rest].real), 0.0))
+    if screen and rest.size:
+        with np.errstate(all="ignore"):
+            try:
+                VB = np.linalg.solve(V[rest], Bc[rest])
+                r = 1.0 / (1j * cand[:, :, None] - lam[rest][:, None, :])  # (k, c, n)
+                Gm = (((C[rest] @ V[rest])[:, None, :, :] * r[:, :, None, :]) @ VB[:, None]
+                      + D[rest][:, None])
+                approx = sigma_max(Gm)
+                approx = np.where(np.isfinite(approx), approx, 0.0)
+                cand = np.take_along_axis(cand, np.argsort(approx, axis=1)[:, -3:], axis=1)
+            except np.linalg.LinAlgError:
+                pass
+    cand = np.concatenate([np.zeros((rest.size, 1)), cand], axis=1)
+    k = cand.shape[1]
+    if rest.size:
+        sig = sigma_at(np.repeat(rest, k), cand.ravel()).reshape(rest.size, k)
+        sig0[rest] = sig[:, 0]  # sigma_max at 0
+        best = sig.argmax(axis=1)
+        top = sig[np.arange(rest.size), best]
+        finite = top > sd[rest]
+        lb[rest] = np.where(finite, top, sd[rest])
+        pk[rest] = np.where(finite, cand[np.arange(rest.size), best], np.inf)
+    for i in rest[lb[rest] == 0.0]:  # zero at 2n + 2 distinct points besides 0: G = 0
+        amax = float(np.abs(lam[i]).max())
+        extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * (amax if amax > 0 else 1.0)
+        s = sigma_at(np.full(extra.size, i), extra)
+        j = int(np.argmax(s))
+        lb[i], pk[i] = float(s[j]), float(extra[j])
+    converged = settled | (lb == 0.0)
+    doubt = np.zeros(M, dtype=bool)
+    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
+    if level is not None:  # an attained value above the level: certainly above
+        above = ~converged & (lb > lv)
+        settled |= above
+    act = np.flatnonzero(~converged & ~settled)
+    for _ in range(_MAX_ITER):
+        if act.size == 0:
+            break
+        K = act.size
+        gamma = (1.0 + 2.0 * rtol) * lb[act]
+        ev, hn = spectrum(act, gamma)
         mod = np.abs(ev)
         are = np.abs(ev.real)
         upper_half = ev.imag > 0
@@ -1040,11 +1081,17 @@ def _certify(A, B, C, D, rtol) -> NormCertificate:
             else f"the Hamiltonian at level {level:.6g} has eigenvalues without their mirror "
                  "image -conj(lambda) (rounding in an ill-conditioned model): its crossings "
                  "cannot be counted, the upper bound is not certified")
+    # models settled above the level: a lower bound above it, nothing certified from above
+    uncertain = ~(converged | settled) | (settled & ~below_level)
+    upper_scaled = np.where(below_level, lv if level is not None else 0.0, np.nan)
+    e_t = et if (et is None or idx is None) else et[idx]
+    e_a = ea if (ea is None or idx is None) else ea[idx]
+    sub = _finish(lb, pk, uncertain, sub_status, e_t, e_a, rtol)
+    if below_level.any():  # certified below the level: the level is the upper bound
+        sub.upper[below_level] = (upper_scaled[below_level] if e_t is None
+                                  else np.ldexp(upper_scaled[below_level], e_t[below_level]))
     if idx is None:
-        sub = _finish(lb, pk, ~converged, sub_status, et, ea, rtol)
         return NormCertificate(sub.norm, sub.peak, sub.upper, sub.status, st)
-    sub = _finish(lb, pk, ~converged, sub_status, None if et is None else et[idx],
-                  None if ea is None else ea[idx], rtol)
     norm[idx], peak[idx], upper[idx] = sub.norm, sub.peak, sub.upper
     for j, i in enumerate(idx):
         status[i] = sub.status[j]
