@@ -175,19 +175,24 @@ class Stability:
 
     Attributes
     ----------
-    abscissa : (N,) spectral abscissa ``max Re(lam)`` (``-inf`` without states).
     stable : (N,) the verdict of :func:`stability`.
-    worst : (N,) complex eigenvalue closest to failing the test (nan without states).
-    margin : (N,) the allowance ``STABILITY_RTOL |lam| + STABILITY_EPS eps ||A_bal||_1``
-        of that eigenvalue.
     eigenvalues : (N, n) the eigenvalues.
+    abscissa : (N,) spectral abscissa ``max Re(lam)`` (``-inf`` without states).
+    slack : (N, n) ``-Re(lam) - allowance`` per eigenvalue (positive where it passes), with
+        the allowance ``STABILITY_RTOL |lam| + STABILITY_EPS eps ||A_bal||_1``.
     """
 
-    __slots__ = ("abscissa", "stable", "worst", "margin", "eigenvalues")
+    __slots__ = ("stable", "eigenvalues", "slack")
 
-    def __init__(self, abscissa, stable, worst, margin, eigenvalues):
-        self.abscissa, self.stable, self.worst = abscissa, stable, worst
-        self.margin, self.eigenvalues = margin, eigenvalues
+    def __init__(self, stable, eigenvalues, slack):
+        self.stable, self.eigenvalues, self.slack = stable, eigenvalues, slack
+
+    @property
+    def abscissa(self) -> np.ndarray:
+        lam = self.eigenvalues
+        if lam.shape[1] == 0:
+            return np.full(lam.shape[0], -np.inf)
+        return lam.real.max(axis=1)
 
     def reason(self, i: int, what: str = "closed loop") -> str:
         """One line saying why model ``i`` is not stable (empty when it is).
@@ -198,17 +203,15 @@ class Stability:
         """
         if self.stable[i]:
             return ""
-        sa = float(self.abscissa[i])
+        sa = float(self.eigenvalues[i].real.max())
         if sa >= 0:
             return f"{what} unstable (spectral abscissa {sa:.3g})"
-        lam = complex(self.worst[i])
+        k = int(np.argmin(self.slack[i]))
+        lam = complex(self.eigenvalues[i, k])
+        allow = -lam.real - float(self.slack[i, k])
         return (f"{what} not certified stable: eigenvalue {lam.real:.3g}{lam.imag:+.3g}j lies "
-                f"within {float(self.margin[i]):.2g} of the imaginary axis (rounding and "
-                f"relative allowance {STABILITY_RTOL:g} |lambda|)")
-
-
-def _allowance(lam: np.ndarray, scale: np.ndarray) -> np.ndarray:
-    return STABILITY_RTOL * np.abs(lam) + STABILITY_EPS * _EPS * scale[..., None]
+                f"within {allow:.2g} of the imaginary axis (rounding and relative allowance "
+                f"{STABILITY_RTOL:g} |lambda|)")
 
 
 def stability_from_eigenvalues(A: np.ndarray, lam: np.ndarray) -> Stability:
@@ -216,26 +219,20 @@ def stability_from_eigenvalues(A: np.ndarray, lam: np.ndarray) -> Stability:
     known (e.g. from a modal decomposition): the same predicate, no second eigen-call."""
     N, n = lam.shape
     if n == 0:
-        nan = np.full(N, np.nan)
-        return Stability(np.full(N, -np.inf), np.ones(N, bool), nan.astype(complex), nan, lam)
+        return Stability(np.ones(N, bool), lam, np.zeros((N, 0)))
     scale = np.abs(A).sum(axis=1).max(axis=1)
     mod = np.abs(lam)
-    allow = STABILITY_RTOL * mod + (STABILITY_EPS * _EPS) * scale[:, None]
-    slack = -lam.real - allow  # > 0 where the eigenvalue passes
-    stable = (slack > 0).all(axis=1)
-    relative_ok = stable.copy()
+    slack = -lam.real - (STABILITY_RTOL * mod + (STABILITY_EPS * _EPS) * scale[:, None])
+    stable = slack.min(axis=1) > 0
     if not stable.all():
+        # rounding allowance too large on the given coordinates: try the balanced norm
         relative_ok = (-lam.real > STABILITY_RTOL * mod).all(axis=1)
-    # rounding allowance too large on the given coordinates: try the balanced norm
-    for i in np.flatnonzero(relative_ok & ~stable):
-        _, (d, _p) = scipy.linalg.matrix_balance(A[i], permute=False, separate=True)
-        bal = float(np.abs(A[i] * (d[None, :] / d[:, None])).sum(axis=0).max())
-        allow[i] = _allowance(lam[i], np.array(bal))
-        slack[i] = -lam[i].real - allow[i]
-        stable[i] = bool((slack[i] > 0).all())
-    k = np.argmin(slack, axis=1)
-    rows = np.arange(N)
-    return Stability(lam.real.max(axis=1), stable, lam[rows, k], allow[rows, k], lam)
+        for i in np.flatnonzero(relative_ok & ~stable):
+            _, (d, _p) = scipy.linalg.matrix_balance(A[i], permute=False, separate=True)
+            bal = float(np.abs(A[i] * (d[None, :] / d[:, None])).sum(axis=0).max())
+            slack[i] = -lam[i].real - (STABILITY_RTOL * mod[i] + STABILITY_EPS * _EPS * bal)
+            stable[i] = bool(slack[i].min() > 0)
+    return Stability(stable, lam, slack)
 
 
 def stability(A: Any) -> Stability:
@@ -916,7 +913,6 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     else:
         idx = None
     M = A.shape[0]
-    rows = np.arange(M)
     Bc = B.astype(complex)
     eye = np.eye(n)
 
@@ -1007,61 +1003,72 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     if level is not None:  # an attained value above the level: certainly above
         above = ~converged & (lb > lv)
         settled |= above
+    def best_of(rows, test):
+        """The largest sigma_max over the finite test frequencies of each row (models
+        ``rows``): (value, frequency), -inf where a row has none."""
+        rr, cc = np.nonzero(np.isfinite(test))
+        sig = np.full(test.shape, -np.inf)
+        if rr.size:
+            sig[rr, cc] = sigma_at(rows[rr], test[rr, cc])
+        j = sig.argmax(axis=1)
+        r = np.arange(test.shape[0])
+        return sig[r, j], test[r, j]
+
     act = np.flatnonzero(~converged & ~settled)
     for _ in range(_MAX_ITER):
         if act.size == 0:
             break
-        K = act.size
         gamma = (1.0 + 2.0 * rtol) * lb[act]
         ev, hn = spectrum(act, gamma)
         mod = np.abs(ev)
         are = np.abs(ev.real)
         upper_half = ev.imag > 0
         on = (are <= AXIS_RTOL * mod + AXIS_ATOL * hn) & upper_half
-        # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
-        # (a peak at w = 0 meeting the level) splits there by rounding along either axis;
-        # the region is decided by sigma_max(0), so they are left out of the counts
-        origin = mod <= ORIGIN_RTOL * hn
-        # parity: sigma_max - gamma < 0 at 0 and at infinity, so crossings come in pairs
-        odd = ((on & ~origin).sum(axis=1) % 2 == 1) & (sig0[act] < gamma)
-        # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
-        # (lam and -conj(lam)): an eigenvalue whose mirror image is missing by more than
-        # half its distance to the axis cannot be placed on either side
-        dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-        dist[:, diag, diag] = np.inf
-        pair_error = dist.min(axis=2)
-        sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn) | origin
-        # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
-        unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
-        # test frequencies: midpoints between neighbouring crossings (sign change of
-        # sigma_max - gamma); the looser-band eigenvalues and those whose side rounding
-        # leaves open, with the midpoint towards 0
+        # midpoints between neighbouring crossings (sign change of sigma_max - gamma)
         w = np.sort(np.where(on, ev.imag, np.inf), axis=1)
-        near = ((are <= NEAR_AXIS_RTOL * mod) | ~sided) & upper_half & ~on
-        pts = [0.5 * (w[:, :-1] + w[:, 1:]), np.where(near, ev.imag, np.inf),
-               np.where(near, 0.5 * ev.imag, np.inf)]
-        # a crossing without its partner (odd count), or an eigenvalue whose side is open:
-        # the interval above gamma starts or ends there, so probe both of its sides
-        lone = (odd[:, None] & on) | (~sided & upper_half & ~on)
-        if lone.any():
-            probe = np.where(lone[:, :, None], ev.imag[:, :, None] * _PROBE_REL, np.inf)
-            pts.append(probe.reshape(K, -1))
-        test = np.concatenate(pts, axis=1)
-        rr, cc = np.nonzero(np.isfinite(test))
-        sig = np.full(test.shape, -np.inf)
-        if rr.size:
-            sig[rr, cc] = sigma_at(act[rr], test[rr, cc])
-        j = sig.argmax(axis=1)
-        s = sig[np.arange(K), j]
+        s, f = best_of(act, 0.5 * (w[:, :-1] + w[:, 1:]))
         up = s > gamma
+        st_ = np.flatnonzero(~up)  # would stop here: the consistency tests first
+        if st_.size:
+            ev, mod, are, on, hn = ev[st_], mod[st_], are[st_], on[st_], hn[st_]
+            ups = upper_half[st_]
+            # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
+            # (a peak at w = 0 meeting the level) splits there by rounding along either
+            # axis; the region is decided by sigma_max(0), so they are left out of counts
+            origin = mod <= ORIGIN_RTOL * hn
+            # parity: sigma_max - gamma < 0 at 0 and at infinity: crossings come in pairs
+            odd = ((on & ~origin).sum(axis=1) % 2 == 1) & (sig0[act[st_]] < gamma[st_])
+            # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
+            # (lam and -conj(lam)): an eigenvalue whose mirror image is missing by more
+            # than half its distance to the axis cannot be placed on either side
+            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+            dist[:, diag, diag] = np.inf
+            pair_error = dist.min(axis=2)
+            sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn) | origin
+            # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
+            unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
+            # the looser-band eigenvalues and those whose side rounding leaves open, with
+            # the midpoint towards 0; a crossing without its partner (odd count) or an
+            # eigenvalue whose side is open: the interval above gamma starts or ends
+            # there, so both of its sides are probed
+            near = ((are <= NEAR_AXIS_RTOL * mod) | ~sided) & ups & ~on
+            pts = [np.where(near, ev.imag, np.inf), np.where(near, 0.5 * ev.imag, np.inf)]
+            lone = (odd[:, None] & on) | (~sided & ups & ~on)
+            if lone.any():
+                probe = np.where(lone[:, :, None], ev.imag[:, :, None] * _PROBE_REL, np.inf)
+                pts.append(probe.reshape(st_.size, -1))
+            s2, f2 = best_of(act[st_], np.concatenate(pts, axis=1))
+            up2 = s2 > gamma[st_]
+            s[st_[up2]], f[st_[up2]] = s2[up2], f2[up2]
+            up[st_[up2]] = True
+            bad = odd | unpaired
+            done = act[st_[~up2 & ~bad]]
+            converged[done] = True
+            doubt[act[st_[~up2 & bad]]] = True
+            why[act[st_[~up2 & odd]]] = 1
+            why[act[st_[~up2 & unpaired & ~odd]]] = 2
         lb[act[up]] = s[up]
-        pk[act[up]] = test[up, j[up]]
-        stop = ~up
-        bad = odd | unpaired
-        converged[act[stop & ~bad]] = True
-        doubt[act[stop & bad]] = True
-        why[act[stop & odd]] = 1
-        why[act[stop & unpaired & ~odd]] = 2
+        pk[act[up]] = f[up]
         act = act[up]
     sub_status = [""] * M
 
