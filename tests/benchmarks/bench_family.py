@@ -21,15 +21,15 @@ import os
 for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")  # one BLAS thread: the comparison is per core
 
-import sys
-import time
-from pathlib import Path
+import sys  # noqa: E402 (one BLAS thread first)
+import time  # noqa: E402 (one BLAS thread first)
+from pathlib import Path  # noqa: E402 (one BLAS thread first)
 
-import numpy as np
+import numpy as np  # noqa: E402 (one BLAS thread first)
 
-from schedule.design_file import load_design
-from schedule.family import run_design
-from schedule.types import LinearPlant
+from schedule.design_file import load_design  # noqa: E402 (one BLAS thread first)
+from schedule.family import run_design  # noqa: E402 (one BLAS thread first)
+from schedule.types import LinearPlant  # noqa: E402 (one BLAS thread first)
 
 ORDER = 7  # plant order; the first-order performance weight adds one state
 
