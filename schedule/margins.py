@@ -300,6 +300,15 @@ def _golden(fun, a, b, iterations: int = 40, maximize: bool = True):
     return sgn * np.where(take_c, fc, fd), np.where(take_c, c, d)
 
 
+def _neighbours(w_grid: np.ndarray, wbest: np.ndarray):
+    """Per row, the grid frequencies strictly below and above ``wbest`` (the grid may repeat
+    values; ``wbest`` itself where there is none): the bracket of a peak refinement."""
+    below = np.where(w_grid < wbest[:, None], w_grid, -np.inf).max(axis=1)
+    above = np.where(w_grid > wbest[:, None], w_grid, np.inf).min(axis=1)
+    return (np.where(np.isfinite(below), below, wbest),
+            np.where(np.isfinite(above), above, wbest))
+
+
 def _refine_peak(fun, w_grid: np.ndarray, values: np.ndarray, iterations: int = 40):
     """Refine the grid maximum of ``fun`` per row by golden section between neighbours.
 
@@ -311,11 +320,7 @@ def _refine_peak(fun, w_grid: np.ndarray, values: np.ndarray, iterations: int = 
     k = np.argmax(np.nan_to_num(values, nan=-np.inf), axis=1)
     best = values[rows, k]
     wbest = w_grid[rows, k]
-    # neighbours strictly below / above the peak sample (the grid may repeat values)
-    below = np.where(w_grid < wbest[:, None], w_grid, -np.inf).max(axis=1)
-    above = np.where(w_grid > wbest[:, None], w_grid, np.inf).min(axis=1)
-    a = np.where(np.isfinite(below), below, wbest)
-    b = np.where(np.isfinite(above), above, wbest)
+    a, b = _neighbours(w_grid, wbest)
     cand, wcand = _golden(fun, a, b, iterations)
     better = cand > best
     return np.where(better, cand, best), np.where(better, wcand, wbest)
@@ -625,10 +630,7 @@ def _worst_mu(R: FrequencyResponder, w: np.ndarray, H: np.ndarray):
     best = vals[rows, k]
     wbest = w[rows, k]
     start = logd[rows, k]
-    below = np.where(w < wbest[:, None], w, -np.inf).max(axis=1)
-    above = np.where(w > wbest[:, None], w, np.inf).min(axis=1)
-    a = np.where(np.isfinite(below), below, wbest)
-    b = np.where(np.isfinite(above), above, wbest)
+    a, b = _neighbours(w, wbest)
 
     def fun(ww):
         return _mu_bound(R(ww[:, None])[:, 0], refine=True, start=start)[0]

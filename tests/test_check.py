@@ -7,7 +7,13 @@ import json
 
 import numpy as np
 import pytest
-from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+from _helpers import (
+    SCHEDULED_MATRICES,
+    lightly_damped_modes,
+    toml_channels,
+    toml_variables,
+    toml_weights,
+)
 from click.testing import CliRunner
 
 from schedule.check import (
@@ -397,17 +403,7 @@ def test_verdict_never_passes_a_loop_above_the_level():
         A, B, C, D = (np.zeros((44, n, n)), np.zeros((44, n, m)), np.zeros((44, p, n)),
                       np.zeros((44, p, m)))
         for i in range(44):
-            zeta = 10.0 ** rng.uniform(-7, -1)
-            wn = 10.0 ** rng.uniform(-1, 2)
-            wd = wn * np.sqrt(1 - zeta * zeta)
-            blocks = [np.array([[-zeta * wn, wd], [-wd, -zeta * wn]])]
-            while sum(b.shape[0] for b in blocks) < n:
-                w2, z2 = 10.0 ** rng.uniform(-1, 2), rng.uniform(0.05, 0.7)
-                blocks.append(np.array([[-z2 * w2, w2], [-w2, -z2 * w2]]))
-            T = np.eye(n) + 0.3 * rng.standard_normal((n, n))
-            from scipy.linalg import block_diag
-
-            A[i] = T @ block_diag(*blocks) @ np.linalg.inv(T)
+            A[i] = lightly_damped_modes(rng, n, 10.0 ** rng.uniform(-7, -1))[0]
             B[i], C[i] = rng.standard_normal((n, m)), rng.standard_normal((p, n))
             D[i] = 0.1 * rng.standard_normal((p, m))
         ref = reference_norms(A, B, C, D)

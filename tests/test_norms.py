@@ -16,6 +16,7 @@ import scipy.integrate
 import scipy.linalg
 import scipy.optimize
 import scipy.signal
+from _helpers import lightly_damped_modes
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -543,16 +544,9 @@ def test_bad_options_one_line_errors():
 
 
 def lightly_damped(rng, n, zeta):
-    """A stable model with one mode of damping zeta (frequency 0.1..100 rad/s) among well
-    damped ones, in random coordinates; returns the model and the mode's frequency."""
-    wn = 10.0 ** rng.uniform(-1.0, 2.0)
-    wd = wn * np.sqrt(1.0 - zeta * zeta)
-    blocks = [np.array([[-zeta * wn, wd], [-wd, -zeta * wn]])]
-    while sum(b.shape[0] for b in blocks) < n:
-        w2, z2 = 10.0 ** rng.uniform(-1.0, 2.0), rng.uniform(0.05, 0.7)
-        blocks.append(np.array([[-z2 * w2, w2], [-w2, -z2 * w2]]))
-    T = np.eye(n) + 0.3 * rng.standard_normal((n, n))
-    A = T @ scipy.linalg.block_diag(*blocks) @ np.linalg.inv(T)
+    """A stable SISO model with one mode of damping zeta among well damped ones, in random
+    coordinates; returns the model and the mode's frequency."""
+    A, wd = lightly_damped_modes(rng, n, zeta)
     B, C = rng.standard_normal((n, 1)), rng.standard_normal((1, n))
     return (A, B, C, 0.1 * rng.standard_normal((1, 1))), wd
 
