@@ -9,8 +9,12 @@ Zhou, Doyle and Glover 1996, ch. 14 and section 17.1 "general case"):
 
 1. Normalization. Orthogonal rotations of ``z`` and ``w`` and invertible
    scalings of ``u`` and ``y`` (from SVDs) give ``D12 = [0; I]`` and
-   ``D21 = [0, I]``; they do not change the H-infinity norm and are undone
-   in the controller (``K = Tu K~ Ty``).
+   ``D21 = [0, I]``; a diagonal change of state coordinates balances the plant and
+   one scalar each for ``z`` and ``w`` brings gamma near 1
+   (:meth:`schedule.plant.GeneralizedPlant.scaling`). None of this changes what is
+   achievable (gamma scales with the units of z and w), and all of it is undone in the
+   controller (``K = Tu K~ Ty`` in the plant's state coordinates), so the answers do not
+   depend on units or coordinates.
 2. D22 is removed by loop shifting: design ``K0`` for ``D22 = 0`` and use
    ``K = K0 (I + D22 K0)^-1`` (well-posed when ``I + D22 D_K0`` is
    invertible).
@@ -38,6 +42,10 @@ Zhou, Doyle and Glover 1996, ch. 14 and section 17.1 "general case"):
    In the familiar case D11 = 0, D12'C1 = 0, B1 D21' = 0 this is
    ``Ak = A + gamma^-2 B1 B1'X - B2 B2'X - Z Y C2' C2``, ``Bk = Z Y C2'``,
    ``Ck = -B2'X``: the controller state is an estimate of the plant state.
+
+Every controller returned is certified on the plant (:func:`certify_controller`): the
+closed loop is stable and its norm at most gamma (1 + 1e-6), or a NumericalError says
+why (ill-conditioning near the optimum or for large gamma) and what to do.
 
 Sign convention: ``u = K y``, closed loop = lower LFT (see
 :func:`schedule.norms.closed_loop`).

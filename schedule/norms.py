@@ -12,8 +12,13 @@ H-infinity norm with its peak frequency (:func:`h_infinity_norm`), the H2 norm
 (:func:`spectral_abscissa`).
 
 Stability is internal stability: every eigenvalue of ``A`` must lie in the open
-left half plane (hidden unstable modes count). The norms of an unstable model
-are infinite.
+left half plane (hidden unstable modes count), decided by the package's one
+predicate, :func:`stability`. The norms of an unstable model are infinite.
+
+The H-infinity norm has one route, :func:`h_infinity_norms` (batched; a
+:class:`NormCertificate` with the attained value, a certified upper bound or the
+reason it is in doubt; also the level test); :func:`h_infinity_norm` and
+:func:`h_infinity_norm_many` are its raising forms.
 
 The functions take plain numpy arrays, validate them once in a private helper
 and keep the per-call Python overhead small: the frozen-point checks evaluate
