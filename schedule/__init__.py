@@ -27,6 +27,7 @@ _PUBLIC = {
     "closed_loop": "norms", "h_infinity_norm": "norms", "h2_norm": "norms",
     "singular_values": "norms", "spectral_abscissa": "norms",
     "h_infinity_norm_many": "norms", "frequency_response": "norms", "is_stable": "norms",
+    "h_infinity_norms": "norms", "stability": "norms", "certify_controller": "hinf",
     # linearization helper
     "trim": "linearize", "linearize": "linearize", "trim_and_linearize": "linearize",
     # files

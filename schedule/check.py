@@ -3,16 +3,16 @@
 At every check point p the interpolated controller K(p) is closed with a plant
 at p and judged frozen (p held fixed; Shamma and Athans 1990, 1991):
 
-- closed-loop stability (spectral abscissa of the lower-LFT state matrix);
+- closed-loop stability, by the package's one predicate
+  (:func:`schedule.norms.stability`);
 - the closed-loop H-infinity norm of the weighted loop against the family's
-  gamma, passing when ``norm <= gamma (1 + gamma_tolerance)``. The norm is
-  computed for all points at once on a frequency grid with golden-section
-  refinement (a lower bound); the verdict is then certified by the
-  Hamiltonian test at the level ``gamma (1 + tol)`` (Boyd, Balakrishnan and
-  Kabamba 1989: for stable A and sigma_max(D) < level, the norm is below the
-  level iff the Hamiltonian has no imaginary-axis eigenvalue), batched over
-  points; points whose certificate fails get the exact norm from
-  :func:`schedule.norms.h_infinity_norm`;
+  gamma, passing when the certified norm is at most ``gamma (1 + gamma_tolerance)``
+  (:class:`PassCriterion`, the one place the threshold is worked out). The norm comes
+  from the package's one norm route, :func:`schedule.norms.h_infinity_norms`
+  (two-step level-set method of Boyd, Balakrishnan and Kabamba 1989 and Bruinsma
+  and Steinbuch 1990, batched over points, accurate to ``NORM_RTOL``): a point
+  passes only when the certified upper bound is below the level, and a norm in doubt
+  fails towards "above" with the reason;
 - disk margins (loop at a time and all loops at once) at the plant input and
   output and classical margins at the plant input (:mod:`schedule.margins`),
   on the physical loop ``u -> y``. It is taken from the generalized plant's
@@ -40,21 +40,17 @@ from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
+from .design_file import CheckSpec
 from .errors import InputError, ScheduleError
-from .margins import (
-    FrequencyResponder,
-    classical_margins,
-    default_frequencies,
-    disk_margins,
-    sigma_max,
-)
+from .margins import classical_margins, disk_margins
+from .norms import closed_loop_many, h_infinity_norms
 from .types import Family, point_text
 
 __all__ = [
     "CheckSettings",
     "CheckResult",
-    "closed_loop_many",
-    "hinf_norms_many",
+    "PassCriterion",
+    "NORM_RTOL",
     "check_arrays",
     "check_points",
     "check_points_for",
@@ -65,6 +61,8 @@ __all__ = [
 ]
 
 PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
+NORM_RTOL = 1e-8  # relative accuracy of the closed-loop norms (certified upper bound)
+_DEFAULTS = CheckSpec()  # the one list of check defaults (the design file's [check] table)
 WEAKER = ("interpolated plant: the family's own interpolated model, not the true plant - a "
           "weaker check; add a model or a validation file to the design")
 
@@ -73,6 +71,9 @@ WEAKER = ("interpolated plant: the family's own interpolated model, not the true
 @dataclass(frozen=True)
 class CheckSettings:
     """What to check and the pass thresholds.
+
+    The defaults of the fields shared with the design file's [check] table come from
+    :class:`schedule.design_file.CheckSpec` (one list).
 
     samples, sampler, seed : random in-between samples ("sobol" or "latin_hypercube").
     centres, midpoints, loo, grid : include grid cell centres, grid edge
@@ -95,17 +96,17 @@ class CheckSettings:
     chunk : points per work chunk (parallel runs).
     """
 
-    samples: int = 64
-    sampler: str = "sobol"
-    seed: int = 0
+    samples: int = _DEFAULTS.samples
+    sampler: str = _DEFAULTS.sampler
+    seed: int = _DEFAULTS.seed
     centres: bool = True
     midpoints: bool = True
     loo: bool = True
     grid: bool = True
     points_file: str | None = None
-    gamma_tolerance: float = 0.02
-    gain_margin_db: float = 6.0
-    phase_margin_deg: float = 45.0
+    gamma_tolerance: float = _DEFAULTS.gamma_tolerance
+    gain_margin_db: float = _DEFAULTS.gain_margin_db
+    phase_margin_deg: float = _DEFAULTS.phase_margin_deg
     loo_gates: bool | None = None
     gamma_opt: bool = True
     rate: bool = True
@@ -138,7 +139,75 @@ class CheckSettings:
             raise InputError(f"chunk={self.chunk!r} must be a positive integer")
 
 
-# ----------------------------------------------------------------------------- batched LFT
+# ----------------------------------------------------------------------------- criterion
+@dataclass(frozen=True)
+class PassCriterion:
+    """What a frozen point must meet to pass: the one place the thresholds are applied.
+
+    A point passes when its closed loop is stable (:func:`schedule.norms.stability`), its
+    certified closed-loop norm is at most ``norm_limit = gamma (1 + gamma_tolerance)`` and
+    (for a stable loop) the loop-at-a-time disk margins at the plant input reach
+    ``gain_margin_db`` and ``phase_margin_deg``. The command line and the report only
+    display :meth:`describe` and :attr:`norm_limit`.
+    """
+
+    gamma: float
+    gamma_tolerance: float = _DEFAULTS.gamma_tolerance
+    gain_margin_db: float = _DEFAULTS.gain_margin_db
+    phase_margin_deg: float = _DEFAULTS.phase_margin_deg
+
+    @classmethod
+    def from_settings(cls, gamma: float, settings: CheckSettings) -> PassCriterion:
+        return cls(float(gamma), float(settings.gamma_tolerance),
+                   float(settings.gain_margin_db), float(settings.phase_margin_deg))
+
+    @property
+    def norm_limit(self) -> float:
+        """The largest certified closed-loop norm that passes, ``gamma (1 + tolerance)``."""
+        return self.gamma * (1.0 + self.gamma_tolerance)
+
+    def describe(self) -> str:
+        """The criterion in one line (for the command line and the report)."""
+        return (f"stable, certified closed-loop norm <= gamma (1 + {self.gamma_tolerance:g}) = "
+                f"{self.norm_limit:.6g}, input disk margins >= {self.gain_margin_db:g} dB / "
+                f"{self.phase_margin_deg:g} deg (common practice)")
+
+    def norm_passes(self, values: dict) -> np.ndarray:
+        """(M,) stable and certified norm upper bound at most :attr:`norm_limit`."""
+        return np.asarray(values["stable"], bool) & (
+            np.asarray(values["norm_bound"], float) <= self.norm_limit)
+
+    def judge(self, values: dict) -> tuple[np.ndarray, list[str]]:
+        """``(passed (M,), reasons)``: each reason a one-line text, "" for a pass."""
+        M = len(values["norm"])
+        ok_norm = self.norm_passes(values)
+        passed = np.ones(M, dtype=bool)
+        reasons: list[str] = []
+        limit = self.norm_limit
+        for i in range(M):
+            why = []
+            stable = bool(values["stable"][i])
+            if not stable:
+                why.append(str(values["stability_status"][i]))
+            elif not ok_norm[i]:
+                status = str(values["norm_status"][i])
+                if status:
+                    why.append(f"norm not certified below {limit:.4g} ({status}); "
+                               f"counted as above")
+                else:
+                    why.append(f"norm {values['norm'][i]:.4g} > gamma (1 + tol) = {limit:.4g}")
+            if stable and values["in_gain_db"][i] < self.gain_margin_db:
+                why.append(f"input disk gain margin {values['in_gain_db'][i]:.2f} dB < "
+                           f"{self.gain_margin_db:g} dB")
+            if stable and values["in_phase_deg"][i] < self.phase_margin_deg:
+                why.append(f"input disk phase margin {values['in_phase_deg'][i]:.1f} deg < "
+                           f"{self.phase_margin_deg:g} deg")
+            passed[i] = not why
+            reasons.append("; ".join(why))
+        return passed, reasons
+
+
+# ----------------------------------------------------------------------------- the kernel
 def _stacked(P: dict, keys) -> dict:
     out = {}
     for k in keys:
@@ -147,163 +216,44 @@ def _stacked(P: dict, keys) -> dict:
     return out
 
 
-def closed_loop_many(P: dict, K: dict):
-    """Lower LFT of stacked generalized plants with stacked controllers ``u = K y``.
-
-    Same formulas as :func:`schedule.norms.closed_loop` (Zhou, Doyle and Glover
-    1996, sec. 10.1), vectorized over the leading point index:
-    with ``M = (I - D22 DK)^-1``, ``N = I + DK M D22``::
-
-        Acl = [[A + B2 DK M C2, B2 N CK], [BK M C2, AK + BK M D22 CK]]
-        Bcl = [[B1 + B2 DK M D21], [BK M D21]]
-        Ccl = [C1 + D12 DK M C2, D12 N CK]
-        Dcl = D11 + D12 DK M D21
-
-    Raises
-    ------
-    ScheduleError (PlantError)
-        If ``I - D22 DK`` is singular at a point (the message names it).
-    """
-    from .errors import PlantError
-
-    P = _stacked(P, PLANT_KEYS)
-    K = _stacked(K, ("A", "B", "C", "D"))
-    A, B1, B2, C1, C2 = (P[k] for k in ("A", "B1", "B2", "C1", "C2"))
-    D11, D12, D21, D22 = (P[k] for k in ("D11", "D12", "D21", "D22"))
-    AK, BK, CK, DK = (K[k] for k in ("A", "B", "C", "D"))
-    ny = C2.shape[1]
-    W = np.eye(ny) - D22 @ DK
-    cond = np.linalg.cond(W)
-    bad = ~np.isfinite(cond) | (cond > 1e12)
-    if np.any(bad):
-        i = int(np.flatnonzero(bad)[0])
-        raise PlantError(f"closed loop is not well posed at check point {i} (I - D22 DK has "
-                         f"condition {cond[i]:.2e}); the controller feedthrough is too large")
-    M = np.linalg.inv(W)
-    DKM = DK @ M
-    N = np.eye(DK.shape[1]) + DKM @ D22
-    Acl = np.concatenate([
-        np.concatenate([A + B2 @ DKM @ C2, B2 @ N @ CK], axis=2),
-        np.concatenate([BK @ M @ C2, AK + BK @ M @ D22 @ CK], axis=2)], axis=1)
-    Bcl = np.concatenate([B1 + B2 @ DKM @ D21, BK @ M @ D21], axis=1)
-    Ccl = np.concatenate([C1 + D12 @ DKM @ C2, D12 @ N @ CK], axis=2)
-    Dcl = D11 + D12 @ DKM @ D21
-    return Acl, Bcl, Ccl, Dcl
-
-
-def _below_level(A, B, C, D, level: np.ndarray) -> np.ndarray:
-    """Hamiltonian test, batched: True where ||G||_inf < level (A assumed stable).
-
-    With ``R = level^2 I - D'D > 0`` the norm is below the level iff
-    ``H = [[A + B R^-1 D'C, B R^-1 B'], [-C'(I + D R^-1 D')C, -(A + B R^-1 D'C)']]``
-    has no eigenvalue on the imaginary axis (Boyd, Balakrishnan and Kabamba 1989).
-    """
-    M = A.shape[0]
-    out = np.zeros(M, dtype=bool)
-    sd = sigma_max(D) if D.size else np.zeros(M)
-    ok = sd < level
-    if not np.any(ok):
-        return out
-    A, B, C, D, lv = A[ok], B[ok], C[ok], D[ok], level[ok]
-    Dt = np.swapaxes(D, 1, 2)
-    R = lv[:, None, None] ** 2 * np.eye(D.shape[2]) - Dt @ D
-    Ri = np.linalg.inv(R)
-    Ah = A + B @ Ri @ Dt @ C
-    Ct = np.swapaxes(C, 1, 2)
-    H = np.concatenate([
-        np.concatenate([Ah, B @ Ri @ np.swapaxes(B, 1, 2)], axis=2),
-        np.concatenate([-Ct @ (np.eye(D.shape[1]) + D @ Ri @ Dt) @ C, -np.swapaxes(Ah, 1, 2)],
-                       axis=2)], axis=1)
-    lam = np.linalg.eigvals(H)
-    # candidates: eigenvalues near the axis (loose tolerance); each is confirmed by
-    # evaluating sigma_max at its frequency (Bruinsma and Steinbuch 1990), so a
-    # slow stable mode mistaken for an axis eigenvalue cannot fail a point.
-    near = np.abs(lam.real) <= 1e-6 * np.maximum(1.0, np.abs(lam))
-    res = np.ones(lam.shape[0], dtype=bool)
-    for i in np.flatnonzero(near.any(axis=1)):
-        w = np.unique(np.abs(lam[i][near[i]].imag))
-        G = C[i] @ np.linalg.solve(1j * w[:, None, None] * np.eye(A.shape[1]) - A[i],
-                                   np.broadcast_to(B[i], (w.size,) + B[i].shape)) + D[i]
-        sig = sigma_max(G)
-        res[i] = not np.any(sig >= lv[i] * (1.0 - 1e-6))
-    out[ok] = res
-    return out
-
-
-def hinf_norms_many(A, B, C, D, level=None, responder: FrequencyResponder | None = None):
-    """H-infinity norms of many stable systems at once.
-
-    Returns ``(norm, peak_frequency, below)``: grid-plus-golden-section values
-    (lower bounds, exact to the refinement tolerance at smooth peaks); where a
-    ``level`` (M,) is given, ``below`` is the Hamiltonian certificate
-    ``||G|| < level`` and every point where the certificate fails gets the
-    exact value of :func:`schedule.norms.h_infinity_norm`.
-    """
-    from .margins import _refine_peak
-
-    R = responder or FrequencyResponder(A, B, C, D)
-    Mn = R.N
-    w = default_frequencies(R.eigenvalues, count=120)
-    H = R(w)
-    vals = sigma_max(H)
-
-    def fun(ww):
-        return sigma_max(R(ww[:, None])[:, 0])
-
-    norm, peak = _refine_peak(fun, w, vals, iterations=30)
-    dinf = sigma_max(R.D) if R.D.size else np.zeros(Mn)
-    peak = np.where(dinf > norm, np.inf, peak)
-    norm = np.maximum(norm, dinf)
-    if level is None:
-        return norm, peak, None
-    level = np.broadcast_to(np.asarray(level, dtype=float), (Mn,))
-    below = _below_level(R.A, R.B, R.C, R.D, level)
-    from .norms import h_infinity_norm
-
-    for i in np.flatnonzero(~below & (norm < level)):
-        try:
-            nv, pf = h_infinity_norm(R.A[i], R.B[i], R.C[i], R.D[i], rtol=1e-8)
-        except ScheduleError:
-            continue
-        norm[i], peak[i] = max(norm[i], float(nv)), float(pf)
-    return norm, peak, below
-
-
-# ----------------------------------------------------------------------------- the kernel
-def check_arrays(P: dict, K: dict, gamma: float, gamma_tolerance: float = 0.02,
+def check_arrays(P: dict, K: dict, gamma: float,
+                 gamma_tolerance: float = _DEFAULTS.gamma_tolerance,
                  classical: bool = True) -> dict[str, np.ndarray]:
     """All frozen-point numbers for stacked plants ``P`` and controllers ``K`` (plain arrays).
 
-    Returns a dict of arrays over the M points: ``spectral_abscissa``, ``stable``,
-    ``norm``, ``peak_frequency``, ``ratio`` (norm / gamma), ``norm_ok``; disk
-    margins ``in_loop_alpha`` (M, nu), ``in_all_alpha``, ``out_loop_alpha``
-    (M, ny), ``out_all_alpha`` and the derived ``in_gain_db``, ``in_phase_deg``
-    (worst channel, loop at a time), ``in_all_gain_db``, ``in_all_phase_deg``,
-    ``out_gain_db``, ``out_phase_deg``, ``out_all_gain_db``, ``out_all_phase_deg``;
-    with ``classical`` also ``in_classical_gain_db``, ``in_classical_phase_deg``
-    (worst channel). A module-level function of arrays only, so it can run on
-    worker processes or a dask cluster.
+    Returns a dict of arrays over the M points: ``spectral_abscissa``, ``stable`` and
+    ``stability_status`` (the package's one predicate and its one-line reason, "" when
+    stable); ``norm`` (an attained value of sigma_max: a lower bound), ``norm_bound`` (the
+    certified upper bound, inf where not certified), ``norm_status`` ("" or why the norm is
+    in doubt), ``peak_frequency``, ``ratio`` (norm / gamma), ``norm_ok``
+    (:meth:`PassCriterion.norm_passes`); disk margins ``in_loop_alpha`` (M, nu),
+    ``in_all_alpha``, ``out_loop_alpha`` (M, ny), ``out_all_alpha`` and the derived
+    ``in_gain_db``, ``in_phase_deg`` (worst channel, loop at a time),
+    ``in_all_gain_db``, ``in_all_phase_deg``, ``out_gain_db``, ``out_phase_deg``,
+    ``out_all_gain_db``, ``out_all_phase_deg``; with ``classical`` also
+    ``in_classical_gain_db``, ``in_classical_phase_deg`` (worst channel). A
+    module-level function of arrays only, so it can run on worker processes or a dask
+    cluster.
     """
     P = _stacked(P, PLANT_KEYS)
     K = _stacked(K, ("A", "B", "C", "D"))
     Acl, Bcl, Ccl, Dcl = closed_loop_many(P, K)
-    R = FrequencyResponder(Acl, Bcl, Ccl, Dcl)
-    sa = R.spectral_abscissa
-    stable = sa < -1e-9 * np.maximum(1.0, np.abs(R.eigenvalues).max(axis=1, initial=0.0))
+    cert = h_infinity_norms(Acl, Bcl, Ccl, Dcl, rtol=NORM_RTOL)
+    st = cert.stability
     M = Acl.shape[0]
-    level = gamma * (1.0 + gamma_tolerance) * np.ones(M)
-    norm = np.full(M, np.inf)
-    peak = np.full(M, np.nan)
-    below = np.zeros(M, dtype=bool)
-    if np.any(stable):
-        idx = np.flatnonzero(stable)
-        sub = FrequencyResponder(Acl[idx], Bcl[idx], Ccl[idx], Dcl[idx])
-        n_, p_, b_ = hinf_norms_many(None, None, None, None, level[idx], responder=sub)
-        norm[idx], peak[idx], below[idx] = n_, p_, b_
+    if st is None:  # no closed-loop states: a static loop is stable
+        sa, stable = np.full(M, -np.inf), np.ones(M, bool)
+        why = np.array([""] * M, dtype=object)
+    else:
+        sa, stable = st.abscissa, st.stable
+        why = np.array([st.reason(i) for i in range(M)], dtype=object)
+    status = np.array([s if stable[i] else "" for i, s in enumerate(cert.status)], dtype=object)
     out: dict[str, np.ndarray] = {
-        "spectral_abscissa": sa, "stable": stable, "norm": norm, "peak_frequency": peak,
-        "ratio": norm / gamma, "norm_ok": stable & below,
+        "spectral_abscissa": sa, "stable": stable, "stability_status": why,
+        "norm": cert.norm, "norm_bound": cert.upper, "norm_status": status,
+        "peak_frequency": cert.peak, "ratio": cert.norm / gamma,
     }
+    out["norm_ok"] = PassCriterion(float(gamma), float(gamma_tolerance)).norm_passes(out)
     G = (P["A"], P["B2"], P["C2"], P["D22"])
     Kt = (K["A"], K["B"], K["C"], K["D"])
     for at, tag in (("input", "in"), ("output", "out")):
@@ -505,6 +455,11 @@ class CheckResult:
     gating: np.ndarray | None = None
 
     @property
+    def criterion(self) -> PassCriterion:
+        """The pass criterion the verdict applied (for display)."""
+        return PassCriterion.from_settings(self.gamma, self.settings)
+
+    @property
     def gates(self) -> np.ndarray:
         """(M,) True where the point counts in the overall verdict (see CheckSettings.loo_gates)."""
         if self.gating is None:
@@ -578,36 +533,17 @@ class CheckResult:
 
 
 def _f(x):
-    """A JSON-safe float (inf and nan become strings; bools stay bools)."""
+    """A JSON-safe float (inf and nan become strings; bools and strings stay)."""
     if isinstance(x, (bool, np.bool_)):
         return bool(x)
+    if isinstance(x, str):
+        return x
     x = float(x)
     if np.isnan(x):
         return "nan"
     if np.isinf(x):
         return "inf" if x > 0 else "-inf"
     return x
-
-
-def _verdict(values: dict, s: CheckSettings, gamma: float) -> tuple[np.ndarray, list]:
-    M = len(values["norm"])
-    passed = np.ones(M, dtype=bool)
-    reasons = [[] for _ in range(M)]
-    for i in range(M):
-        if not values["stable"][i]:
-            reasons[i].append(f"closed loop unstable (spectral abscissa "
-                              f"{values['spectral_abscissa'][i]:.3g})")
-        elif not values["norm_ok"][i]:
-            reasons[i].append(f"norm {values['norm'][i]:.4g} > gamma (1 + tol) = "
-                              f"{gamma * (1 + s.gamma_tolerance):.4g}")
-        if values["stable"][i] and values["in_gain_db"][i] < s.gain_margin_db:
-            reasons[i].append(f"input disk gain margin {values['in_gain_db'][i]:.2f} dB < "
-                              f"{s.gain_margin_db:g} dB")
-        if values["stable"][i] and values["in_phase_deg"][i] < s.phase_margin_deg:
-            reasons[i].append(f"input disk phase margin {values['in_phase_deg'][i]:.1f} deg < "
-                              f"{s.phase_margin_deg:g} deg")
-        passed[i] = not reasons[i]
-    return passed, ["; ".join(r) for r in reasons]
 
 
 # ----------------------------------------------------------------------------- proposals
@@ -827,7 +763,7 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
         if s.grid:
             grid_idx = np.flatnonzero(kinds_all == "grid")
             values["gamma_opt"][grid_idx] = np.asarray(family.gamma_opt, float)[rows]
-    passed, why = _verdict(values, s, family.gamma)
+    passed, why = PassCriterion.from_settings(family.gamma, s).judge(values)
     result = CheckResult(names, tuple(v.unit for v in family.variables), float(family.gamma), s,
                          pts_all, kinds_all, src_all, values, passed, why, notes=notes)
     if result.weaker:

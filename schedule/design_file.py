@@ -245,6 +245,9 @@ class InterpolationSpec:
 
 @dataclass(frozen=True)
 class CheckSpec:
+    """The [check] table. Its field defaults are the package's one list of check defaults
+    (``schedule.check.CheckSettings`` and the command line take theirs from here)."""
+
     samples: int = 64
     sampler: str = "sobol"
     seed: int = 0
@@ -996,20 +999,23 @@ def _parse_check(r: _Reader, t: dict) -> CheckSpec:
     k = "check"
     r.keys(t, k, ("samples", "sampler", "seed", "gamma_tolerance", "gain_margin_db",
                   "phase_margin_deg"))
-    pm = r.number(t, k, "phase_margin_deg", 45.0, nonneg=True)
+    dflt = CheckSpec()
+    pm = r.number(t, k, "phase_margin_deg", dflt.phase_margin_deg, nonneg=True)
     if pm >= 180.0:
         raise r.fail("check.phase_margin_deg", f"value {pm:g} is not below 180",
                      "give a phase margin in degrees, 0 <= value < 180")
-    samples = r.integer(t, k, "samples", 64, minimum=0)
+    samples = r.integer(t, k, "samples", dflt.samples, minimum=0)
     if samples > MAX_CHECK_SAMPLES:
         raise r.fail("check.samples", f"value {samples} is above {MAX_CHECK_SAMPLES}",
                      f"give at most {MAX_CHECK_SAMPLES} samples (refine where checks fail "
                      "instead)")
     return CheckSpec(samples=samples,
-                     sampler=r.choice(t, k, "sampler", "sobol", SAMPLERS),
-                     seed=r.integer(t, k, "seed", 0, minimum=0),
-                     gamma_tolerance=r.number(t, k, "gamma_tolerance", 0.02, nonneg=True),
-                     gain_margin_db=r.number(t, k, "gain_margin_db", 6.0, nonneg=True),
+                     sampler=r.choice(t, k, "sampler", dflt.sampler, SAMPLERS),
+                     seed=r.integer(t, k, "seed", dflt.seed, minimum=0),
+                     gamma_tolerance=r.number(t, k, "gamma_tolerance", dflt.gamma_tolerance,
+                                              nonneg=True),
+                     gain_margin_db=r.number(t, k, "gain_margin_db", dflt.gain_margin_db,
+                                             nonneg=True),
                      phase_margin_deg=pm)
 
 

@@ -128,15 +128,22 @@ def controller_chunk(stack: dict[str, np.ndarray], gamma: float
     controller matrices and observer pieces (zeros where a plant failed) and one
     reason per plant ("" on success). Stacks keep the hand-back to the caller cheap.
     """
-    from .hinf import central_controller_checked
+    from .hinf import central_controllers
 
     k = stack["A"].shape[0]
     ctrl: dict[str, np.ndarray] = {}
     pieces: dict[str, np.ndarray] = {}
     reasons = [""] * k
-    for i, p in enumerate(_plant_objects(stack)):
-        try:  # the plant conditions were checked in the gamma phase
-            c = central_controller_checked(p, gamma)
+    # the plant conditions were checked in the gamma phase; certification is batched
+    try:
+        made = central_controllers(_plant_objects(stack), gamma)
+    except ScheduleError as exc:  # a bad gamma: every plant fails the same way
+        made = [(None, _one_line(exc))] * k
+    for i, (c, why) in enumerate(made):
+        if c is None:
+            reasons[i] = " ".join(why.split())
+            continue
+        try:
             mats = {key: np.asarray(getattr(c, key), dtype=float) for key in CONTROLLER_KEYS}
             bad = [key for key, v in mats.items() if not np.isfinite(v).all()]
             if bad:

@@ -9,8 +9,12 @@ Zhou, Doyle and Glover 1996, ch. 14 and section 17.1 "general case"):
 
 1. Normalization. Orthogonal rotations of ``z`` and ``w`` and invertible
    scalings of ``u`` and ``y`` (from SVDs) give ``D12 = [0; I]`` and
-   ``D21 = [0, I]``; they do not change the H-infinity norm and are undone
-   in the controller (``K = Tu K~ Ty``).
+   ``D21 = [0, I]``; a diagonal change of state coordinates balances the plant and
+   one scalar each for ``z`` and ``w`` brings gamma near 1
+   (:meth:`schedule.plant.GeneralizedPlant.scaling`). None of this changes what is
+   achievable (gamma scales with the units of z and w), and all of it is undone in the
+   controller (``K = Tu K~ Ty`` in the plant's state coordinates), so the answers do not
+   depend on units or coordinates.
 2. D22 is removed by loop shifting: design ``K0`` for ``D22 = 0`` and use
    ``K = K0 (I + D22 K0)^-1`` (well-posed when ``I + D22 D_K0`` is
    invertible).
@@ -38,6 +42,10 @@ Zhou, Doyle and Glover 1996, ch. 14 and section 17.1 "general case"):
    In the familiar case D11 = 0, D12'C1 = 0, B1 D21' = 0 this is
    ``Ak = A + gamma^-2 B1 B1'X - B2 B2'X - Z Y C2' C2``, ``Bk = Z Y C2'``,
    ``Ck = -B2'X``: the controller state is an estimate of the plant state.
+
+Every controller returned is certified on the plant (:func:`certify_controller`): the
+closed loop is stable and its norm at most gamma (1 + 1e-6), or a NumericalError says
+why (ill-conditioning near the optimum or for large gamma) and what to do.
 
 Sign convention: ``u = K y``, closed loop = lower LFT (see
 :func:`schedule.norms.closed_loop`).
@@ -82,9 +90,11 @@ from .errors import (
     PlantError,
     ScheduleError,
 )
-from .plant import GeneralizedPlant
+from .norms import closed_loop_many, h_infinity_norms
+from .plant import PLANT_KEYS, GeneralizedPlant
 from .riccati import (
     RESIDUAL_RTOL,
+    SCALING_EXP,
     _symplectic_scaling,
     axis_distance,
     solve_riccati,
@@ -101,15 +111,22 @@ __all__ = [
     "optimal_gamma",
     "central_controller",
     "central_controller_checked",
+    "certify_controller",
+    "central_controllers",
     "assemble_controller",
     "feasibility",
     "synthesize_many",
 ]
 
-PSD_RTOL = 1e-8  # min eig(X) >= -PSD_RTOL * max(1, ||X||) counts as X >= 0
+PSD_RTOL = 1e-8  # min eig >= -PSD_RTOL max(1, ||X||) of the balanced X counts as X >= 0
 COUPLING_RTOL = 1e-9  # rho(XY) must be below gamma^2 (1 - COUPLING_RTOL)
 Z_COND_WARN = 1e10  # warn above this condition number of Z
-GAMMA_MAX = 1e12  # doubling stops here: no upper bound means infeasible
+GAMMA_MAX = 1e12  # doubling stops here (scaled gamma): no upper bound means infeasible
+ZERO_INFIMUM = 1e-10  # scaled gamma below which a search with no lower end stops
+NEAR_SINGULAR_RATIO = 1e-5  # D12 / D21 singular value ratio named when the search fails
+DESIGN_MARGIN = 1e-3  # smallest relative step above gamma_opt we advise for a controller
+CONTROLLER_RTOL = 1e-6  # a controller's certified closed-loop norm may exceed gamma by this
+RESCALE_FACTOR = 8.0  # the quick test re-balances its Hamiltonian when gamma moves this much
 SHIFT_COND_MAX = 1e10  # condition number of I + Dk D22 above this: loop shift ill-posed
 
 PIECE_KEYS = (
@@ -192,7 +209,14 @@ class Controller:
 
 @dataclass(frozen=True)
 class Normalized:
-    """Plant with D12 = [0; I], D21 = [0, I] (up to rounding) and the transforms."""
+    """The plant in the scaled coordinates of :meth:`GeneralizedPlant.scaling`.
+
+    ``D12 = [0; I]``, ``D21 = [0, I]`` (up to rounding); the states are
+    ``x~ = diag(t)^-1 x``; ``z~ = Sz z``, ``w = Sw' w~``, ``u = Tu u~``, ``y~ = Ty y``;
+    the gamma of this problem is ``gamma / gamma_scale`` (near 1 for a problem whose
+    optimum is of the order of its data). ``d11_bound`` is the Parrott-type bound in
+    these units.
+    """
 
     A: np.ndarray
     B1: np.ndarray
@@ -210,15 +234,22 @@ class Normalized:
     d11_bound: float = float("nan")
     x_side: _Side | None = None
     y_side: _Side | None = None
+    t: np.ndarray | None = None
+    gamma_scale: float = 1.0
+    d12_ratio: float = 1.0
+    d21_ratio: float = 1.0
 
 
 # ============================================================ normalization
 def normalize(plant: GeneralizedPlant) -> Normalized:
-    """Rotate z, w and scale u, y so that ``D12 = [0; I]`` and ``D21 = [0, I]``.
+    """The plant in well-scaled coordinates: ``D12 = [0; I]``, ``D21 = [0, I]``, balanced
+    states and a gamma normalized near 1 (see :class:`schedule.plant.PlantScaling`).
 
-    From the SVDs ``D12 = U S V'`` and ``D21 = U2 [S2 0] V2'``:
-    ``Sz = [U(:, nu:)'; U(:, :nu)']``, ``Tu = V S^-1``,
-    ``Sw = [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2'``.
+    With the SVDs ``D12 = U S V'`` and ``D21 = U2 [S2 0] V2'``:
+    ``Sz = [U(:, nu:)'; U(:, :nu)'] / sigma_z``, ``Tu = sigma_z V S^-1``,
+    ``Sw = sigma_w [V2(:, ny:)'; V2(:, :ny)']``, ``Ty = S2^-1 U2' / sigma_w`` and the
+    balanced state coordinates ``x = diag(t) x~``; gamma of the scaled problem is
+    ``gamma / gamma_scale``, ``gamma_scale = sigma_z / sigma_w``.
     """
     if isinstance(plant, GeneralizedPlant):  # kept on the plant (by content)
         return plant.memo("normalized", lambda: _normalize(plant))
@@ -226,32 +257,21 @@ def normalize(plant: GeneralizedPlant) -> Normalized:
 
 
 def _normalize(plant: GeneralizedPlant) -> Normalized:
-    nw, nu, nz, ny = plant.nw, plant.nu, plant.nz, plant.ny
-    u, s, vt = np.linalg.svd(plant.D12)
-    if s[-1] <= 1e-12 * max(s[0], 1e-300):
-        raise PlantError(
-            f"D12 ({nz}x{nu}) is rank deficient (smallest singular value {s[-1]:.2e}); "
-            "add a weight on the control effort"
-        )
-    Sz = np.vstack([u[:, nu:].T, u[:, :nu].T])
-    Tu = vt.T / s[None, :]
-    u2, s2, vt2 = np.linalg.svd(plant.D21)
-    if s2[-1] <= 1e-12 * max(s2[0], 1e-300):
-        raise PlantError(
-            f"D21 ({ny}x{nw}) is rank deficient (smallest singular value {s2[-1]:.2e}); "
-            "add a measurement-noise weight"
-        )
-    Sw = np.vstack([vt2[ny:], vt2[:ny]])
-    Ty = u2.T / s2[:, None]
-    return _apply_transforms(plant, Sz, Sw, Tu, Ty)
+    sc = plant.scaling()
+    Sz = sc.Rz / sc.sigma_z
+    Tu = sc.Tu0 * sc.sigma_z
+    Sw = sc.Rw * sc.sigma_w
+    Ty = sc.Ty0 / sc.sigma_w
+    return _apply_transforms(plant, Sz, Sw, Tu, Ty, sc)
 
 
-def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
-    A = plant.A
-    B1 = plant.B1 @ Sw.T
-    B2 = plant.B2 @ Tu
-    C1 = Sz @ plant.C1
-    C2 = Ty @ plant.C2
+def _apply_transforms(plant, Sz, Sw, Tu, Ty, sc) -> Normalized:
+    t = sc.t
+    A = plant.A * (t[None, :] / t[:, None])
+    B1 = (plant.B1 / t[:, None]) @ Sw.T
+    B2 = (plant.B2 / t[:, None]) @ Tu
+    C1 = Sz @ (plant.C1 * t[None, :])
+    C2 = Ty @ (plant.C2 * t[None, :])
     D11 = Sz @ plant.D11 @ Sw.T
     D12 = Sz @ plant.D12 @ Tu
     D21 = Ty @ plant.D21 @ Sw.T
@@ -273,6 +293,10 @@ def _apply_transforms(plant, Sz, Sw, Tu, Ty) -> Normalized:
         d11_bound=_parrott_of(D11, dims),
         x_side=_side(A, B1, B2, C1, D11, D12),
         y_side=_side(A.T, C1.T, C2.T, B1.T, D11.T, D21.T),
+        t=t,
+        gamma_scale=sc.gamma_scale,
+        d12_ratio=sc.d12_ratio,
+        d21_ratio=sc.d21_ratio,
     )
 
 
@@ -287,13 +311,14 @@ def _d11_split(D: np.ndarray, dims):
 
 
 def parrott_bound(plant: GeneralizedPlant | Normalized) -> float:
-    """``max(sigma_max[D1111, D1112], sigma_max[D1111', D1121'])`` of the normalized D11.
+    """``max(sigma_max[D1111, D1112], sigma_max[D1111', D1121'])`` of the normalized D11,
+    in the plant's own units.
 
     Every achievable gamma is strictly larger (Glover and Doyle 1988; Zhou,
     Doyle and Glover 1996, Theorem 17.1). Zero when D11 = 0.
     """
     P = plant if isinstance(plant, Normalized) else normalize(plant)
-    return P.d11_bound
+    return P.d11_bound * P.gamma_scale
 
 
 def _parrott_of(D11: np.ndarray, dims) -> float:
@@ -328,6 +353,20 @@ def _side(A, B1, B2, C1, D11, D12) -> _Side:
     return _Side(A, B, B1.shape[1], D1.T @ D1, S, np.hstack([S, B.T]), C1.T @ C1)
 
 
+def _cancelled(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a - b`` with the entries that cancel to rounding level set to exactly zero.
+
+    ``Q = C1'C1 - C1'D1. Rm^-1 D1.'C1`` vanishes identically in some problems (the
+    one-block problem); computed, it is rounding noise of size ``eps ||C1'C1||``, and the
+    symplectic balancing at small gamma scales Q up by ``||R|| / ||A||``, which turns that
+    noise into a spurious indefinite X. An entry is kept when it exceeds 64 eps times the
+    sizes of the two terms it came from.
+    """
+    d = a - b
+    d[np.abs(d) <= 64.0 * np.finfo(float).eps * (np.abs(a) + np.abs(b))] = 0.0
+    return d
+
+
 def _x_data(side: _Side, gamma: float):
     """Riccati data (Ah, Rh, Qh) of the X equation and the pieces needed for F.
 
@@ -341,7 +380,7 @@ def _x_data(side: _Side, gamma: float):
     sol = np.linalg.solve(Rm, side.SBt)
     Ah = side.A - side.B @ sol[:, :n]
     Rh = -side.B @ sol[:, n:]
-    Qh = side.CtC - side.S.T @ sol[:, :n]
+    Qh = _cancelled(side.CtC, side.S.T @ sol[:, :n])
     Rh = 0.5 * (Rh + Rh.T)
     Qh = 0.5 * (Qh + Qh.T)
     return Ah, Rh, Qh, Rm, side.S, side.B
@@ -356,33 +395,36 @@ def _primal(P: Normalized):
     return P.A, P.B1, P.B2, P.C1, P.D11, P.D12
 
 
-def _solve_side(data, gamma: float, name: str, gain: bool = True):
-    """Solve one Riccati side; returns (X, gain or None, reason)."""
+def _solve_side(data, gamma: float, name: str, gain: bool = True, shown: float | None = None):
+    """Solve one Riccati side at the scaled gamma; returns (X, gain or None, reason).
+
+    ``shown`` is gamma in the plant's units, for the messages."""
+    shown = gamma if shown is None else shown
     try:
         Ah, Rh, Qh, Rm, S, B = _x_data(data, gamma)
     except np.linalg.LinAlgError:
         return (
             None,
             None,
-            (f"{name} Riccati data singular at gamma={gamma:.6g} (gamma at the D11 bound)"),
+            (f"{name} Riccati data singular at gamma={shown:.6g} (gamma at the D11 bound)"),
         )
     res = solve_riccati(Ah, Rh, Qh)
     if not res.ok:
         return (
             None,
             None,
-            (f"{name} Riccati has no stabilizing solution at gamma={gamma:.6g} ({res.reason})"),
+            (f"{name} Riccati has no stabilizing solution at gamma={shown:.6g} ({res.reason})"),
         )
     X = res.X
-    ev = res.eigenvalues
-    m = float(ev[0] / max(1.0, abs(ev[-1])))
+    ev = res.balanced_eigenvalues  # the sign is decided where X has its natural size 1
+    m = float(ev[0] / max(1.0, abs(ev[0]), abs(ev[-1])))
     if m < -PSD_RTOL:
         return (
             None,
             None,
             (
-                f"{name} not positive semidefinite at gamma={gamma:.6g} "
-                f"(min eigenvalue {m:.3e} relative to ||{name}||)"
+                f"{name} not positive semidefinite at gamma={shown:.6g} "
+                f"(min eigenvalue {m:.3e} relative to max(1, ||{name}||) in balanced coordinates)"
             ),
         )
     F = -np.linalg.solve(Rm, S + B.T @ X) if gain else None
@@ -393,15 +435,21 @@ def feasibility(plant: GeneralizedPlant | Normalized, gamma: float) -> str:
     """Empty string when gamma is achievable, else the one-line reason it is not.
 
     Tests, in order: the Parrott-type D11 bound, the X Riccati (stabilizing,
-    X >= 0), the Y Riccati (stabilizing, Y >= 0) and ``rho(XY) < gamma^2``.
+    X >= 0), the Y Riccati (stabilizing, Y >= 0) and ``rho(XY) < gamma^2``, all in the
+    scaled coordinates of :func:`normalize` (the answer does not depend on units).
     """
     P = plant if isinstance(plant, Normalized) else normalize(plant)
     return _solve_all(P, gamma, gains=False)[-1]
 
 
 def _solve_all(P: Normalized, gamma: float, gains: bool = True):
+    """The existence test at ``gamma`` (in the plant's units) on the scaled plant.
+
+    Returns ``(X, Y, F, L, rho, reason)`` of the scaled problem (``rho`` is rho(XY) there,
+    to be compared with the scaled gamma squared)."""
+    g = gamma / P.gamma_scale
     pb = P.d11_bound
-    if not gamma > pb * (1 + 1e-12):
+    if not g > pb * (1 + 1e-12):
         return (
             None,
             None,
@@ -409,18 +457,18 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
             None,
             np.nan,
             (
-                f"gamma={gamma:.6g} is not above the D11 bound {pb:.6g} "
+                f"gamma={gamma:.6g} is not above the D11 bound {pb * P.gamma_scale:.6g} "
                 "(max sigma_max of [D1111 D1112] and [D1111; D1121])"
             ),
         )
-    X, F, reason = _solve_side(P.x_side, gamma, "X", gains)
+    X, F, reason = _solve_side(P.x_side, g, "X", gains, gamma)
     if reason:
         return None, None, None, None, np.nan, reason
-    Y, Ft, reason = _solve_side(P.y_side, gamma, "Y", gains)
+    Y, Ft, reason = _solve_side(P.y_side, g, "Y", gains, gamma)
     if reason:
         return None, None, None, None, np.nan, reason
     rho = float(np.max(np.abs(np.linalg.eigvals(X @ Y))))
-    if rho >= gamma * gamma * (1 - COUPLING_RTOL):
+    if rho >= g * g * (1 - COUPLING_RTOL):
         return (
             None,
             None,
@@ -428,7 +476,7 @@ def _solve_all(P: Normalized, gamma: float, gains: bool = True):
             None,
             rho,
             (
-                f"coupling condition rho(XY)={rho:.6g} >= gamma^2={gamma * gamma:.6g} "
+                f"coupling condition rho(XY)/gamma^2={rho / (g * g):.6g} >= 1 "
                 f"at gamma={gamma:.6g}"
             ),
         )
@@ -460,10 +508,12 @@ class _QuickSide:
     (module docstring, step 3) is ``H = H0 + W Rm^-1 [D1.'C1, B']`` where
     ``H0 = [A, 0; -C1'C1, -A']`` and ``W = [-B; C1'D1.]``: one small solve, one
     product and one sum per gamma. A symplectic diagonal scaling (as in
-    :func:`schedule.riccati.solve_riccati`) is chosen at the first gamma and kept.
+    :func:`schedule.riccati.solve_riccati`) is chosen at the first gamma and chosen
+    again when gamma moves by more than a factor ``RESCALE_FACTOR`` from there (the
+    blocks of H grow like gamma^-2 at small gamma).
     """
 
-    __slots__ = ("n", "H0", "W", "SBt", "DtD", "E", "dd", "first")
+    __slots__ = ("n", "H0u", "Wu", "SBtu", "H0", "W", "SBt", "DtD", "E", "dd", "g0")
 
     def __init__(self, side: _Side):
         A = side.A
@@ -474,50 +524,56 @@ class _QuickSide:
         H0[:n, :n] = A
         H0[n:, :n] = -side.CtC
         H0[n:, n:] = -A.T
-        self.H0 = H0
-        self.W = np.vstack([-side.B, side.S.T])
-        self.SBt = side.SBt
+        self.H0u = self.H0 = H0
+        self.Wu = self.W = np.vstack([-side.B, side.S.T])
+        self.SBtu = self.SBt = side.SBt
         self.DtD = side.DtD
         E = np.zeros((m, m))
         E[np.arange(side.nw), np.arange(side.nw)] = 1.0
         self.E = E
         self.dd = None
-        self.first = True
+        self.g0 = None
 
-    def _scale(self, H: np.ndarray) -> np.ndarray:
+    def _scale(self, gamma: float, sol_u: np.ndarray) -> None:
+        """Choose the symplectic scaling for the unscaled H at this gamma."""
         n = self.n
+        H = self.H0u + self.Wu @ sol_u
         d = _symplectic_scaling(H[:n, :n], H[:n, n:], -H[n:, :n])
-        self.first = False
+        self.g0 = gamma
         if d is None:
-            return H
+            self.H0, self.W, self.SBt, self.dd = self.H0u, self.Wu, self.SBtu, None
+            return
         left = np.concatenate([1.0 / d, d])
         right = np.concatenate([d, 1.0 / d])
-        self.H0 = self.H0 * left[:, None] * right[None, :]
-        self.W = self.W * left[:, None]
-        self.SBt = self.SBt * right[None, :]
+        self.H0 = self.H0u * left[:, None] * right[None, :]
+        self.W = self.Wu * left[:, None]
+        self.SBt = self.SBtu * right[None, :]
         self.dd = d[:, None] * d[None, :]
-        return H * left[:, None] * right[None, :]
 
     def solve(self, gamma: float) -> tuple[np.ndarray | None, float, float, float]:
         """(X or None, psd measure, axis measure, largest eigenvalue of X): X >= 0
         stabilizing, else None; see :func:`_side_measure` and
         :func:`schedule.riccati.stable_solution`."""
+        Rm = self.DtD - (gamma * gamma) * self.E
         try:
-            sol = np.linalg.solve(self.DtD - (gamma * gamma) * self.E, self.SBt)
+            if self.g0 is None or not (1.0 / RESCALE_FACTOR < gamma / self.g0 < RESCALE_FACTOR):
+                self._scale(gamma, np.linalg.solve(Rm, self.SBtu))
+            sol = np.linalg.solve(Rm, self.SBt)
         except np.linalg.LinAlgError:
             return None, np.nan, np.nan, np.nan
         H = self.H0 + self.W @ sol
-        if self.first:
-            H = self._scale(H)
+        n = self.n
+        H[n:, :n] = -_cancelled(-self.H0[n:, :n], (self.W[n:] @ sol)[:, :n])
         hnorm = float(np.abs(H).sum(axis=0).max()) + 1e-300
         X, ev, code, _value, _margin, axis = stable_solution(H, self.n, hnorm)
         if code:
             return None, np.nan, (axis if code == 1 and axis > 0 else np.nan), np.nan
+        negative = ev[0] < -PSD_RTOL * max(1.0, abs(ev[0]), abs(ev[-1]))  # balanced X
         if self.dd is not None:
             X = X / self.dd
             ev = np.linalg.eigvalsh(X)
         meas = _side_measure(ev)
-        if ev[0] < -PSD_RTOL * max(1.0, abs(ev[-1])):
+        if negative:
             return None, (meas if meas > 0 else np.nan), np.nan, np.nan
         return X, meas, axis, float(ev[-1])
 
@@ -596,7 +652,7 @@ def _search_one(test, pb: float, rtol: float, hint: float | None = None) -> floa
     eps = 0.3 * math.log1p(rtol)
     close = 0.4 * math.log1p(rtol)
     for _ in range(400):
-        if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < 1e-10)):
+        if hi < math.inf and (hi <= lo * (1 + rtol) or (lo == 0 and hi < ZERO_INFIMUM)):
             break
         up = hi == math.inf
         down = not up and lo * step < hi
@@ -701,10 +757,11 @@ def _bracket(test, start: float, floor: float, what: str) -> tuple[float, float,
 
 
 def _side_ok(P: Normalized, side: str):
+    """Test of one Riccati side at a SCALED gamma."""
     data = P.x_side if side == "X" else P.y_side
 
     def test(g: float) -> bool:
-        return not _solve_side(data, g, side)[2]
+        return not _solve_side(data, g, side, shown=g * P.gamma_scale)[2]
 
     return test
 
@@ -717,7 +774,8 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
     sub-problems, each located by bisection to ``rtol`` and reported at the
     lower end of its bracket, so the value never exceeds the true optimum
     (Doyle, Glover, Khargonekar and Francis 1989, section IV: the X and Y
-    conditions are necessary for the output-feedback problem).
+    conditions are necessary for the output-feedback problem). The bisection runs
+    on the scaled problem of :func:`normalize`.
 
     Raises
     ------
@@ -725,7 +783,7 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
         when a partition or rank condition fails (from normalization).
     """
     P = normalize(plant)
-    pb = parrott_bound(P)
+    pb = P.d11_bound
     bound = pb
     start = max(2 * pb, 1.0)
     for side in ("X", "Y"):
@@ -735,7 +793,7 @@ def gamma_lower_bound(plant: GeneralizedPlant, rtol: float = 1e-3) -> float:
             continue
         lo, hi = _bisect(test, lo, hi, rtol)
         bound = max(bound, lo)
-    return float(bound)
+    return float(bound * P.gamma_scale)
 
 
 def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | None = None) -> float:
@@ -745,20 +803,32 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
     bound) and an upper bound found by repeated multiplication; feasibility at
     gamma is the existence test of
     Glover and Doyle (1988): stabilizing X >= 0 and Y >= 0 and
-    ``rho(XY) < gamma^2`` (plus the Parrott-type D11 bound). The returned
-    gamma is achievable: :func:`central_controller` succeeds at it (though the
-    controller is ill-conditioned so close to the optimum; design a few
-    percent above it). ``hint`` (e.g. the optimal gamma of a neighbouring
-    operating point) starts the bracket there with a 3 % step, which roughly
-    halves the number of Riccati solves; the result does not depend on it
+    ``rho(XY) < gamma^2`` (plus the Parrott-type D11 bound). The search runs on the
+    scaled problem of :func:`normalize` (balanced states, unit-free u and y, gamma
+    near 1), so the result scales exactly with the units of z and w and does not
+    depend on the state coordinates. ``hint`` (e.g. the optimal gamma of a
+    neighbouring operating point) starts the bracket there with a 3 % step, which
+    roughly halves the number of Riccati solves; the result does not depend on it
     beyond ``rtol``.
+
+    The returned gamma is achievable, but it is within ``rtol`` of the optimum where the
+    central controller becomes ill-conditioned (``I - gamma^-2 Y X`` nearly singular):
+    :func:`central_controller` may refuse it or warn. Design at least
+    ``gamma_opt (1 + DESIGN_MARGIN)`` above it (a few percent is the usual practice).
+    When the infimum is zero (nothing limits the performance, e.g. a one-block problem
+    whose P11 can be cancelled), the search stops at ``ZERO_INFIMUM`` times the
+    problem's natural scale (``gamma_scale``) and returns that value: every larger
+    gamma is achievable.
 
     Raises
     ------
     PlantError
-        when :meth:`GeneralizedPlant.check_conditions` fails.
+        when :meth:`GeneralizedPlant.check_conditions` fails, or when D12 or D21 is
+        so close to singular that no gamma can be found (names the singular value
+        ratio and the remedy).
     InfeasibleGammaError
-        when no feasible gamma exists up to 1e12 (names the failing condition).
+        when no feasible gamma exists up to 1e12 times the natural scale (names the
+        failing condition).
     """
     plant.check_conditions()
     if not (0 < rtol < 1):
@@ -767,43 +837,65 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
 
 
 def _optimal_gamma(P: Normalized, rtol: float, hint: float | None = None) -> float:
-    """optimal_gamma on a normalized plant: quick search, full check at the end."""
-    g = _search_one(_Quick(P), P.d11_bound, rtol, hint)
-    if math.isfinite(g) and not _solve_all(P, g, gains=False)[-1]:
-        return g
+    """optimal_gamma on a normalized plant: quick search on the scaled gamma, full check
+    at the end; returns gamma in the plant's units."""
+    gs = P.gamma_scale
+    h = None if hint is None or not math.isfinite(hint) else float(hint) / gs
+    g = _search_one(_Quick(P), P.d11_bound, rtol, h)
+    if math.isfinite(g) and not _solve_all(P, g * gs, gains=False)[-1]:
+        return g * gs
     # the quick test and the full check disagree (or nothing was found): search again
     # with the full check at every step; it decides and explains
 
-    def test(_idx, gs):
-        out = [_solve_all(P, float(gk), gains=False) for gk in gs]
+    def test(_idx, gk):
+        out = [_solve_all(P, float(x) * gs, gains=False) for x in gk]
         ok = np.array([not r[-1] for r in out])
-        phi = np.array([r[-2] / (gk * gk) - 1.0 for r, gk in zip(out, gs, strict=True)])
+        phi = np.array([r[-2] / (x * x) - 1.0 for r, x in zip(out, gk, strict=True)])
         return ok, phi
 
     hints = None if not math.isfinite(g) else np.array([g])
     g = float(_search(test, np.array([P.d11_bound]), rtol, hints)[0])
     if not np.isfinite(g):
-        raise InfeasibleGammaError(
-            f"no feasible gamma up to {GAMMA_MAX:.0e}; at that gamma: "
-            f"{_solve_all(P, GAMMA_MAX)[-1]}"
-        )
-    return g
+        raise _no_gamma_error(P)
+    return g * gs
+
+
+def _no_gamma_error(P: Normalized) -> ScheduleError:
+    """The error for a plant where no gamma up to GAMMA_MAX (scaled) is feasible: a nearly
+    singular D12 or D21 is named with its ratio and remedy, else the failing condition."""
+    for name, ratio, what in (("D12", P.d12_ratio, "control effort"),
+                              ("D21", P.d21_ratio, "measurement noise")):
+        if ratio < NEAR_SINGULAR_RATIO:
+            return PlantError(
+                f"{name} is nearly singular (smallest/largest singular value {ratio:.2e}) and "
+                f"no gamma up to {GAMMA_MAX * P.gamma_scale:.3g} could be found; give every "
+                f"{'control' if name == 'D12' else 'measurement'} a weight of comparable "
+                f"size (a small weight on the missing {what} channel)"
+            )
+    top = GAMMA_MAX * P.gamma_scale
+    return InfeasibleGammaError(
+        f"no feasible gamma up to {top:.3g}; at that gamma: {_solve_all(P, top)[-1]}"
+    )
 
 
 # ====================================================== controller assembly
 def _controller_normalized(P: Normalized, pieces: ObserverPieces, gamma: float):
-    """Central controller for the normalized plant with D22 = 0 (Zhou et al. 1996, Thm 17.1)."""
+    """Central controller of the scaled plant with D22 = 0 (Zhou et al. 1996, Thm 17.1),
+    in the scaled coordinates; ``gamma`` in the plant's units."""
     _, nw, nu, nz, ny = P.dims
-    # pieces are stored in the original signals: map them to the normalized ones
-    F2 = np.linalg.solve(P.Tu, pieces.state_feedback)
-    F1 = P.Sw @ pieces.worst_disturbance
-    L1 = pieces.performance_injection @ P.Sz.T
-    L2 = np.linalg.solve(P.Ty.T, pieces.observer_gain.T).T
-    Z = pieces.Z
+    t = P.t
+    g = gamma / P.gamma_scale
+    # pieces are stored in the plant's own signals and state coordinates: map them to
+    # the scaled ones (x = diag(t) x~)
+    F2 = np.linalg.solve(P.Tu, pieces.state_feedback * t[None, :])
+    F1 = np.linalg.solve(P.Sw.T, pieces.worst_disturbance * t[None, :])
+    L1 = np.linalg.solve(P.Sz.T, (pieces.performance_injection / t[:, None]).T).T
+    L2 = np.linalg.solve(P.Ty.T, (pieces.observer_gain / t[:, None]).T).T
+    Z = pieces.Z / t[:, None] * t[None, :]
     d1111, d1112, d1121, d1122 = _d11_blocks(P)
     r = nz - nu
     if r > 0:
-        M = gamma * gamma * np.eye(r) - d1111 @ d1111.T
+        M = g * g * np.eye(r) - d1111 @ d1111.T
         Dk = -d1121 @ d1111.T @ np.linalg.solve(M, d1112) - d1122
     else:
         Dk = -d1122
@@ -840,9 +932,11 @@ def assemble_controller(
 def _assemble(P: Normalized, D22: np.ndarray, pieces: ObserverPieces, gamma: float):
     """:func:`assemble_controller` on a normalized plant (``D22`` of the original one)."""
     Ak, Bk, Ck, Dk = _controller_normalized(P, pieces, gamma)
-    Tu, Ty = P.Tu, P.Ty
-    Bk = Bk @ Ty
-    Ck = Tu @ Ck
+    Tu, Ty, t = P.Tu, P.Ty, P.t
+    # back to the plant's signals and state coordinates (x = diag(t) x~)
+    Ak = Ak * (t[:, None] / t[None, :])
+    Bk = t[:, None] * (Bk @ Ty)
+    Ck = (Tu @ Ck) / t[None, :]
     Dk = Tu @ Dk @ Ty
     if not np.any(D22):
         return Ak, Bk, Ck, Dk
@@ -868,7 +962,8 @@ def _pieces_at(P: Normalized, gamma: float):
         raise InfeasibleGammaError(f"{reason}; choose a larger gamma (see optimal_gamma)")
     _, nw, nu, nz, ny = P.dims
     n = X.shape[0]
-    Zinv = np.eye(n) - (Y @ X) / (gamma * gamma)
+    g = gamma / P.gamma_scale
+    Zinv = np.eye(n) - (Y @ X) / (g * g)
     zc = float(np.linalg.cond(Zinv))
     if not np.isfinite(zc) or zc > 1e14:
         raise NumericalError(
@@ -883,12 +978,14 @@ def _pieces_at(P: Normalized, gamma: float):
             stacklevel=3,
         )
     Z = np.linalg.inv(Zinv)
+    t = P.t
+    # in the plant's own signals and state coordinates (x = diag(t) x~)
     pieces = ObserverPieces(
-        state_feedback=P.Tu @ F[nw:],
-        worst_disturbance=P.Sw.T @ F[:nw],
-        observer_gain=L[:, nz:] @ P.Ty,
-        performance_injection=L[:, :nz] @ P.Sz,
-        Z=Z,
+        state_feedback=(P.Tu @ F[nw:]) / t[None, :],
+        worst_disturbance=(P.Sw.T @ F[:nw]) / t[None, :],
+        observer_gain=t[:, None] * (L[:, nz:] @ P.Ty),
+        performance_injection=t[:, None] * (L[:, :nz] @ P.Sz),
+        Z=Z * (t[:, None] / t[None, :]),
     )
     return pieces, zc
 
@@ -916,11 +1013,111 @@ def central_controller(plant: GeneralizedPlant, gamma: float) -> Controller:
     return _central(plant, normalize(plant), gamma)
 
 
-def _central(plant: GeneralizedPlant, P: Normalized, gamma: float) -> Controller:
-    """The central controller of a plant whose conditions were already checked."""
+def _central(plant: GeneralizedPlant, P: Normalized, gamma: float,
+             certify: bool = True) -> Controller:
+    """The central controller of a plant whose conditions were already checked, certified
+    (:func:`certify_controller`) unless ``certify`` is False (the caller certifies)."""
     pieces, zc = _pieces_at(P, gamma)
     A, B, C, D = _assemble(P, plant.D22, pieces, gamma)
-    return Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+    K = Controller(A=A, B=B, C=C, D=D, gamma=gamma, pieces=pieces, z_condition=zc)
+    if certify:
+        certify_controller(plant, K, gamma)
+    return K
+
+
+def certify_controller(plant: GeneralizedPlant, controller, gamma: float) -> None:
+    """Check that ``controller`` meets ``gamma`` on ``plant``.
+
+    The closed loop (lower LFT, :func:`schedule.norms.closed_loop_many`) must be stable by
+    the package's predicate and its H-infinity norm, by the level test of
+    :func:`schedule.norms.h_infinity_norms` (certified, relative accuracy 1e-9), at most
+    ``gamma (1 + CONTROLLER_RTOL)``. In exact arithmetic the central controller at any
+    gamma above the optimum meets this (Glover and Doyle 1988); in floating point a problem
+    that is ill-conditioned at gamma (close to the optimum, or a large gamma_opt with a
+    strongly unstable A) can give a controller that misses it.
+
+    Raises
+    ------
+    NumericalError
+        naming gamma, the closed-loop norm (or why the loop is not stable or the norm not
+        certified), the conditioning of ``I - gamma^-2 Y X`` and the remedy: design
+        further above the optimal gamma.
+    """
+    reason = _certify_many([plant], [controller], gamma)[0]
+    if reason:
+        raise NumericalError(reason)
+
+
+def _certify_many(plants, controllers, gamma: float) -> list[str]:
+    """:func:`certify_controller` for many plants at one gamma, batched over the plants of
+    equal sizes (one call of the norm route per size): one reason per plant, "" when the
+    controller is certified."""
+    reasons = [""] * len(plants)
+    groups: dict[tuple, list[int]] = {}
+    for i, (p, K) in enumerate(zip(plants, controllers, strict=True)):
+        groups.setdefault((p.A.shape, p.B1.shape, p.C1.shape, np.shape(K.A)), []).append(i)
+    limit = gamma * (1.0 + CONTROLLER_RTOL)
+    for idx in groups.values():
+        P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
+        Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float) for i in idx])
+              for k in "ABCD"}
+        try:
+            loops = closed_loop_many(P, Kd)
+        except ScheduleError:  # an ill-posed loop in the group: one plant at a time
+            if len(idx) == 1:
+                reasons[idx[0]] = (f"the central controller at gamma={gamma:.6g} gives an "
+                                   "ill-posed loop (I - D22 DK singular); design at another "
+                                   "gamma or reduce D22")
+                continue
+            for i in idx:
+                reasons[i] = _certify_many([plants[i]], [controllers[i]], gamma)[0]
+            continue
+        cert = h_infinity_norms(*loops, rtol=1e-9, level=limit)
+        st = cert.stability
+        for j, i in enumerate(idx):
+            zc = getattr(controllers[i], "z_condition", float("nan"))
+            cond = f"cond(I - Y X/gamma^2) = {zc:.2g}; " if np.isfinite(zc) else ""
+            remedy = ("design further above the optimal gamma (a few percent is the usual "
+                      "practice) or rescale the weights")
+            if st is not None and not st.stable[j]:
+                reasons[i] = (f"the central controller at gamma={gamma:.6g} does not stabilize "
+                              f"the loop in floating point ({st.reason(j)}); {cond}the problem "
+                              f"is ill-conditioned there: {remedy}")
+            elif not cert.upper[j] <= limit:
+                norm = float(cert.norm[j])
+                what = (f"closed-loop norm at least {norm:.9g} = {norm / gamma:.9f} gamma"
+                        if not cert.status[j] else
+                        f"closed-loop norm not certified ({cert.status[j]}; attained "
+                        f"{norm / gamma:.9f} gamma)")
+                reasons[i] = (f"the central controller at gamma={gamma:.6g} misses its bound "
+                              f"in floating point: {what}, tolerance {CONTROLLER_RTOL:g}; "
+                              f"{cond}{remedy}")
+    return reasons
+
+
+def central_controllers(plants, gamma: float) -> list[tuple[Controller | None, str]]:
+    """:func:`central_controller_checked` for many plants at one common gamma, with the
+    certification (:func:`certify_controller`) batched over the plants of equal sizes.
+
+    Returns one ``(controller, "")`` or ``(None, reason)`` per plant (never raises per
+    plant). The plants must have passed :meth:`GeneralizedPlant.check_conditions`.
+    """
+    gamma = _check_gamma(gamma)
+    out: list[tuple[Controller | None, str]] = []
+    for p in plants:
+        try:
+            out.append((_central(p, normalize(p), gamma, certify=False), ""))
+        except ScheduleError as exc:
+            out.append((None, str(exc)))
+        except (np.linalg.LinAlgError, ArithmeticError) as exc:
+            out.append((None, f"{type(exc).__name__}: {exc}"))
+    done = [i for i, (K, _r) in enumerate(out) if K is not None]
+    if done:
+        reasons = _certify_many([plants[i] for i in done], [out[i][0] for i in done], gamma)
+        for i, r in zip(done, reasons, strict=True):
+            if r:
+                out[i] = (None, r)
+    return out
 
 
 def central_controller_checked(plant: GeneralizedPlant, gamma: float) -> Controller:
@@ -978,7 +1175,11 @@ class _StackedSide:
                 except np.linalg.LinAlgError:
                     ok[i] = False
         H = self.H0[idx] + self.W[idx] @ sol
+        H[:, n:, :n] = -_cancelled(-self.H0[idx, n:, :n], (self.W[idx, n:] @ sol)[:, :, :n])
         H[~ok] = np.eye(2 * n)  # placeholders; already failed
+        d = _symplectic_scaling_many(H, n)  # as schedule.riccati.solve_riccati, per plant
+        left = np.concatenate([1.0 / d, d], axis=1)
+        H = H * left[:, :, None] / left[:, None, :]
         w, V = np.linalg.eig(H)
         order = np.argsort(w.real, axis=1)
         wr = np.take_along_axis(w.real, order, axis=1)
@@ -1018,11 +1219,13 @@ class _StackedSide:
         with np.errstate(invalid="ignore"):
             ok &= np.sqrt((res * res).sum(axis=(1, 2))) / denom <= RESIDUAL_RTOL
         X[~ok] = 0.0
+        evb = np.linalg.eigvalsh(X)  # balanced X: the sign is decided at its natural size 1
+        psd = evb[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(evb).max(axis=1))
+        X = X / (d[:, :, None] * d[:, None, :])  # back from the symplectic scaling
         ev = np.linalg.eigvalsh(X)
         big = np.where(-ev[:, 0] > ev[:, -1], ev[:, 0], ev[:, -1])
         with np.errstate(divide="ignore"):
             meas = np.where(ok & (big != 0), -1.0 / np.where(big != 0, big, 1.0), np.nan)
-        psd = ev[:, 0] >= -PSD_RTOL * np.maximum(1.0, np.abs(ev[:, -1]))
         with np.errstate(invalid="ignore"):
             meas = np.where(psd | (meas > 0), meas, np.nan)
         axis[ok & ~psd] = np.nan
@@ -1082,6 +1285,24 @@ class _Stacked:
         return feas, meas
 
 
+def _symplectic_scaling_many(H: np.ndarray, n: int) -> np.ndarray:
+    """Per plant, the diagonal d of :func:`schedule.riccati._symplectic_scaling` for the
+    stacked Hamiltonians H (K, 2n, 2n) (the same rule, vectorized): (K, n)."""
+    A, R, Q = H[:, :n, :n], H[:, :n, n:], -H[:, n:, :n]
+    qn = np.abs(Q).sum(axis=2)
+    rn = np.abs(R).sum(axis=2)
+    an = np.abs(A).sum(axis=2).max(axis=1, keepdims=True)
+    tiny = 1e-8 * np.maximum(an, np.maximum(qn.max(axis=1, keepdims=True),
+                                            rn.max(axis=1, keepdims=True)))
+    ok = ((qn > tiny) | (rn > tiny)) & (tiny > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m = np.maximum(np.sqrt(rn * qn), an)
+        m = np.where(m > 0, m, np.maximum(rn, qn))
+        d2 = np.where(rn >= qn, rn / m, m / qn)
+        e = np.where(ok, np.clip(np.rint(0.5 * np.log2(d2)), -SCALING_EXP, SCALING_EXP), 0.0)
+    return np.exp2(e)
+
+
 def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     """Bracket and shrink in log(gamma) many problems in lockstep.
 
@@ -1128,7 +1349,7 @@ def _search(test, pbs: np.ndarray, rtol: float, hints=None) -> np.ndarray:
     close = 0.4 * math.log1p(rtol)
     for _ in range(400):
         done = failed | (np.isfinite(hi) & (hi <= lo * (1 + rtol)))
-        done |= np.isfinite(hi) & (lo == 0) & (hi < 1e-10)
+        done |= np.isfinite(hi) & (lo == 0) & (hi < ZERO_INFIMUM)
         active = np.flatnonzero(~done)
         if active.size == 0:
             break
@@ -1233,11 +1454,12 @@ def _features(Ps: list[Normalized]) -> np.ndarray:
 
 
 def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
-    """Lockstep search in passes: every 64th plant from a cold start, then every 16th,
-    every 4th and all others, each warm-started from the optimum of the plant already
-    solved that is nearest in plant data (see :func:`_features`)."""
+    """Lockstep search (on the scaled gammas) in passes: every 64th plant from a cold start,
+    then every 16th, every 4th and all others, each warm-started from the optimum of the
+    plant already solved that is nearest in plant data (see :func:`_features`)."""
     K = len(Ps)
     test = _Stacked(Ps)
+    scales = np.array([P.gamma_scale for P in Ps])
     out = np.full(K, np.nan)
     done = np.zeros(K, dtype=bool)
     F = _features(Ps) if K > 1 else np.zeros((K, 0))
@@ -1249,7 +1471,9 @@ def _passes(Ps: list[Normalized], pbs: np.ndarray, rtol: float) -> np.ndarray:
         solved = np.flatnonzero(done & np.isfinite(out))
         if solved.size:
             d2 = ((F[now, None, :] - F[None, solved, :]) ** 2).sum(axis=2)
-            hints = out[solved[d2.argmin(axis=1)]]
+            near = solved[d2.argmin(axis=1)]
+            # the scaled gammas of two plants differ by the ratio of their gamma scales
+            hints = out[near] * scales[near] / scales[now]
 
         def sub_test(act, g, now=now):
             return test(now[act], g)
@@ -1325,11 +1549,12 @@ def synthesize_many(
                 groups.setdefault(P.dims, []).append(i)
         for idx in groups.values():
             Ps = [normalized[i] for i in idx]
-            pbs = np.array([parrott_bound(P) for P in Ps])
+            pbs = np.array([P.d11_bound for P in Ps])
             found = _passes(Ps, pbs, rtol)
             for i, g in zip(idx, found, strict=True):
                 P = normalized[i]
-                if np.isfinite(g) and not _solve_all(P, float(g), gains=False)[-1]:
+                g = float(g) * P.gamma_scale
+                if np.isfinite(g) and not _solve_all(P, g, gains=False)[-1]:
                     gopt[i] = g
                     continue
                 try:  # disagreement or failure: the scalar path decides and explains
@@ -1337,15 +1562,18 @@ def synthesize_many(
                 except ScheduleError as exc:
                     reasons[i] = str(exc)
     results: list[tuple[float, Controller | None, str]] = []
-    for i, p in enumerate(plants):
-        if reasons[i] or gamma is None:
+    todo = [i for i in range(N) if not reasons[i] and gamma is not None]
+    made: dict[int, tuple[Controller | None, str]] = {}
+    if todo:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            for i, res in zip(todo, central_controllers([plants[i] for i in todo], gamma),
+                              strict=True):
+                made[i] = res
+    for i in range(N):
+        if i not in made:
             results.append((float(gopt[i]) if not reasons[i] else float("nan"), None, reasons[i]))
-            continue
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                K = _central(p, normalized[i], gamma)
-            results.append((float(gopt[i]), K, ""))
-        except ScheduleError as exc:
-            results.append((float(gopt[i]), None, str(exc)))
+        else:
+            K, why = made[i]
+            results.append((float(gopt[i]), K, why))
     return results

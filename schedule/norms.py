@@ -12,8 +12,13 @@ H-infinity norm with its peak frequency (:func:`h_infinity_norm`), the H2 norm
 (:func:`spectral_abscissa`).
 
 Stability is internal stability: every eigenvalue of ``A`` must lie in the open
-left half plane (hidden unstable modes count). The norms of an unstable model
-are infinite.
+left half plane (hidden unstable modes count), decided by the package's one
+predicate, :func:`stability`. The norms of an unstable model are infinite.
+
+The H-infinity norm has one route, :func:`h_infinity_norms` (batched; a
+:class:`NormCertificate` with the attained value, a certified upper bound or the
+reason it is in doubt; also the level test); :func:`h_infinity_norm` and
+:func:`h_infinity_norm_many` are its raising forms.
 
 The functions take plain numpy arrays, validate them once in a private helper
 and keep the per-call Python overhead small: the frozen-point checks evaluate
@@ -30,29 +35,51 @@ import scipy.linalg
 from schedule.errors import InputError, NumericalError, PlantError
 
 __all__ = [
+    "NormCertificate",
+    "Stability",
     "closed_loop",
+    "closed_loop_many",
     "frequency_response",
     "h2_norm",
     "h_infinity_norm",
     "h_infinity_norm_many",
+    "h_infinity_norms",
+    "is_stable",
+    "sigma_max",
     "singular_values",
     "spectral_abscissa",
-    "is_stable",
+    "stability",
+    "stability_from_eigenvalues",
 ]
 
 _EPS = float(np.finfo(float).eps)
 
-#: Relative stability margin: an eigenvalue ``lam`` of A counts as unstable when
-#: ``Re(lam) >= -STABILITY_RTOL * |lam| - 100 eps ||A||_1`` (so a pole at the
-#: origin up to rounding, or on the imaginary axis up to a relative 1e-10, is
-#: unstable).
+#: The stability predicate of the package (one rule, used by every check): an eigenvalue
+#: ``lam`` of A counts as stable when
+#: ``Re(lam) < -(STABILITY_RTOL |lam| + STABILITY_EPS eps ||A_bal||_1)``, with ``A_bal``
+#: the balanced A (LAPACK dgebal). The relative part keeps poles on the imaginary axis up
+#: to a relative 1e-10 unstable; the rounding part (what an eigenvalue at the origin
+#: becomes in floating point) uses the balanced norm so that it does not depend on the
+#: state coordinates.
 STABILITY_RTOL = 1e-10
+STABILITY_EPS = 100.0
 
 #: Relative tolerance used to decide that a Hamiltonian eigenvalue lies on the
-#: imaginary axis. It is generous on purpose: an eigenvalue wrongly taken as
-#: imaginary only adds one test frequency, whereas a missed one could stop the
-#: iteration early (see :func:`h_infinity_norm`, Notes).
+#: imaginary axis: ``|Re lam| <= AXIS_RTOL |lam| + AXIS_ATOL ||H||_1``. It is generous on
+#: purpose: an eigenvalue wrongly taken as imaginary only adds test frequencies, whereas a
+#: missed one could stop the iteration early (see :func:`h_infinity_norms`, Notes).
 AXIS_RTOL = 1e-6
+AXIS_ATOL = 1e-9
+#: Looser band searched for crossings that rounding pushed off the axis before the
+#: iteration is declared converged (each candidate is only a test frequency).
+NEAR_AXIS_RTOL = 1e-3
+#: An eigenvalue of a Hamiltonian whose mirror image -conj(lam) is missing by more than
+#: this fraction of |lam| (and by more than half its distance to the axis) shows that
+#: rounding has destroyed the spectrum's symmetry: the crossings cannot be counted.
+UNPAIRED_RTOL = 0.1
+#: Hamiltonian eigenvalues closer than ORIGIN_RTOL ||H||_1 to the origin are not counted
+#: as crossings (a double eigenvalue at 0 splits by about sqrt(eps) ||H|| under rounding).
+ORIGIN_RTOL = 1e-6
 
 #: Largest condition number of ``I - D22 DK`` accepted as a well-posed loop.
 WELL_POSED_COND = 1e12
@@ -62,6 +89,8 @@ WELL_POSED_COND = 1e12
 MODAL_COND = 1e6
 
 _MAX_ITER = 60
+_PROBE = 10.0 ** -np.arange(1.0, 9.0)  # relative offsets probed around an unpaired crossing
+_PROBE_REL = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE, [0.5]])
 
 
 # --------------------------------------------------------------------------- validation
@@ -146,28 +175,108 @@ def spectral_abscissa(A: Any) -> float:
     return float(np.linalg.eigvals(A).real.max())
 
 
-def _unstable(poles: np.ndarray, norm_a: float) -> bool:
-    if poles.size == 0:
-        return False
-    margin = STABILITY_RTOL * np.abs(poles) + 100.0 * _EPS * norm_a
-    return bool((poles.real >= -margin).any())
+class Stability:
+    """Outcome of the stability predicate for a stack of state matrices.
+
+    Attributes
+    ----------
+    stable : (N,) the verdict of :func:`stability`.
+    eigenvalues : (N, n) the eigenvalues.
+    abscissa : (N,) spectral abscissa ``max Re(lam)`` (``-inf`` without states).
+    slack : (N, n) ``-Re(lam) - allowance`` per eigenvalue (positive where it passes), with
+        the allowance ``STABILITY_RTOL |lam| + STABILITY_EPS eps ||A_bal||_1``.
+    """
+
+    __slots__ = ("stable", "eigenvalues", "slack")
+
+    def __init__(self, stable, eigenvalues, slack):
+        self.stable, self.eigenvalues, self.slack = stable, eigenvalues, slack
+
+    @property
+    def abscissa(self) -> np.ndarray:
+        lam = self.eigenvalues
+        if lam.shape[1] == 0:
+            return np.full(lam.shape[0], -np.inf)
+        return lam.real.max(axis=1)
+
+    def reason(self, i: int, what: str = "closed loop") -> str:
+        """One line saying why model ``i`` is not stable (empty when it is).
+
+        The message is true to the test: a positive (or zero) abscissa is "unstable"; a
+        negative one that is within the rounding allowance of the axis is "not certified
+        stable" with the eigenvalue and the allowance.
+        """
+        if self.stable[i]:
+            return ""
+        sa = float(self.eigenvalues[i].real.max())
+        if sa >= 0:
+            return f"{what} unstable (spectral abscissa {sa:.3g})"
+        k = int(np.argmin(self.slack[i]))
+        lam = complex(self.eigenvalues[i, k])
+        allow = -lam.real - float(self.slack[i, k])
+        return (f"{what} not certified stable: eigenvalue {lam.real:.3g}{lam.imag:+.3g}j lies "
+                f"within {allow:.2g} of the imaginary axis (rounding and relative allowance "
+                f"{STABILITY_RTOL:g} |lambda|)")
+
+
+def stability_from_eigenvalues(A: np.ndarray, lam: np.ndarray) -> Stability:
+    """:func:`stability` for stacked A (N, n, n) whose eigenvalues lam (N, n) are already
+    known (e.g. from a modal decomposition): the same predicate, no second eigen-call."""
+    N, n = lam.shape
+    if n == 0:
+        return Stability(np.ones(N, bool), lam, np.zeros((N, 0)))
+    scale = np.abs(A).sum(axis=1).max(axis=1)
+    mod = np.abs(lam)
+    slack = -lam.real - (STABILITY_RTOL * mod + (STABILITY_EPS * _EPS) * scale[:, None])
+    stable = slack.min(axis=1) > 0
+    if not stable.all():
+        # rounding allowance too large on the given coordinates: try the balanced norm
+        relative_ok = (-lam.real > STABILITY_RTOL * mod).all(axis=1)
+        for i in np.flatnonzero(relative_ok & ~stable):
+            _, (d, _p) = scipy.linalg.matrix_balance(A[i], permute=False, separate=True)
+            bal = float(np.abs(A[i] * (d[None, :] / d[:, None])).sum(axis=0).max())
+            slack[i] = -lam[i].real - (STABILITY_RTOL * mod[i] + STABILITY_EPS * _EPS * bal)
+            stable[i] = bool(slack[i].min() > 0)
+    return Stability(stable, lam, slack)
+
+
+def stability(A: Any) -> Stability:
+    """The package's one stability predicate, for one state matrix or a stack.
+
+    A model is stable when every eigenvalue of ``A`` (hidden modes count) satisfies
+    ``Re(lam) < -(STABILITY_RTOL |lam| + STABILITY_EPS eps ||A_bal||_1)``: poles on the
+    imaginary axis, or at the origin up to rounding, are not stable. The answer does not
+    depend on the units of time nor on the state coordinates (the rounding allowance is
+    taken on the balanced matrix, Parlett and Reinsch 1969).
+
+    Parameters
+    ----------
+    A : (n, n) or (N, n, n) array_like
+
+    Returns
+    -------
+    Stability
+        arrays over the N models (N = 1 for a single matrix); ``reason(i)`` gives a
+        one-line message that is true to the test.
+    """
+    A = np.asarray(A, dtype=float)
+    if A.ndim == 2:
+        A = A[None]
+    if A.ndim != 3 or A.shape[1] != A.shape[2]:
+        raise PlantError(f"A has shape {A.shape}; give square (n, n) or (N, n, n) arrays")
+    if not np.isfinite(A).all():
+        raise PlantError("A contains NaN or inf; give finite state-space matrices")
+    lam = np.linalg.eigvals(A) if A.shape[1] else np.zeros((A.shape[0], 0), complex)
+    return stability_from_eigenvalues(A, lam)
 
 
 def is_stable(A: Any) -> bool:
-    """True when every eigenvalue of ``A`` lies in the open left half plane.
-
-    An eigenvalue counts as unstable when ``Re(lam) >= -1e-10 |lam| - 100 eps ||A||_1``
-    (see :data:`STABILITY_RTOL`), so poles on the imaginary axis up to rounding are
-    unstable.
-    """
+    """True when every eigenvalue of ``A`` lies in the open left half plane, decided by the
+    package's one predicate (:func:`stability`)."""
     A = _as_matrix(A, "A")
     if A.shape[0] != A.shape[1]:
         raise PlantError(f"A has shape {A.shape}; it must be square (n x n)")
-    if A.shape[0] == 0:
-        return True
-    if not np.isfinite(A).all():
-        raise PlantError("A contains NaN or inf; give finite state-space matrices")
-    return not _unstable(np.linalg.eigvals(A), float(np.abs(A).sum(axis=0).max()))
+    return bool(stability(A).stable[0])
 
 
 # --------------------------------------------------------------------------- closed loop
@@ -269,39 +378,79 @@ def closed_loop(plant: Any, controller: Any) -> tuple[np.ndarray, np.ndarray, np
                 f"{ny} measurements and {nu} controls; fix the controller"
             )
     # finiteness: one cheap test on the inputs, the culprit is named only on failure
-    if not np.isfinite(sum(float(np.abs(x).sum()) for x in
-                           (A, B1, B2, C1, C2, D11, D12, D21, D22, AK, BK, CK, DK))):
-        for k, arr in zip(names + ("AK", "BK", "CK", "DK"),
-                          (A, B1, B2, C1, C2, D11, D12, D21, D22, AK, BK, CK, DK), strict=True):
+    mats = (A, B1, B2, C1, C2, D11, D12, D21, D22, AK, BK, CK, DK)
+    if not all(np.isfinite(x).all() for x in mats):
+        for k, arr in zip(names + ("AK", "BK", "CK", "DK"), mats, strict=True):
             if not np.isfinite(arr).all():
                 owner = "controller" if k.endswith("K") else "plant"
                 raise PlantError(f"{owner}.{k[0] if owner == 'controller' else k} contains NaN "
                                  "or inf; give finite matrices")
-        raise PlantError("plant and controller entries are too large (sum overflows); rescale")
+    P = dict(zip(names, (x[None] for x in mats[:9]), strict=True))
+    Kd = dict(zip("ABCD", (x[None] for x in mats[9:]), strict=True))
+    Acl, Bcl, Ccl, Dcl = _lft(P, Kd, "the loop")
+    return Acl[0], Bcl[0], Ccl[0], Dcl[0]
 
+
+PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
+
+
+def _stack3(M: Any) -> np.ndarray:
+    a = np.asarray(M, dtype=float)
+    return a[None] if a.ndim == 2 else a
+
+
+def closed_loop_many(P: Any, K: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Lower LFT of stacked generalized plants with stacked controllers ``u = K y``.
+
+    The batched form of :func:`closed_loop` (same formulas, the point index first):
+    ``P`` maps the nine plant keys ``A ... D22`` to (N, ., .) stacks (or 2-D arrays,
+    broadcast), ``K`` maps ``A, B, C, D`` to the controller stacks. Nothing is validated
+    beyond well-posedness: give arrays that passed :class:`schedule.plant.GeneralizedPlant`.
+
+    Raises
+    ------
+    PlantError
+        If ``I - D22 DK`` has condition number above :data:`WELL_POSED_COND` at a point
+        (the message names the first such point).
+    """
+    P = {k: _stack3(P[k]) for k in PLANT_KEYS}
+    K = {k: _stack3(K[k]) for k in "ABCD"}
+    return _lft(P, K, "check point")
+
+
+def _lft(P: dict, K: dict, where: str):
+    A, B1, B2, C1, C2 = (P[k] for k in ("A", "B1", "B2", "C1", "C2"))
+    D11, D12, D21, D22 = (P[k] for k in ("D11", "D12", "D21", "D22"))
+    AK, BK, CK, DK = (K[k] for k in "ABCD")
+    ny = C2.shape[1]
+    nu = B2.shape[2]
     if ny and nu and np.any(D22) and np.any(DK):
-        E = np.eye(ny) - D22 @ DK
-        sv = np.linalg.svd(E, compute_uv=False)
-        if sv[-1] <= sv[0] / WELL_POSED_COND:
-            cond = np.inf if sv[-1] == 0 else sv[0] / sv[-1]
-            raise PlantError(
-                f"loop not well posed: I - D22 DK has condition number {cond:.3g} "
-                f"(smallest singular value {sv[-1]:.3g}); change DK or remove D22"
-            )
-        # M = E^-1; DK M = (I - DK D22)^-1 DK
-        MC2 = np.linalg.solve(E, C2)
-        MD21 = np.linalg.solve(E, D21)
-        MD22CK = np.linalg.solve(E, D22 @ CK)
-        NCK = CK + DK @ MD22CK
+        W = np.eye(ny) - D22 @ DK
+        sv = np.linalg.svd(W, compute_uv=False)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cond = sv[..., 0] / sv[..., -1]
+        bad = ~np.isfinite(cond) | (cond > WELL_POSED_COND)
+        if np.any(bad):
+            i = int(np.flatnonzero(bad)[0])
+            at = "" if W.shape[0] == 1 and where == "the loop" else f" at {where} {i}"
+            raise PlantError(f"loop not well posed{at}: I - D22 DK has condition number "
+                             f"{cond[i]:.3g} (smallest singular value {sv[i, -1]:.3g}); change "
+                             "DK or remove D22")
+        M = np.linalg.inv(W)
+        DKM = DK @ M
+        MC2, MD21 = M @ C2, M @ D21
+        NCK = CK + DKM @ D22 @ CK
+        MD22CK = M @ D22 @ CK
     else:
+        DKM = DK
         MC2, MD21, NCK = C2, D21, CK
         MD22CK = D22 @ CK
-
-    Acl = np.block([[A + B2 @ DK @ MC2, B2 @ NCK],
-                    [BK @ MC2, AK + BK @ MD22CK]])
-    Bcl = np.vstack([B1 + B2 @ DK @ MD21, BK @ MD21])
-    Ccl = np.hstack([C1 + D12 @ DK @ MC2, D12 @ NCK])
-    Dcl = D11 + D12 @ DK @ MD21
+    Acl = np.concatenate([
+        np.concatenate([A + B2 @ DKM @ C2, B2 @ NCK], axis=2),
+        np.concatenate([BK @ MC2, AK + BK @ MD22CK], axis=2)], axis=1)
+    Bcl = np.concatenate([B1 + B2 @ DKM @ D21, BK @ MD21], axis=1)
+    Ccl = np.concatenate([C1 + D12 @ DKM @ C2, D12 @ NCK], axis=2)
+    Dcl = D11 + D12 @ DKM @ D21
     return Acl, Bcl, Ccl, Dcl
 
 
@@ -420,34 +569,73 @@ def singular_values(A: Any, B: Any, C: Any, D: Any, omega: Any) -> np.ndarray:
 # --------------------------------------------------------------------------- H-infinity norm
 
 
-def _sigma_max_at(A, B, C, D, omega: np.ndarray) -> np.ndarray:
-    return _sv(_response(A, B, C, D, omega, modal=False), only_max=True)
+class NormCertificate:
+    """H-infinity norms of a stack of models, each with what it rests on.
+
+    Attributes
+    ----------
+    norm : (N,) ``sigma_max(G(j peak))``: an attained value, so a certain lower bound of
+        ``||G||_inf``; ``inf`` where the model is not stable.
+    peak : (N,) its frequency in rad/s (``inf`` for a peak at infinity, ``nan`` when
+        not stable).
+    upper : (N,) a certified upper bound: ``norm (1 + 2 rtol)`` where the level-set
+        iteration converged with consistent crossings, ``inf`` otherwise.
+    status : list of N strings, "" where certified, else one line saying why not
+        (unstable, not certified stable, iteration in doubt, out of range).
+    stability : the :class:`Stability` of the A matrices (the package's predicate),
+        None for models without states.
+    """
+
+    __slots__ = ("norm", "peak", "upper", "status", "stability")
+
+    def __init__(self, norm, peak, upper, status, stability=None):
+        self.norm, self.peak, self.upper, self.status = norm, peak, upper, status
+        self.stability = stability
+
+    def below(self, level) -> np.ndarray:
+        """(N,) True where ``||G||_inf <= level`` is certified (the upper bound is at most
+        the level). Anything in doubt is False."""
+        return np.asarray(self.upper <= np.asarray(level, dtype=float))
+
+    def why_above(self, i: int, level: float) -> str:
+        """One line: why model ``i`` is not certified below ``level`` ("" when it is)."""
+        if self.upper[i] <= level:
+            return ""
+        if self.status[i]:
+            return self.status[i]
+        return f"norm {self.norm[i]:.6g} > {level:.6g}"
+
+
+def sigma_max(M: Any) -> np.ndarray:
+    """Largest singular value of stacked matrices (..., r, c).
+
+    Closed forms for one row / column (the vector norm) and for two (the larger
+    eigenvalue of the 2 x 2 Gram matrix, ``(t + sqrt((a - d)^2 + 4 |b|^2)) / 2``);
+    singular value decomposition otherwise.
+    """
+    M = np.asarray(M)
+    r, c = M.shape[-2], M.shape[-1]
+    if r == 0 or c == 0:
+        return np.zeros(M.shape[:-2])
+    if min(r, c) == 1:
+        return np.sqrt(np.sum(M.real ** 2 + M.imag ** 2 if np.iscomplexobj(M) else M * M,
+                              axis=(-2, -1)))
+    if min(r, c) == 2:
+        Mh = np.conj(np.swapaxes(M, -1, -2))
+        G = M @ Mh if r == 2 else Mh @ M
+        a, d = G[..., 0, 0].real, G[..., 1, 1].real
+        b2 = np.abs(G[..., 0, 1]) ** 2
+        disc = np.sqrt(np.maximum((a - d) ** 2 + 4.0 * b2, 0.0))
+        return np.sqrt(np.maximum(0.5 * (a + d + disc), 0.0))
+    return np.linalg.norm(M, ord=2, axis=(-2, -1))
 
 
 def h_infinity_norm(A: Any, B: Any, C: Any, D: Any,
                     rtol: float = 1e-8) -> tuple[float, float]:
     """H-infinity norm ``sup_omega sigma_max(G(j omega))`` and the peak frequency.
 
-    The two-step (quadratically convergent) level-set method of Boyd,
-    Balakrishnan and Kabamba (1989) and Bruinsma and Steinbuch (1990). For a
-    stable ``A`` and ``gamma > sigma_max(D)``, ``gamma`` is a singular value of
-    ``G(j omega)`` if and only if ``j omega`` is an eigenvalue of the Hamiltonian
-
-        H(gamma) = [[A + B R^-1 D' C,           B R^-1 B'            ],
-                    [-C' (I + D R^-1 D') C,     -(A + B R^-1 D' C)'  ]],
-        R = gamma^2 I - D' D > 0.
-
-    Algorithm:
-
-    1. Lower bound ``lb = max sigma_max(G(j omega))`` over omega = 0, inf
-       (via D), the pole moduli ``|lam_i|`` and the imaginary parts of the poles
-       (the rule of Bruinsma and Steinbuch, widened to every pole so that
-       lightly damped modes are hit near their peak).
-    2. ``gamma = (1 + 2 rtol) lb``; the eigenvalues of ``H(gamma)`` on the
-       imaginary axis ``j omega_1 < ... < j omega_k`` bound the intervals where
-       some singular value exceeds ``gamma``. Evaluate ``sigma_max`` at every
-       midpoint ``(omega_i + omega_{i+1}) / 2`` and raise ``lb`` to the largest.
-    3. Stop when no midpoint exceeds ``gamma``: then ``lb <= ||G||_inf <= gamma``.
+    The one-model form of :func:`h_infinity_norms` (the same computation, see there for
+    the method and its certificate).
 
     Parameters
     ----------
@@ -474,27 +662,8 @@ def h_infinity_norm(A: Any, B: Any, C: Any, D: Any,
     InputError
         ``rtol`` outside (0, 0.1).
     NumericalError
-        No convergence within 60 iterations (should not happen; the message
-        gives the bracket reached).
-
-    Notes
-    -----
-    Eigenvalues are taken as imaginary when ``|Re lam| <= 1e-6 |lam| + 1e-9
-    ||H||``. Wrongly accepting one only adds a test frequency (every lower
-    bound is an evaluated ``sigma_max``, and a subinterval of a true interval
-    still has its midpoint above ``gamma``); the tolerance is therefore
-    generous, so that imaginary eigenvalues perturbed by rounding are not
-    missed. Stability is tested on the eigenvalues of ``A`` with the relative
-    margin :data:`STABILITY_RTOL`.
-
-    References
-    ----------
-    S. Boyd, V. Balakrishnan and P. Kabamba, "A bisection method for computing
-    the H-infinity norm of a transfer matrix and related problems", Math.
-    Control Signals Systems 2 (1989) 207-219, doi:10.1007/BF02551385.
-    N. A. Bruinsma and M. Steinbuch, "A fast algorithm to compute the
-    H-infinity-norm of a transfer function matrix", Systems & Control Letters
-    14 (1990) 287-293, doi:10.1016/0167-6911(90)90049-Z.
+        The norm could not be certified (iteration in doubt or not converged, or a norm
+        beyond the floating-point range); the message says which.
 
     Examples
     --------
@@ -507,7 +676,10 @@ def h_infinity_norm(A: Any, B: Any, C: Any, D: Any,
     True
     """
     A, B, C, D = _check_abcd(A, B, C, D)
-    return _hinf(A, B, C, D, _check_rtol(rtol))
+    rtol = _check_rtol(rtol)
+    cert = _certify(A[None], B[None], C[None], D[None], rtol)
+    _raise_uncertified(cert, "the model")
+    return float(cert.norm[0]), float(cert.peak[0])
 
 
 def _check_rtol(rtol) -> float:
@@ -521,82 +693,13 @@ def _check_rtol(rtol) -> float:
     return rtol
 
 
-def _hinf(A, B, C, D, rtol):
-    n = A.shape[0]
-    p, m = D.shape
-    sd = float(_sv(D[None], only_max=True)[0]) if p and m else 0.0
-    if n == 0 or p == 0 or m == 0:
-        return sd, 0.0
-    poles, V = np.linalg.eig(A)
-    norm_a = float(np.abs(A).sum(axis=0).max())
-    if _unstable(poles, norm_a):
-        return float("inf"), float("nan")
-
-    # step 1: lower bound from 0, pole moduli, pole imaginary parts; inf via D.
-    # The candidates are screened cheaply in modal form; the best few are then
-    # evaluated by direct solves, so the lower bound is an accurately computed
-    # sigma_max even when the eigenvectors are ill-conditioned.
-    ap = np.abs(poles)
-    cand = np.unique(np.concatenate(([0.0], ap, np.abs(poles.imag))))
-    if cand.size > 3:
-        try:
-            VB = np.linalg.solve(V, B)
-        except np.linalg.LinAlgError:
-            VB = None
-        if VB is not None:
-            r = 1.0 / (1j * cand[:, None] - poles[None, :])
-            approx = _sv((C @ V)[None, :, :] * r[:, None, :] @ VB + D, only_max=True)
-            approx = np.where(np.isfinite(approx), approx, 0.0)
-            cand = cand[np.argsort(approx)[-3:]]
-    sig = _sigma_max_at(A, B, C, D, cand)
-    i = int(np.argmax(sig))
-    lb, peak = float(sig[i]), float(cand[i])
-    if sd >= lb:
-        lb, peak = sd, float("inf")
-    if lb == 0.0:
-        # zero at n + 1 distinct points: check more before calling it the zero system
-        extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * max(float(ap.max()), 1.0)
-        sig = _sigma_max_at(A, B, C, D, extra)
-        i = int(np.argmax(sig))
-        if sig[i] == 0.0:
-            return 0.0, 0.0
-        lb, peak = float(sig[i]), float(extra[i])
-
-    DtC = D.T @ C
-    DtD = D.T @ D
-    BBt = B @ B.T
-    CtC = C.T @ C
-    has_d = bool(np.any(D))
-    eye_m = np.eye(m)
-    for _ in range(_MAX_ITER):
-        gamma = (1.0 + 2.0 * rtol) * lb
-        if has_d:
-            R = gamma * gamma * eye_m - DtD
-            RinvX = np.linalg.solve(R, np.hstack([DtC, B.T]))
-            Ah = A + B @ RinvX[:, :n]
-            G = B @ RinvX[:, n:]
-            Q = CtC + DtC.T @ RinvX[:, :n]
-        else:
-            Ah = A
-            G = BBt / (gamma * gamma)
-            Q = CtC
-        H = np.block([[Ah, G], [-Q, -Ah.T]])
-        ev = np.linalg.eigvals(H)
-        norm_h = float(np.abs(H).sum(axis=0).max())
-        on_axis = np.abs(ev.real) <= AXIS_RTOL * np.abs(ev) + 1e-9 * norm_h
-        w = np.unique(np.abs(ev.imag[on_axis]))
-        if w.size < 2:
-            return lb, peak
-        mid = 0.5 * (w[:-1] + w[1:])
-        sig = _sigma_max_at(A, B, C, D, mid)
-        i = int(np.argmax(sig))
-        if sig[i] <= gamma:
-            return lb, peak
-        lb, peak = float(sig[i]), float(mid[i])
-    raise NumericalError(
-        f"H-infinity norm iteration did not converge in {_MAX_ITER} steps "
-        f"(lower bound {lb:.6g} at {peak:.6g} rad/s); loosen rtol or rescale the model"
-    )
+def _raise_uncertified(cert: NormCertificate, what: str) -> None:
+    """NumericalError for the first model whose norm is in doubt (unstable is an answer)."""
+    for i, st in enumerate(cert.status):
+        unstable = np.isinf(cert.norm[i]) and np.isnan(cert.peak[i])
+        if st and not unstable:
+            name = what if len(cert.status) == 1 else f"model {i}"
+            raise NumericalError(f"H-infinity norm of {name} not certified: {st}")
 
 
 def _as_stack(value: Any, name: str) -> np.ndarray:
@@ -608,40 +711,7 @@ def _as_stack(value: Any, name: str) -> np.ndarray:
     return arr.astype(float, copy=False)
 
 
-def _sv_max_stack(G: np.ndarray) -> np.ndarray:
-    return _sv(G, only_max=True) if G.shape[0] else np.zeros(0)
-
-
-def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
-                         rtol: float = 1e-8) -> tuple[np.ndarray, np.ndarray]:
-    """H-infinity norms and peak frequencies of N models of equal size, in lockstep.
-
-    The same method and the same guarantees as :func:`h_infinity_norm`
-    (Boyd, Balakrishnan and Kabamba 1989; Bruinsma and Steinbuch 1990), run on
-    stacked arrays: every step (eigenvalues of A, the Hamiltonians, the
-    frequency evaluations) is one stacked numpy call over the models still
-    iterating, which removes most per-model Python overhead.
-
-    Parameters
-    ----------
-    A, B, C, D : array_like
-        Stacked matrices, shapes (N, n, n), (N, n, m), (N, p, n), (N, p, m).
-    rtol : float, optional
-        Relative accuracy: ``norm[i] <= ||G_i||_inf <= (1 + 2 rtol) norm[i]``.
-
-    Returns
-    -------
-    norm : (N,) ndarray
-        ``inf`` where ``A[i]`` is unstable.
-    peak_frequency : (N,) ndarray
-        As in :func:`h_infinity_norm` (``inf`` for a peak at infinity, ``nan``
-        where unstable).
-
-    Raises
-    ------
-    PlantError, InputError, NumericalError
-        As :func:`h_infinity_norm`; the message names the first model at fault.
-    """
+def _check_stacks(A, B, C, D):
     A = _as_stack(A, "A")
     B = _as_stack(B, "B")
     C = _as_stack(C, "C")
@@ -656,106 +726,407 @@ def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
         if not np.isfinite(arr).all():
             i = int(np.flatnonzero(~np.isfinite(arr).reshape(N, -1).all(axis=1))[0])
             raise PlantError(f"{k}[{i}] contains NaN or inf; give finite state-space matrices")
-    rtol = _check_rtol(rtol)
+    return A, B, C, D
 
+
+def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
+                     level: Any = None) -> NormCertificate:
+    """Certified H-infinity norms of N models of equal size, in lockstep: the package's
+    one norm route (every check and certificate uses it).
+
+    Method: the two-step (quadratically convergent) level-set method of Boyd,
+    Balakrishnan and Kabamba (1989) and Bruinsma and Steinbuch (1990). For a stable
+    ``A`` and ``gamma > sigma_max(D)``, ``gamma`` is a singular value of ``G(j omega)``
+    if and only if ``j omega`` is an eigenvalue of the Hamiltonian
+
+        H(gamma) = [[A + B R^-1 D' C,           B R^-1 B'            ],
+                    [-C' (I + D R^-1 D') C,     -(A + B R^-1 D' C)'  ]],
+        R = gamma^2 I - D' D > 0.
+
+    1. Each model is scaled by powers of 2 (time, input, output: exact in floating point)
+       so that its entries are at most 1; the norm and the frequency are scaled back.
+    2. Stability by the package's predicate (:func:`stability`); unstable models get
+       ``inf``.
+    3. Lower bound ``lb``: sigma_max at 0, at infinity (D), at the imaginary parts of the
+       complex poles and the moduli of the real poles (Bruinsma and Steinbuch 1990; above
+       order 16 the best three after a screening in modal form), evaluated by direct
+       solves.
+    4. ``gamma = (1 + 2 rtol) lb``. The eigenvalues of ``H(gamma)`` within
+       ``AXIS_RTOL |lam| + AXIS_ATOL ||H||_1`` of the imaginary axis are candidate
+       crossings ``omega_1 <= ... <= omega_k``. A crossing is confirmed only by the sign
+       of ``sigma_max - gamma`` between neighbouring frequencies: sigma_max is evaluated
+       at every midpoint and ``lb`` raised to the largest value above gamma; repeat.
+    5. Before declaring convergence (no midpoint above gamma), three consistency tests.
+       The spectrum must be symmetric about the axis (``lam`` and ``-conj(lam)``): an
+       eigenvalue whose mirror image is missing by more than half its distance to the
+       axis and by more than ``UNPAIRED_RTOL |lam|`` shows a spectrum destroyed by
+       rounding (a badly conditioned model); a smaller asymmetry only leaves the side of
+       that eigenvalue open, and it is probed as below. sigma_max is evaluated at the
+       eigenvalues in the looser band ``NEAR_AXIS_RTOL |lam|`` (crossings that rounding
+       pushed off the axis). The number of crossings must be even (sigma_max is below
+       gamma at 0 and at infinity); an odd count adds test points on both sides of every
+       crossing and of every eigenvalue whose side is open (relative offsets 1e-1 to
+       1e-8 and half the frequency: the interval above gamma of an unpaired crossing
+       starts or ends there, possibly at 0). If nothing then exceeds gamma while the
+       count is odd or the spectrum unusable, the model stays in doubt.
+
+    Every ``lb`` is an evaluated sigma_max, so ``norm`` is always a true lower bound;
+    the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
+    in doubt gets ``upper = inf`` and a status line: a level test on it says "above".
+
+    With a ``level`` only the question "is ``||G||_inf <= level``?" is answered, more
+    cheaply: a model whose lower bound (step 3) exceeds the level is above it (``upper`` is
+    inf, ``norm`` that lower bound); for the others the Hamiltonian at the level itself is
+    tested first, and when none of its eigenvalues lies in the looser band and its
+    spectrum is symmetric (no crossing of the level) the model is certified below with
+    ``upper = level`` and ``norm`` a lower bound only; the rest get the full computation.
+
+    Parameters
+    ----------
+    A, B, C, D : array_like
+        Stacked matrices, shapes (N, n, n), (N, n, m), (N, p, n), (N, p, m).
+    rtol : float, optional
+        Relative accuracy.
+    level : float or (N,) array, optional
+        The level of a level test (see above).
+
+    Returns
+    -------
+    NormCertificate
+
+    Raises
+    ------
+    PlantError, InputError
+        Bad shapes, non-finite entries, ``rtol`` outside (0, 0.1). Per-model numerical
+        trouble is not raised: it is in the certificate's status.
+
+    References
+    ----------
+    S. Boyd, V. Balakrishnan and P. Kabamba, "A bisection method for computing
+    the H-infinity norm of a transfer matrix and related problems", Math.
+    Control Signals Systems 2 (1989) 207-219, doi:10.1007/BF02551385.
+    N. A. Bruinsma and M. Steinbuch, "A fast algorithm to compute the
+    H-infinity-norm of a transfer function matrix", Systems & Control Letters
+    14 (1990) 287-293, doi:10.1016/0167-6911(90)90049-Z.
+    """
+    A, B, C, D = _check_stacks(A, B, C, D)
+    if level is not None:
+        level = np.broadcast_to(np.asarray(level, dtype=float), (A.shape[0],))
+    return _certify(A, B, C, D, _check_rtol(rtol), level)
+
+
+def h_infinity_norm_many(A: Any, B: Any, C: Any, D: Any,
+                         rtol: float = 1e-8) -> tuple[np.ndarray, np.ndarray]:
+    """H-infinity norms and peak frequencies of N models of equal size (see
+    :func:`h_infinity_norms`, of which this is the raising form).
+
+    Returns
+    -------
+    norm : (N,) ndarray
+        ``inf`` where ``A[i]`` is not stable.
+    peak_frequency : (N,) ndarray
+        As in :func:`h_infinity_norm` (``inf`` for a peak at infinity, ``nan``
+        where unstable).
+
+    Raises
+    ------
+    PlantError, InputError
+        As :func:`h_infinity_norms`.
+    NumericalError
+        A norm could not be certified; the message names the first model at fault.
+    """
+    cert = h_infinity_norms(A, B, C, D, rtol)
+    _raise_uncertified(cert, "the model")
+    return cert.norm, cert.peak
+
+
+def _exponents(M: np.ndarray) -> np.ndarray:
+    """Per model, the exponent e with max |M| = f 2^e, 0.5 <= f < 1 (0 for M = 0)."""
+    N = M.shape[0]
+    if M.size == 0:
+        return np.zeros(N, dtype=int)
+    return np.frexp(np.abs(M).reshape(N, -1).max(axis=1))[1]
+
+
+_SAFE = 2.0 ** 100  # blocks with entries within [2^-100, 2^100] need no scaling
+SCREEN_ORDER = 16  # above this order the pole candidates are screened in modal form
+
+
+def _scale_models(A, B, C, D):
+    """Exact power-of-2 scaling so that no entry exceeds 1 (see :func:`h_infinity_norms`,
+    step 1): ``(A, B, C, D, et, ea)``, the norm scales back by ``2^et`` and the frequency
+    by ``2^ea`` (``et``, ``ea`` None when the entries are all moderate and nothing was
+    scaled)."""
+    N, n = A.shape[0], A.shape[1]
+    blocks = (A, B, C, D) if n else (D,)
+    if N == 1:  # the common single-model call: scalar tests
+        tops = [float(np.abs(M).max()) if M.size else 0.0 for M in blocks]
+        if max(tops) <= _SAFE and all(t == 0.0 or t >= 1.0 / _SAFE for t in tops):
+            return A, B, C, D, None, None
+    maxima = [np.abs(M).reshape(N, -1).max(axis=1) if M.size else np.zeros(N)
+              for M in (A, B, C, D)]
+    big = np.max(maxima, axis=0)
+    small = np.min([np.where(x > 0, x, _SAFE) for x in maxima], axis=0)
+    if not (big > _SAFE).any() and not (small < 1.0 / _SAFE).any():
+        return A, B, C, D, None, None
+    zero = np.zeros(N, dtype=int)
+    ea = np.frexp(maxima[0])[1] if n else zero
+    A = np.ldexp(A, -ea[:, None, None])
+    B = np.ldexp(B, -ea[:, None, None])
+    eb = _exponents(B) if n else zero
+    ec = np.frexp(maxima[2])[1] if n else zero
+    et = np.maximum(eb + ec, np.frexp(maxima[3])[1])
+    B = np.ldexp(B, -eb[:, None, None])
+    C = np.ldexp(C, -(et - eb)[:, None, None])
+    D = np.ldexp(D, -et[:, None, None])
+    return A, B, C, D, et, ea
+
+
+def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
+    """The computation of :func:`h_infinity_norms` on validated float stacks."""
+    N, n = A.shape[0], A.shape[1]
+    p, m = D.shape[1], D.shape[2]
     norm = np.zeros(N)
     peak = np.zeros(N)
+    status = [""] * N
     if N == 0 or p == 0 or m == 0:
-        return norm, peak
-    sd = _sv_max_stack(D)
+        return NormCertificate(norm, peak, norm.copy(), status)
+    # 1. exact power-of-2 scaling where entries are extreme
+    A, B, C, D, et, ea = _scale_models(A, B, C, D)
+    sd = sigma_max(D)
     if n == 0:
-        return sd, peak
-
-    poles, V = np.linalg.eig(A)
-    norm_a = np.abs(A).sum(axis=1).max(axis=1)
-    margin = STABILITY_RTOL * np.abs(poles) + 100.0 * _EPS * norm_a[:, None]
-    unstable = (poles.real >= -margin).any(axis=1)
-    norm[unstable] = np.inf
-    peak[unstable] = np.nan
-    idx = np.flatnonzero(~unstable)
-    if idx.size == 0:
-        return norm, peak
-    A, B, C, D, poles, V, sd = A[idx], B[idx], C[idx], D[idx], poles[idx], V[idx], sd[idx]
-    M = idx.size
+        return _finish(sd, np.zeros(N), np.zeros(N, bool), status, et, ea, rtol)
+    # 2. stability (3. needs the eigenvectors only to screen many candidates)
+    screen = n > SCREEN_ORDER
+    if screen:
+        lam, V = np.linalg.eig(A)
+    else:
+        lam = np.linalg.eigvals(A)
+    st = stability_from_eigenvalues(A, lam)
+    good = st.stable
+    upper = np.full(N, np.inf)
+    if not good.all():
+        for i in np.flatnonzero(~good):
+            status[i] = st.reason(i, "model")
+        norm[~good], peak[~good] = np.inf, np.nan
+        if not good.any():
+            return NormCertificate(norm, peak, upper, status, st)
+        idx = np.flatnonzero(good)
+        A, B, C, D, lam, sd = A[idx], B[idx], C[idx], D[idx], lam[idx], sd[idx]
+        if screen:
+            V = V[idx]
+    else:
+        idx = None
+    M = A.shape[0]
+    Bc = B.astype(complex)
     eye = np.eye(n)
 
-    def sigma_max_of_selected(sel: np.ndarray, w: np.ndarray) -> np.ndarray:
-        """sigma_max(G_sel(j w)) by direct stacked solves, sel and w of equal length."""
-        Ms = 1j * w[:, None, None] * eye - A[sel]
-        return _sv_max_stack(C[sel] @ np.linalg.solve(Ms, B[sel]) + D[sel])
+    def sigma_at(sel, w):
+        """sigma_max(G_sel(j w)) by direct stacked complex solves (a true value; nan, from
+        an overflow, counts as inf)."""
+        G = C[sel] @ np.linalg.solve(1j * w[:, None, None] * eye - A[sel], Bc[sel]) + D[sel]
+        s = sigma_max(G)
+        s[s != s] = np.inf
+        return s
 
-    # step 1: candidates 0, |lam|, |Im lam|, screened in modal form, best 3 solved directly
-    cand = np.concatenate([np.zeros((M, 1)), np.abs(poles), np.abs(poles.imag)], axis=1)
-    try:
-        VB = np.linalg.solve(V, B)
-        r = 1.0 / (1j * cand[:, :, None] - poles[:, None, :])            # (M, k, n)
-        CV = C @ V                                                        # (M, p, n)
-        Gm = np.einsum("ipn,ikn,inm->ikpm", CV, r, VB) + D[:, None]
-        approx = _sv(Gm, only_max=True)
-        approx = np.where(np.isfinite(approx), approx, 0.0)
-        top = np.argsort(approx, axis=1)[:, -3:]
-        cand = np.take_along_axis(cand, top, axis=1)
-    except np.linalg.LinAlgError:
-        pass
-    k = cand.shape[1]
-    sel = np.repeat(np.arange(M), k)
-    sig = sigma_max_of_selected(sel, cand.ravel()).reshape(M, k)
-    best = np.argmax(sig, axis=1)
-    lb = sig[np.arange(M), best]
-    pk = cand[np.arange(M), best]
-    at_inf = sd >= lb
-    lb = np.where(at_inf, sd, lb)
-    pk = np.where(at_inf, np.inf, pk)
-    zero = lb == 0.0
-    if zero.any():  # fall back to the single-model routine for the rare zero lower bound
-        for i in np.flatnonzero(zero):
-            lb[i], pk[i] = _hinf(A[i], B[i], C[i], D[i], rtol)
-    active = ~zero
-    DtD = np.swapaxes(D, 1, 2) @ D
-    DtC = np.swapaxes(D, 1, 2) @ C
-    Bt = np.swapaxes(B, 1, 2)
-    CtC = np.swapaxes(C, 1, 2) @ C
+    Dt = D.transpose(0, 2, 1)
+    DtD = Dt @ D
+    DtC_Bt = np.concatenate([Dt @ C, B.transpose(0, 2, 1)], axis=2)
+    CtC = C.transpose(0, 2, 1) @ C
     eye_m = np.eye(m)
+    diag = np.arange(2 * n)
+
+    def spectrum(act, gamma):
+        """Eigenvalues of the Hamiltonians H(gamma) of the models act, and ||H||_1."""
+        X = np.linalg.solve(gamma[:, None, None] ** 2 * eye_m - DtD[act], DtC_Bt[act])
+        H = np.empty((act.size, 2 * n, 2 * n))
+        Ah = A[act] + B[act] @ X[:, :, :n]
+        H[:, :n, :n] = Ah
+        H[:, :n, n:] = B[act] @ X[:, :, n:]
+        H[:, n:, :n] = -(CtC[act] + DtC_Bt[act, :, :n].transpose(0, 2, 1) @ X[:, :, :n])
+        H[:, n:, n:] = -Ah.transpose(0, 2, 1)
+        return np.linalg.eigvals(H), np.abs(H).sum(axis=1).max(axis=1)[:, None]
+
+    lb = sd.copy()  # sigma_max at infinity: a lower bound of every norm
+    pk = np.full(M, np.inf)
+    sig0 = np.zeros(M)
+    below_level = np.zeros(M, dtype=bool)
+    settled = np.zeros(M, dtype=bool)  # decided against the level without the full norm
+    if level is not None:
+        lv = np.asarray(level, dtype=float)
+        lv = lv if idx is None else lv[idx]
+        if et is not None:
+            lv = np.ldexp(lv, -(et if idx is None else et[idx]))
+        test_lv = np.flatnonzero(lv > sd)
+        if test_lv.size:
+            # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
+            # symmetric spectrum -> no crossing of the level, so the norm is below it
+            ev, hn = spectrum(test_lv, lv[test_lv])
+            mod, are = np.abs(ev), np.abs(ev.real)
+            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+            dist[:, diag, diag] = np.inf
+            clear = ((are > NEAR_AXIS_RTOL * mod + AXIS_ATOL * hn)
+                     & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
+            below_level[test_lv[clear]] = settled[test_lv[clear]] = True
+    rest = np.flatnonzero(~settled)
+    # 3. lower bound: sigma_max at 0, at |Im lam| of the complex poles and |lam| of the
+    # real ones (the best three of them after a modal screening for large orders), and
+    # at infinity (D); each conjugate pair is taken once
+    im = lam[rest].imag
+    cand = np.where(im > 0, im, np.where(im == 0, np.abs(lam[rest].real), 0.0))
+    if screen and rest.size:
+        with np.errstate(all="ignore"):
+            try:
+                VB = np.linalg.solve(V[rest], Bc[rest])
+                r = 1.0 / (1j * cand[:, :, None] - lam[rest][:, None, :])  # (k, c, n)
+                Gm = (((C[rest] @ V[rest])[:, None, :, :] * r[:, :, None, :]) @ VB[:, None]
+                      + D[rest][:, None])
+                approx = sigma_max(Gm)
+                approx = np.where(np.isfinite(approx), approx, 0.0)
+                cand = np.take_along_axis(cand, np.argsort(approx, axis=1)[:, -3:], axis=1)
+            except np.linalg.LinAlgError:
+                pass
+    cand = np.concatenate([np.zeros((rest.size, 1)), cand], axis=1)
+    k = cand.shape[1]
+    if rest.size:
+        sig = sigma_at(np.repeat(rest, k), cand.ravel()).reshape(rest.size, k)
+        sig0[rest] = sig[:, 0]  # sigma_max at 0
+        best = sig.argmax(axis=1)
+        top = sig[np.arange(rest.size), best]
+        finite = top > sd[rest]
+        lb[rest] = np.where(finite, top, sd[rest])
+        pk[rest] = np.where(finite, cand[np.arange(rest.size), best], np.inf)
+    for i in rest[lb[rest] == 0.0]:  # zero at 2n + 2 distinct points besides 0: G = 0
+        amax = float(np.abs(lam[i]).max())
+        extra = np.geomspace(1e-3, 1e3, 2 * n + 2) * (amax if amax > 0 else 1.0)
+        s = sigma_at(np.full(extra.size, i), extra)
+        j = int(np.argmax(s))
+        lb[i], pk[i] = float(s[j]), float(extra[j])
+    converged = settled | (lb == 0.0)
+    doubt = np.zeros(M, dtype=bool)
+    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
+    if level is not None:  # an attained value above the level: certainly above
+        above = ~converged & (lb > lv)
+        settled |= above
+    def best_of(rows, test):
+        """The largest sigma_max over the finite test frequencies of each row (models
+        ``rows``): (value, frequency), -inf where a row has none."""
+        rr, cc = np.nonzero(np.isfinite(test))
+        sig = np.full(test.shape, -np.inf)
+        if rr.size:
+            sig[rr, cc] = sigma_at(rows[rr], test[rr, cc])
+        j = sig.argmax(axis=1)
+        r = np.arange(test.shape[0])
+        return sig[r, j], test[r, j]
+
+    act = np.flatnonzero(~converged & ~settled)
     for _ in range(_MAX_ITER):
-        act = np.flatnonzero(active)
         if act.size == 0:
             break
         gamma = (1.0 + 2.0 * rtol) * lb[act]
-        R = gamma[:, None, None] ** 2 * eye_m - DtD[act]
-        X = np.linalg.solve(R, np.concatenate([DtC[act], Bt[act]], axis=2))
-        Ah = A[act] + B[act] @ X[:, :, :n]
-        G = B[act] @ X[:, :, n:]
-        Q = CtC[act] + np.swapaxes(DtC[act], 1, 2) @ X[:, :, :n]
-        H = np.concatenate([np.concatenate([Ah, G], axis=2),
-                            np.concatenate([-Q, -np.swapaxes(Ah, 1, 2)], axis=2)], axis=1)
-        ev = np.linalg.eigvals(H)
-        norm_h = np.abs(H).sum(axis=1).max(axis=1)
-        on_axis = (np.abs(ev.real) <= AXIS_RTOL * np.abs(ev) + 1e-9 * norm_h[:, None]) & (
-            ev.imag > 0)
-        w = np.sort(np.where(on_axis, ev.imag, np.inf), axis=1)
-        mid = 0.5 * (w[:, :-1] + w[:, 1:])
-        ok = np.isfinite(mid) & (w[:, 1:] > w[:, :-1])
-        rows, cols = np.nonzero(ok)
-        done = np.ones(act.size, dtype=bool)
-        if rows.size:
-            sig = np.full(mid.shape, -np.inf)
-            sig[rows, cols] = sigma_max_of_selected(act[rows], mid[rows, cols])
-            j = np.argmax(sig, axis=1)
-            s = sig[np.arange(act.size), j]
-            up = s > gamma
-            lb[act[up]] = s[up]
-            pk[act[up]] = mid[np.flatnonzero(up), j[up]]
-            done = ~up
-        active[act[done]] = False
-    else:
-        i = int(np.flatnonzero(active)[0])
-        raise NumericalError(
-            f"H-infinity norm iteration did not converge in {_MAX_ITER} steps for model "
-            f"{idx[i]} (lower bound {lb[i]:.6g}); loosen rtol or rescale the model"
-        )
-    norm[idx] = lb
-    peak[idx] = pk
-    return norm, peak
+        ev, hn = spectrum(act, gamma)
+        mod = np.abs(ev)
+        are = np.abs(ev.real)
+        upper_half = ev.imag > 0
+        on = (are <= AXIS_RTOL * mod + AXIS_ATOL * hn) & upper_half
+        # midpoints between neighbouring crossings (sign change of sigma_max - gamma)
+        w = np.sort(np.where(on, ev.imag, np.inf), axis=1)
+        s, f = best_of(act, 0.5 * (w[:, :-1] + w[:, 1:]))
+        up = s > gamma
+        st_ = np.flatnonzero(~up)  # would stop here: the consistency tests first
+        if st_.size:
+            ev, mod, are, on, hn = ev[st_], mod[st_], are[st_], on[st_], hn[st_]
+            ups = upper_half[st_]
+            # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
+            # (a peak at w = 0 meeting the level) splits there by rounding along either
+            # axis; the region is decided by sigma_max(0), so they are left out of counts
+            origin = mod <= ORIGIN_RTOL * hn
+            # parity: sigma_max - gamma < 0 at 0 and at infinity: crossings come in pairs
+            odd = ((on & ~origin).sum(axis=1) % 2 == 1) & (sig0[act[st_]] < gamma[st_])
+            # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
+            # (lam and -conj(lam)): an eigenvalue whose mirror image is missing by more
+            # than half its distance to the axis cannot be placed on either side
+            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+            dist[:, diag, diag] = np.inf
+            pair_error = dist.min(axis=2)
+            sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn) | origin
+            # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
+            unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
+            # the looser-band eigenvalues and those whose side rounding leaves open, with
+            # the midpoint towards 0; a crossing without its partner (odd count) or an
+            # eigenvalue whose side is open: the interval above gamma starts or ends
+            # there, so both of its sides are probed
+            near = ((are <= NEAR_AXIS_RTOL * mod) | ~sided) & ups & ~on
+            pts = [np.where(near, ev.imag, np.inf), np.where(near, 0.5 * ev.imag, np.inf)]
+            lone = (odd[:, None] & on) | (~sided & ups & ~on)
+            if lone.any():
+                probe = np.where(lone[:, :, None], ev.imag[:, :, None] * _PROBE_REL, np.inf)
+                pts.append(probe.reshape(st_.size, -1))
+            s2, f2 = best_of(act[st_], np.concatenate(pts, axis=1))
+            up2 = s2 > gamma[st_]
+            s[st_[up2]], f[st_[up2]] = s2[up2], f2[up2]
+            up[st_[up2]] = True
+            bad = odd | unpaired
+            done = act[st_[~up2 & ~bad]]
+            converged[done] = True
+            doubt[act[st_[~up2 & bad]]] = True
+            why[act[st_[~up2 & odd]]] = 1
+            why[act[st_[~up2 & unpaired & ~odd]]] = 2
+        lb[act[up]] = s[up]
+        pk[act[up]] = f[up]
+        act = act[up]
+    sub_status = [""] * M
+
+    def shown(i, x):  # a value of model i in its own units
+        if et is None:
+            return x
+        return float(np.ldexp(x, et[i] if idx is None else et[idx[i]]))
+
+    for i in act:
+        sub_status[i] = (f"level-set iteration did not converge in {_MAX_ITER} steps (lower "
+                         f"bound {shown(i, lb[i]):.6g})")
+    for i in np.flatnonzero(doubt):
+        level = shown(i, (1 + 2 * rtol) * lb[i])
+        sub_status[i] = (
+            f"an odd number of imaginary-axis crossings of the Hamiltonian at level {level:.6g} "
+            "(a crossing lost to rounding): the upper bound is not certified" if why[i] == 1
+            else f"the Hamiltonian at level {level:.6g} has eigenvalues without their mirror "
+                 "image -conj(lambda) (rounding in an ill-conditioned model): its crossings "
+                 "cannot be counted, the upper bound is not certified")
+    # models settled above the level: a lower bound above it, nothing certified from above
+    uncertain = ~(converged | settled) | (settled & ~below_level)
+    upper_scaled = np.where(below_level, lv if level is not None else 0.0, np.nan)
+    e_t = et if (et is None or idx is None) else et[idx]
+    e_a = ea if (ea is None or idx is None) else ea[idx]
+    sub = _finish(lb, pk, uncertain, sub_status, e_t, e_a, rtol)
+    if below_level.any():  # certified below the level: the level is the upper bound
+        sub.upper[below_level] = (upper_scaled[below_level] if e_t is None
+                                  else np.ldexp(upper_scaled[below_level], e_t[below_level]))
+    if idx is None:
+        return NormCertificate(sub.norm, sub.peak, sub.upper, sub.status, st)
+    norm[idx], peak[idx], upper[idx] = sub.norm, sub.peak, sub.upper
+    for j, i in enumerate(idx):
+        status[i] = sub.status[j]
+    return NormCertificate(norm, peak, upper, status, st)
+
+
+def _finish(lb, pk, uncertain, status, et, ea, rtol) -> NormCertificate:
+    """Undo the power-of-2 scaling; norms beyond the floating-point range are in doubt."""
+    if et is None:
+        upper = (1.0 + 2.0 * rtol) * lb
+        if uncertain.any():
+            upper = np.where(uncertain, np.inf, upper)
+        return NormCertificate(lb, pk, upper, status)
+    with np.errstate(over="ignore"):
+        norm = np.ldexp(lb, et)
+        peak = np.where(np.isfinite(pk), np.ldexp(pk, ea), pk)
+        upper = np.where(uncertain, np.inf, np.ldexp((1.0 + 2.0 * rtol) * lb, et))
+    status = list(status)
+    for i in np.flatnonzero(~np.isfinite(norm) | (~np.isfinite(upper) & ~uncertain)):
+        status[i] = status[i] or ("the norm exceeds the floating-point range "
+                                  f"(about 2^{int(et[i])}); rescale the inputs or outputs")
+        upper[i] = np.inf
+    return NormCertificate(norm, peak, upper, status)
 
 
 # --------------------------------------------------------------------------- H2 norm
@@ -797,7 +1168,7 @@ def h2_norm(A: Any, B: Any, C: Any, D: Any) -> float:
     if n == 0 or B.shape[1] == 0 or C.shape[0] == 0:
         return 0.0
     norm_a = float(np.abs(A).sum(axis=0).max())
-    if _unstable(np.linalg.eigvals(A), norm_a):
+    if not stability(A).stable[0]:
         return float("inf")
     BBt = B @ B.T
     P = scipy.linalg.solve_continuous_lyapunov(A, -BBt)

@@ -26,16 +26,21 @@ from collections.abc import Callable
 from dataclasses import dataclass, fields
 
 import numpy as np
+from scipy.linalg.lapack import dgebal as _GEBAL
 
 from .errors import PlantError
 
-__all__ = ["GeneralizedPlant", "PLANT_KEYS"]
+__all__ = ["GeneralizedPlant", "PlantScaling", "PLANT_KEYS"]
 
 PLANT_KEYS = ("A", "B1", "B2", "C1", "C2", "D11", "D12", "D21", "D22")
 
 # Relative tolerances of the condition checks.
 _RANK_RTOL = 1e-10  # singular value / largest singular value below this = rank deficient
-_PBH_RTOL = 1e-9  # PBH test: smallest singular value relative to the matrix scale
+# PBH test: smallest singular value of [A - lam I, ||A|| Q] relative to ||A|| (balanced A, Q an
+# orthonormal basis of range(B2)); an exactly uncontrollable mode gives about eps ||A|| cond(lam)
+_PBH_RTOL = 1e-8
+# largest ratio of fast to slow scale of the scaled Riccati equations (see _check_cheapness)
+CHEAP_LIMIT = 300.0
 # a zero lam with |Re lam| <= _AXIS_RTOL |lam| + _AXIS_ATOL ||A|| is "on" the imaginary axis
 # (same rule as the Riccati solver: slow but genuine poles and zeros are not on it)
 _AXIS_RTOL = 1e-6
@@ -213,6 +218,23 @@ class GeneralizedPlant:
             store[name] = build()
         return store[name]
 
+    # --------------------------------------------------------------- scaling
+    def scaling(self) -> PlantScaling:
+        """The coordinates and units in which the plant is well scaled (kept on the plant).
+
+        Every question the package asks of a generalized plant (the existence conditions,
+        the gamma iteration, the central controller) has an answer that does not depend
+        on the units of w, z, u, y nor on the state coordinates; the numbers it is
+        computed from do. This scaling removes that dependence before any tolerance is
+        applied (see :class:`PlantScaling`).
+
+        Raises
+        ------
+        PlantError
+            when D12 lacks full column rank or D21 full row rank (no normalization).
+        """
+        return self.memo("scaling", lambda: _plant_scaling(self))
+
     # ------------------------------------------------------------ conditions
     def check_conditions(self) -> None:
         """Check the existence assumptions (A1)-(A4) of the Riccati route.
@@ -220,51 +242,57 @@ class GeneralizedPlant:
         Raises
         ------
         PlantError
-            naming the failing condition: the uncontrollable / unobservable
-            unstable mode, the rank of D12 or D21, or the frequency of an
-            invariant zero on the imaginary axis (with the usual remedy).
+            naming the failing condition: the rank of D12 or D21, the uncontrollable /
+            unobservable unstable mode, or the frequency of an invariant zero on the
+            imaginary axis (with the usual remedy).
 
         Notes
         -----
-        Stabilizability and detectability use the PBH test on the eigenvalues
-        with non-negative real part. For (A3), with D12 of full column rank,
+        All tests run on the balanced realization of :meth:`scaling` (state coordinates
+        balanced, u and y normalized by the SVDs of D12 and D21), with the control and
+        measurement matrices replaced by orthonormal bases of their ranges scaled to
+        ``||A||``: a rank decision then does not depend on units or state coordinates
+        (a plant with a = 1e8 and B2 = 1 is stabilizable). Stabilizability and
+        detectability use the PBH test on the eigenvalues with non-negative real part
+        (Hautus 1969). For (A3), with D12 of full column rank,
         ``[A - sI, B2; C1, D12]`` loses column rank exactly at the unobservable
-        eigenvalues of ``(U' C1, A - B2 D12^+ C1)`` where the columns of U span
-        the orthogonal complement of range(D12); (A4) is the dual statement.
-        A plant that passed is remembered (by content, see :meth:`memo`), so a second
-        call costs a digest of the matrices.
+        eigenvalues of ``(U' C1, A - B2 D12^+ C1)`` where the columns of U span the
+        orthogonal complement of range(D12); (A4) is the dual statement. A plant that
+        passed is remembered (by content, see :meth:`memo`), so a second call costs a
+        digest of the matrices.
         """
         self.memo("conditions", self._check_conditions)
 
     def _check_conditions(self) -> bool:
-        A, B1, B2, C1, C2 = self.A, self.B1, self.B2, self.C1, self.C2
-        scale = max(1.0, float(np.linalg.norm(A, 2)))
+        sc = self.scaling()
+        _check_cheapness(self, sc)
+        t = sc.t
+        A = self.A * (t[None, :] / t[:, None])  # T^-1 A T
+        B1, B2 = self.B1 / t[:, None], self.B2 / t[:, None]
+        C1, C2 = self.C1 * t[None, :], self.C2 * t[None, :]
+        scale = _matrix_scale(A)
         eigs = np.linalg.eigvals(A)
         suspect = eigs[eigs.real >= -(_AXIS_RTOL * np.abs(eigs) + _AXIS_ATOL * scale)]
-        bad = _pbh_defects(A, B2, suspect, scale, columns=True)
+        bad = _pbh_defects(A, _range_basis(B2, columns=True), suspect, scale, columns=True)
         if bad.any():
             lam = suspect[np.argmax(bad)]
             raise PlantError(
                 f"(A, B2) is not stabilizable: mode {_fmt(lam)} cannot be moved by the "
                 "controls; add an actuator acting on it or remove it from the model"
             )
-        bad = _pbh_defects(A, C2, suspect, scale, columns=False)
+        bad = _pbh_defects(A, _range_basis(C2, columns=False), suspect, scale, columns=False)
         if bad.any():
             lam = suspect[np.argmax(bad)]
             raise PlantError(
                 f"(C2, A) is not detectable: mode {_fmt(lam)} is not seen by the "
                 "measurements; add a sensor seeing it or remove it from the model"
             )
-        u12, s12, vt12 = np.linalg.svd(self.D12)
-        u21, s21, vt21 = np.linalg.svd(self.D21)
-        _check_rank("D12", self.D12, full="column", s=s12)
-        _check_rank("D21", self.D21, full="row", s=s21)
         # (A3): zeros of [A - sI, B2; C1, D12] on the imaginary axis.
-        u_, s_, vt = u12, s12, vt12
+        u_, s_, vt = sc.svd12
         pinv = vt.T @ (u_[:, : self.nu].T / s_[:, None])
         Az = A - B2 @ pinv @ C1
         Cz = u_[:, self.nu :].T @ C1
-        w = _axis_zero(Az, Cz, scale)
+        w = _axis_zero(Az, Cz)
         if w is not None:
             raise PlantError(
                 f"[A - jwI, B2; C1, D12] loses rank at w={_fmt(w)} rad/s (invariant zero of the "
@@ -273,11 +301,11 @@ class GeneralizedPlant:
                 "left half-plane (e.g. s -> s + 1e-4)"
             )
         # (A4): zeros of [A - sI, B1; C2, D21] on the imaginary axis (dual).
-        u_, s_, vt = u21, s21, vt21
+        u_, s_, vt = sc.svd21
         pinv = vt[: self.ny].T @ (u_.T / s_[:, None])
         Ay = A - B1 @ pinv @ C2
         By = B1 @ vt[self.ny :].T
-        w = _axis_zero(Ay.T, By.T, scale)
+        w = _axis_zero(Ay.T, By.T)
         if w is not None:
             raise PlantError(
                 f"[A - jwI, B1; C2, D21] loses rank at w={_fmt(w)} rad/s (invariant zero of the "
@@ -286,6 +314,161 @@ class GeneralizedPlant:
                 "the left half-plane (e.g. s -> s + 1e-4)"
             )
         return True
+
+
+@dataclass(frozen=True)
+class PlantScaling:
+    """A change of state coordinates and of the units of w, z, u, y that scales a plant well.
+
+    The synthesis works on ``x = diag(t) x~``, ``z~ = Sz z``, ``w = Sw' w~``,
+    ``u = Tu u~``, ``y~ = Ty y`` with
+
+    - ``t`` from balancing (Parlett and Reinsch 1969, LAPACK ``dgebal``, as in
+      :func:`scipy.linalg.matrix_balance`) the nonnegative matrix whose state block is
+      ``|A|`` and whose four extra rows / columns hold the row norms of ``B1`` and
+      ``B2 Tu0`` and the column norms of ``C1`` and ``Ty0 C2`` (one row or column per
+      signal group, whose own scaling is left free);
+    - ``Tu0 = V S^-1`` and ``Ty0 = S2^-1 U2'`` from the SVDs ``D12 = U S V'`` and
+      ``D21 = U2 [S2 0] V2'``, and the rotations ``Rz``, ``Rw`` that bring D12 to
+      ``[0; I]`` and D21 to ``[0, I]`` (Zhou, Doyle and Glover 1996, section 17.1);
+    - two scalars: ``sigma_z`` makes ``||B2~|| = ||C1~||`` and ``sigma_w`` makes
+      ``||B1~|| = ||C2~||`` (Frobenius norms), so ``Sz = Rz / sigma_z``,
+      ``Tu = sigma_z Tu0``, ``Sw = sigma_w Rw``, ``Ty = Ty0 / sigma_w``.
+
+    Then ``gamma = gamma_scale * gamma~`` with ``gamma_scale = sigma_z / sigma_w``: a change
+    of units of z or w by c changes gamma_scale by c and leaves the scaled problem the
+    same up to rounding, and a change of u or y leaves it the same up to an orthogonal
+    rotation of u~ or y~. State scalings change ``t`` (up to the powers of 2 that the
+    balancing uses), not the balanced matrices.
+
+    Attributes
+    ----------
+    t : (n,) state scaling. Rz, Rw : orthogonal rotations of z and w.
+    Tu0, Ty0 : the unit-free normalizations of u and y.
+    sigma_z, sigma_w : the scalars above. gamma_scale : ``sigma_z / sigma_w``.
+    svd12, svd21 : the SVDs ``(U, s, V')`` of D12 and D21.
+    d12_ratio, d21_ratio : smallest over largest singular value of D12 and D21.
+    """
+
+    t: np.ndarray
+    Rz: np.ndarray
+    Rw: np.ndarray
+    Tu0: np.ndarray
+    Ty0: np.ndarray
+    sigma_z: float
+    sigma_w: float
+    svd12: tuple
+    svd21: tuple
+
+    @property
+    def gamma_scale(self) -> float:
+        return self.sigma_z / self.sigma_w
+
+    @property
+    def d12_ratio(self) -> float:
+        s = self.svd12[1]
+        return float(s[-1] / s[0])
+
+    @property
+    def d21_ratio(self) -> float:
+        s = self.svd21[1]
+        return float(s[-1] / s[0])
+
+
+def _plant_scaling(p: GeneralizedPlant) -> PlantScaling:
+    n, nu, ny = p.n, p.nu, p.ny
+    u, s, vt = np.linalg.svd(p.D12)
+    _check_rank("D12", p.D12, full="column", s=s)
+    u2, s2, vt2 = np.linalg.svd(p.D21)
+    _check_rank("D21", p.D21, full="row", s=s2)
+    Rz = np.vstack([u[:, nu:].T, u[:, :nu].T])
+    Tu0 = vt.T / s[None, :]
+    Rw = np.vstack([vt2[ny:], vt2[:ny]])
+    Ty0 = u2.T / s2[:, None]
+    B2n = p.B2 @ Tu0
+    C2n = Ty0 @ p.C2
+    S = np.zeros((n + 4, n + 4))
+    S[:n, :n] = np.abs(p.A)
+    S[:n, n] = np.linalg.norm(p.B1, axis=1)
+    S[:n, n + 1] = np.linalg.norm(B2n, axis=1)
+    S[n + 2, :n] = np.linalg.norm(p.C1, axis=0)
+    S[n + 3, :n] = np.linalg.norm(C2n, axis=0)
+    t = np.ones(n)
+    if np.all(np.isfinite(S)):  # LAPACK dgebal, scaling only (what matrix_balance calls)
+        _ba, _lo, _hi, sc, info = _GEBAL(S, scale=1, permute=0)
+        if info == 0:
+            t = np.asarray(sc[:n], dtype=float)
+    sigma_z = _ratio_root(np.linalg.norm(p.C1 * t[None, :]), np.linalg.norm(B2n / t[:, None]))
+    sigma_w = _ratio_root(np.linalg.norm(C2n * t[None, :]), np.linalg.norm(p.B1 / t[:, None]))
+    return PlantScaling(t=t, Rz=Rz, Rw=Rw, Tu0=Tu0, Ty0=Ty0, sigma_z=sigma_z, sigma_w=sigma_w,
+                        svd12=(u, s, vt), svd21=(u2, s2, vt2))
+
+
+def _check_cheapness(p: GeneralizedPlant, sc: PlantScaling) -> None:
+    """(A2) in its quantitative form: no control (measurement) may be so lightly weighted
+    relative to its effect that the Riccati equations become singularly perturbed.
+
+    On the scaled plant (states balanced, u and y normalized by D12 and D21, z and w by
+    the scalars of :class:`PlantScaling`; every number below is unit-free and does not
+    depend on the state coordinates; Frobenius norms) the fast eigenvalues of the X
+    Hamiltonian have size
+    ``||B2|| ||C1||`` and the dynamics the problem is about have size
+    ``max(||A||, ||B1|| ||C1||)``. Their ratio (the dual ratio ``||C2|| ||B1|| /
+    max(||A||, ||C1|| ||B1||)`` for the Y equation) is about 1 for well-posed designs
+    (at most about 7 over 200 random plants, 1.3 on the bundled crane); it grows like
+    1 / sqrt(ratio of D12's singular values) as a control loses its weight, and the
+    Riccati route loses accuracy beyond ``CHEAP_LIMIT`` (measured on random plants: gamma_opt
+    accurate to 1e-5 up to about 700, off by 1e-3 to 2e-2 from about 800 on; the limit
+    keeps a factor of 40 above the well-posed designs).
+    """
+    if p.n < 2:  # one state: a 2 x 2 Hamiltonian has a single pair, nothing to separate
+        return
+    t = sc.t
+    A = p.A * (t[None, :] / t[:, None])
+    B1 = (p.B1 / t[:, None]) * sc.sigma_w
+    B2 = (p.B2 / t[:, None]) @ sc.Tu0 * sc.sigma_z
+    C1 = (p.C1 * t[None, :]) / sc.sigma_z
+    C2 = sc.Ty0 @ (p.C2 * t[None, :]) / sc.sigma_w
+    a, b1, b2, c1, c2 = (float(np.sqrt((M * M).sum())) for M in (A, B1, B2, C1, C2))
+    for name, fast, slow, ratio, what in (
+        ("D12", b2 * c1, max(a, b1 * c1), sc.d12_ratio, "control"),
+        ("D21", c2 * b1, max(a, c1 * b1), sc.d21_ratio, "measurement"),
+    ):
+        measure = fast / slow if slow > 0 else 0.0
+        if measure > CHEAP_LIMIT:
+            effort = "control effort" if what == "control" else "measurement noise"
+            raise PlantError(
+                f"{name} is nearly singular for this plant (smallest/largest singular value "
+                f"{ratio:.2e}; a {what} is weighted {measure:.3g} times more lightly than its "
+                f"effect, limit {CHEAP_LIMIT:g}), so the Riccati equations lose accuracy; give "
+                f"every {what} a weight of comparable effect (a small weight on the missing "
+                f"{effort} channel, or a larger one where it is too small)"
+            )
+
+
+def _ratio_root(num: float, den: float) -> float:
+    """``sqrt(num / den)``, 1 where either is zero (nothing to balance) or not finite."""
+    if not (num > 0 and den > 0 and np.isfinite(num) and np.isfinite(den)):
+        return 1.0
+    r = float(np.sqrt(num / den))
+    return r if np.isfinite(r) and r > 0 else 1.0
+
+
+def _matrix_scale(A: np.ndarray) -> float:
+    """``||A||_F`` (within sqrt(n) of the spectral norm), or 1 for A = 0 (then every test is
+    relative to the orthonormal bases)."""
+    s = float(np.sqrt((A * A).sum())) if A.size else 0.0
+    return s if s > 0 else 1.0
+
+
+def _range_basis(M: np.ndarray, columns: bool) -> np.ndarray:
+    """Orthonormal basis of the column space (``columns``) or row space of M, as columns
+    (resp. rows); directions below 1e-12 of the largest singular value are dropped."""
+    if M.size == 0:
+        return M
+    u, s, vt = np.linalg.svd(M, full_matrices=False)
+    keep = s > 1e-12 * s[0] if s.size and s[0] > 0 else np.zeros(s.shape, bool)
+    return u[:, keep] if columns else vt[keep]
 
 
 # ---------------------------------------------------------------- helpers
@@ -365,29 +548,35 @@ def _check_rank(name: str, D: np.ndarray, full: str, s: np.ndarray | None = None
 
 
 def _pbh_defects(
-    A: np.ndarray, M: np.ndarray, lams: np.ndarray, scale: float, columns: bool
+    A: np.ndarray, Q: np.ndarray, lams: np.ndarray, scale: float, columns: bool
 ) -> np.ndarray:
-    """PBH test at each of ``lams``: True where [A - lam I, M] (columns=True) or
-    [A - lam I; M] (columns=False) loses rank (one stacked SVD for all lams)."""
+    """PBH test at each of ``lams``: True where [A - lam I, scale Q] (columns=True) or
+    [A - lam I; scale Q] (columns=False) has smallest singular value below
+    ``_PBH_RTOL * scale``; Q is an orthonormal basis of the range of B (or of the row
+    space of C) so that the test does not depend on the units of u or y (one stacked
+    SVD for all lams)."""
     n = A.shape[0]
     if lams.size == 0:
         return np.zeros(0, dtype=bool)
+    if Q.size == 0:
+        return np.ones(lams.size, dtype=bool)
     shifted = A[None, :, :] - lams[:, None, None] * np.eye(n)[None]
-    Ms = np.broadcast_to(M.astype(complex), (lams.size,) + M.shape)
+    Ms = np.broadcast_to((scale * Q).astype(complex), (lams.size,) + Q.shape)
     block = np.concatenate([shifted, Ms], axis=2 if columns else 1)
     s = np.linalg.svd(block, compute_uv=False)
-    mscale = max(scale, float(np.abs(M).sum(axis=0 if columns else 1).max()) if M.size else 0.0)
-    return s[:, n - 1] < _PBH_RTOL * 1e2 * mscale
+    return s[:, n - 1] < _PBH_RTOL * scale
 
 
-def _axis_zero(A: np.ndarray, C: np.ndarray, scale: float) -> float | None:
-    """Frequency of an unobservable eigenvalue of (C, A) on the imaginary axis, else None."""
+def _axis_zero(A: np.ndarray, C: np.ndarray) -> float | None:
+    """Frequency of an unobservable eigenvalue of (C, A) on the imaginary axis, else None
+    (A and C in balanced coordinates)."""
     eigs = np.linalg.eigvals(A)
-    ascale = max(scale, float(np.abs(A).sum(axis=0).max()))
-    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * np.abs(eigs) + _AXIS_ATOL * ascale]
+    scale = _matrix_scale(A)
+    near = eigs[np.abs(eigs.real) <= _AXIS_RTOL * np.abs(eigs) + _AXIS_ATOL * scale]
     if near.size == 0:
         return None
-    if C.shape[0] == 0:
+    Q = _range_basis(C, columns=False)
+    if Q.shape[0] == 0:
         return abs(float(near[0].imag))
-    bad = _pbh_defects(A, C, near, ascale, columns=False)
+    bad = _pbh_defects(A, Q, near, scale, columns=False)
     return abs(float(near[np.argmax(bad)].imag)) if bad.any() else None

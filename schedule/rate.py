@@ -57,6 +57,7 @@ from scipy.integrate import solve_ivp
 from scipy.linalg import matrix_balance, solve_continuous_lyapunov
 
 from .errors import InputError, NumericalError
+from .norms import stability
 
 __all__ = [
     "RateBound",
@@ -100,18 +101,18 @@ def lyapunov_certificates(A) -> np.ndarray:
     Raises
     ------
     NumericalError
-        If a frozen loop is not stable (no positive definite P exists) or the
+        If a frozen loop is not stable by the package's predicate
+        (:func:`schedule.norms.stability`; no positive definite P exists) or the
         residual check fails; the message names the point.
     """
     A = _stack(A, "closed-loop A")
     out = np.empty_like(A)
     n = A.shape[1]
+    st = stability(A)  # the package's one stability predicate
     for k in range(A.shape[0]):
-        sa = np.max(np.linalg.eigvals(A[k]).real) if n else -np.inf
-        if sa >= 0:
-            raise NumericalError(f"frozen closed loop at point {k} is unstable (spectral "
-                                 f"abscissa {sa:.3g}); no rate bound exists - fix the design "
-                                 "there first")
+        if not st.stable[k]:
+            raise NumericalError(f"{st.reason(k, f'frozen closed loop at point {k}')}; no rate "
+                                 "bound exists - fix the design there first")
         out[k] = _solve(A[k], -np.eye(n), "P", k)
     return out
 

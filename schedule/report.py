@@ -111,12 +111,13 @@ def _report_member(name: str) -> bool:
 # never a second copy of 6 dB / 45 deg: the plots mark these two.
 def margin_requirement(result: CheckResult) -> tuple[float, float]:
     """The required input disk margins ``(gain dB, phase deg)`` of the pass criterion."""
-    return float(result.settings.gain_margin_db), float(result.settings.phase_margin_deg)
+    c = result.criterion
+    return float(c.gain_margin_db), float(c.phase_margin_deg)
 
 
 def ratio_limit(result: CheckResult) -> float:
     """The largest passing closed-loop norm / gamma: ``1 + gamma_tolerance``."""
-    return 1.0 + float(result.settings.gamma_tolerance)
+    return float(result.criterion.norm_limit / result.gamma)
 
 
 def _label(result: CheckResult, j: int) -> str:
@@ -392,16 +393,13 @@ def _ptxt(result: CheckResult, row) -> str:
 def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> str:
     """The summary page as Markdown: verdict, settings, tables, worst points, rate, caution."""
     s = result.summary()
-    st = result.settings
     v = result.values
     L = ["# Frozen-point check of the scheduled controller", ""]
     L += ["## Summary", "",
           f"- Verdict: **{'PASS' if result.all_passed else 'FAIL'}** "
           f"({s['failed']} of {s['points']} points fail)",
-          f"- Family gamma: {result.gamma:.6g}; a point passes when norm <= gamma "
-          f"(1 + {st.gamma_tolerance:g}) = {result.gamma * (1 + st.gamma_tolerance):.6g}",
-          f"- Margin requirement at the plant input (loop at a time, disk): "
-          f"{st.gain_margin_db:g} dB and {st.phase_margin_deg:g} deg (common practice)",
+          f"- Family gamma: {result.gamma:.6g}; a point passes when "
+          f"{result.criterion.describe()}",
           f"- Unstable frozen loops: {s['unstable']}",
           f"- Largest norm / gamma: {_fmt(_num(s['max_ratio']))}", ""]
     if s["evidence_points"]:

@@ -51,6 +51,7 @@ AXIS_RTOL = 1e-6
 AXIS_ATOL = 1e-12
 COND_MAX = 1e12  # condition number of U1 above this: no usable solution
 RESIDUAL_RTOL = 1e-6  # relative residual above this: solution rejected
+SCALING_EXP = 30  # symplectic scaling d within [2^-30, 2^30]
 
 
 @dataclass(frozen=True)
@@ -66,6 +67,9 @@ class RiccatiResult:
         eigenvalues lam of H (below 1: on the imaginary axis).
     cond_u1 : condition number of U1.
     eigenvalues : ascending eigenvalues of X (None on failure).
+    balanced_eigenvalues : ascending eigenvalues of ``D X D``, the solution in the
+        coordinates of the balanced Hamiltonian (same inertia as X, by Sylvester's law;
+        its natural size is 1, so sign decisions are made on it).
     """
 
     X: np.ndarray | None
@@ -74,6 +78,7 @@ class RiccatiResult:
     axis_margin: float = np.nan
     cond_u1: float = np.nan
     eigenvalues: np.ndarray | None = None
+    balanced_eigenvalues: np.ndarray | None = None
 
     @property
     def ok(self) -> bool:
@@ -280,6 +285,7 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
             cond_u1=value,
         )
     cond = value
+    evs = ev
     if scaled:
         X = Xs / dd  # D^-1 Xs D^-1
         ev = np.linalg.eigvalsh(X)
@@ -294,26 +300,37 @@ def solve_riccati(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> RiccatiResult:
             axis_margin=margin,
             cond_u1=cond,
         )
-    return RiccatiResult(X, "", residual=res, axis_margin=margin, cond_u1=cond, eigenvalues=ev)
+    return RiccatiResult(X, "", residual=res, axis_margin=margin, cond_u1=cond, eigenvalues=ev,
+                         balanced_eigenvalues=evs)
 
 
 def _symplectic_scaling(A: np.ndarray, R: np.ndarray, Q: np.ndarray) -> np.ndarray | None:
     """Diagonal D (powers of 2) balancing the Hamiltonian, or None when D = I.
 
     Uses the structure-preserving similarity ``diag(D, D^-1)``: ``A -> D^-1 A D``,
-    ``R -> D^-1 R D^-1``, ``Q -> D Q D``. Row i of Q scales with d_i^2 and of R
-    with d_i^-2, so ``d_i = (||R_i|| / ||Q_i||)^(1/4)`` (1-norms) balances them;
-    rows that are (nearly) zero are left alone, d is limited to [2^-8, 2^8] and
-    rounded to powers of two so the scaling adds no rounding error.
+    ``R -> D^-1 R D^-1``, ``Q -> D Q D``. Row i of Q scales with d_i^2 and of R with
+    d_i^-2. With ``m_i = max(sqrt(||R_i|| ||Q_i||), ||A||)`` (1-norms), ``d_i^2 = ||R_i|| /
+    m_i`` when ``||R_i|| >= ||Q_i||`` and ``m_i / ||Q_i||`` otherwise: the two blocks meet at
+    ``sqrt(||R_i|| ||Q_i||)`` (``d_i = (||R_i|| / ||Q_i||)^(1/4)``) when that is above the
+    size of A, and the larger block is brought down to the size of A otherwise (for
+    example Q = 0 with a huge R, as in the one-block problem at small gamma, where the
+    eigenvalues of H are those of A and -A'). Rows where both are (nearly) zero are left
+    alone; d is limited to [2^-30, 2^30] and rounded to powers of two so the scaling adds
+    no rounding error.
     """
     qn = np.abs(Q).sum(axis=1)
     rn = np.abs(R).sum(axis=1)
-    tiny = 1e-8 * max(float(np.abs(A).sum(axis=1).max()), float(qn.max()), float(rn.max()))
-    ok = (qn > tiny) & (rn > tiny)
-    if not ok.any():
+    an = float(np.abs(A).sum(axis=1).max())
+    tiny = 1e-8 * max(an, float(qn.max()), float(rn.max()))
+    ok = (qn > tiny) | (rn > tiny)
+    if not ok.any() or tiny == 0.0:
         return None
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m = np.maximum(np.sqrt(rn * qn), an)
+        m = np.where(m > 0, m, np.maximum(rn, qn))
+        d2 = np.where(rn >= qn, rn / m, m / qn)
     e = np.zeros(A.shape[0])
-    e[ok] = np.clip(np.rint(0.25 * np.log2(rn[ok] / qn[ok])), -8, 8)
+    e[ok] = np.clip(np.rint(0.5 * np.log2(d2[ok])), -SCALING_EXP, SCALING_EXP)
     if not e.any():
         return None
     return np.exp2(e)

@@ -83,3 +83,20 @@ def toml_weights(performance: Sequence[tuple] = (), effort: Sequence[tuple] = ()
 def performance_numbers(peak: float, bandwidth, low_error: float) -> dict:
     """The keys of a performance weight (``bandwidth`` may be a scheduled inline table)."""
     return {"peak_sensitivity": peak, "bandwidth": bandwidth, "low_frequency_error": low_error}
+
+
+def lightly_damped_modes(rng, n, zeta):
+    """The state matrix of a stable model of order n (even) with one mode of damping zeta
+    (natural frequency 0.1..100 rad/s) among well damped ones (0.05..0.7), in random
+    coordinates: ``(A, damped frequency of that mode)``."""
+    import numpy as np
+    from scipy.linalg import block_diag
+
+    wn = 10.0 ** rng.uniform(-1.0, 2.0)
+    wd = wn * np.sqrt(1.0 - zeta * zeta)
+    blocks = [np.array([[-zeta * wn, wd], [-wd, -zeta * wn]])]
+    while sum(b.shape[0] for b in blocks) < n:
+        w2, z2 = 10.0 ** rng.uniform(-1.0, 2.0), rng.uniform(0.05, 0.7)
+        blocks.append(np.array([[-z2 * w2, w2], [-w2, -z2 * w2]]))
+    T = np.eye(n) + 0.3 * rng.standard_normal((n, n))
+    return T @ block_diag(*blocks) @ np.linalg.inv(T), wd

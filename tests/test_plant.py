@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from schedule.errors import PlantError, ScheduleError
 from schedule.plant import PLANT_KEYS, GeneralizedPlant
@@ -218,3 +220,57 @@ def test_from_validated_skips_checks_but_holds_the_same_arrays():
         assert getattr(q, k) is d[k]
     assert (q.n, q.nw, q.nu, q.nz, q.ny) == (p.n, p.nw, p.nu, p.nz, p.ny)
     q.check_conditions()
+
+
+# ----------------------------------------------------------------- scale invariance
+def _scaled(d, t, W=None, V=None):
+    """x = diag(t) x~; u = W u~; y~ = V y (a change of coordinates and units)."""
+    Ti = 1.0 / t
+    e = dict(d, A=Ti[:, None] * d["A"] * t[None, :], B1=Ti[:, None] * d["B1"],
+             B2=Ti[:, None] * d["B2"], C1=d["C1"] * t[None, :], C2=d["C2"] * t[None, :])
+    if W is not None:
+        e.update(B2=e["B2"] @ W, D12=e["D12"] @ W, D22=e["D22"] @ W)
+    if V is not None:
+        e.update(C2=V @ e["C2"], D21=V @ e["D21"], D22=V @ e["D22"])
+    return e
+
+
+def test_badly_scaled_plant_is_stabilizable():
+    """a = 1e8, B2 = 1 (issue 12): [a - lam, b] at lam = a is [0, 1], full rank (PBH, Hautus
+    1969); the earlier threshold grew with ||A|| and called it "not stabilizable"."""
+    d = _good(1)
+    d.update(A=np.array([[1e8]]), B2=np.ones((1, 1)), C2=np.ones((1, 1)))
+    GeneralizedPlant(**d).check_conditions()
+
+
+@settings(max_examples=30, deadline=None)
+@given(seed=st.integers(0, 2**31 - 1))
+def test_conditions_do_not_depend_on_coordinates_or_units(seed):
+    """The PBH rank of [A - lam I, B] and [A - lam I; C] is unchanged by x = T x~, u = W u~,
+    y~ = V y with T, W, V invertible (Hautus 1969). Diagonal state scalings 1e-3..1e3 made
+    26 of 60 plants "not stabilizable" before the fix; u / y changes of condition 1e6,
+    11 of 20. An uncontrollable mode stays uncontrollable under the same changes."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(2, 6))
+    d = _good(n)
+    d.update(A=rng.standard_normal((n, n)) + 0.5 * np.eye(n),
+             B2=rng.standard_normal((n, 2)), C2=rng.standard_normal((2, n)),
+             D12=np.vstack([np.zeros((1, 2)), np.eye(2)]), C1=rng.standard_normal((3, n)),
+             D11=np.zeros((3, 3)), B1=rng.standard_normal((n, 3)),
+             D21=np.hstack([np.zeros((2, 1)), np.eye(2)]), D22=np.zeros((2, 2)))
+    try:
+        GeneralizedPlant(**d).check_conditions()
+    except PlantError:
+        return  # a random plant may have an imaginary-axis zero: not this test's business
+    t = 10.0 ** rng.uniform(-3, 3, n)
+    W = np.diag([1.0, 1e-6])[rng.permutation(2)] * 10.0 ** rng.uniform(-3, 3)
+    V = np.linalg.qr(rng.standard_normal((2, 2)))[0] @ np.diag([1.0, 1e-6]) * 10.0 ** (
+        rng.uniform(-3, 3))
+    GeneralizedPlant(**_scaled(d, t)).check_conditions()
+    GeneralizedPlant(**_scaled(d, t, W, V)).check_conditions()
+    # make mode 1 of A (in the eigenbasis) unreachable: A = diag(1, ...), B2 first row 0
+    bad = dict(d, A=np.diag(np.concatenate([[1.0], -1.0 - rng.random(n - 1)])))
+    bad["B2"] = bad["B2"].copy()
+    bad["B2"][0] = 0.0
+    with pytest.raises(PlantError, match=r"not stabilizable: mode 1\b"):
+        GeneralizedPlant(**_scaled(bad, t, W, V)).check_conditions()

@@ -1,6 +1,10 @@
 """Benchmark: frozen-point checks per second (closed loop of order 16), serial, workers, dask.
 
-Run: python tests/benchmarks/bench_check.py [N]   (default N = 10000 in-between points)
+Run: python tests/benchmarks/bench_check.py [N] [--compare]   (default N = 10000 points)
+
+With ``--compare`` only the serial kernel is timed, side by side with the package at the
+revision before the certified norm route (tests/benchmarks/_earlier.py), alternating old
+and new three times on the same points with one BLAS thread; it prints the ratio.
 
 Plant: three masses in a chain with scheduled spring stiffness and mass (6 states),
 plus one performance-weight state and one effort-weight state: generalized plant of
@@ -11,12 +15,17 @@ ratios printed are measured side by side in this one run.
 
 from __future__ import annotations
 
-import sys
-import tempfile
-import time
-from pathlib import Path
+import os
 
-import numpy as np
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")  # one BLAS thread: the comparison is per core
+
+import sys  # noqa: E402 (one BLAS thread first)
+import tempfile  # noqa: E402 (one BLAS thread first)
+import time  # noqa: E402 (one BLAS thread first)
+from pathlib import Path  # noqa: E402 (one BLAS thread first)
+
+import numpy as np  # noqa: E402 (one BLAS thread first)
 
 MODEL = '''
 import numpy as np
@@ -68,7 +77,7 @@ mass = [0.5, 1.25, 2.0]
             + SCHEDULED_MATRICES)
 
 
-def main(n: int = 10000) -> None:
+def main(n: int = 10000, compare: bool = False) -> None:
     from schedule.check import CheckSettings, check_arrays, check_family, check_points
     from schedule.design_file import load_design
     from schedule.family import design_family
@@ -91,6 +100,28 @@ def main(n: int = 10000) -> None:
     K = sc.evaluate(pts)
     t_eval = time.perf_counter() - t0
     print(f"interpolant evaluation (plant + controller) at {n} points: {t_eval:.2f} s")
+
+    if compare:
+        import _earlier
+
+        _earlier.load()
+        import schedule_old.check as old_check
+
+        from schedule.check import check_arrays as new_kernel
+
+        times = {"before": [], "now": []}
+        for _ in range(3):
+            for label, kern in (("before", old_check.check_arrays), ("now", new_kernel)):
+                t = time.perf_counter()
+                v = kern(P, K, fam.gamma, 0.02, True)
+                times[label].append(time.perf_counter() - t)
+                ok = int(v["norm_ok"].sum())
+            print(f"  before {times['before'][-1]:7.2f} s   now {times['now'][-1]:7.2f} s   "
+                  f"(points passing the norm check now: {ok} of {n})")
+        tb, tn = min(times["before"]), min(times["now"])
+        print(f"serial check kernel, {n} points, best of 3: before {tb:.2f} s, now {tn:.2f} s, "
+              f"now / before = {tn / tb:.2f}")
+        return
 
     s = CheckSettings(samples=0, gamma_opt=False, rate=False, chunk=1000)
     s_noclass = CheckSettings(samples=0, gamma_opt=False, rate=False, classical=False,
@@ -149,4 +180,5 @@ def main(n: int = 10000) -> None:
 
 
 if __name__ == "__main__":
-    main(int(sys.argv[1]) if len(sys.argv) > 1 else 10000)
+    args = [a for a in sys.argv[1:] if not a.startswith("--")]
+    main(int(args[0]) if args else 10000, compare="--compare" in sys.argv)

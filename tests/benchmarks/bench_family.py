@@ -1,6 +1,11 @@
 """Benchmark of the family synthesis: points per second, 1 vs 2 workers, dask vs local.
 
 Run: python tests/benchmarks/bench_family.py [--points 2000] [--points-20 N] [--repeats 3]
+     python tests/benchmarks/bench_family.py --compare [--points 600]
+
+``--compare`` times one worker only, side by side with the package at the revision before
+the certified controllers (tests/benchmarks/_earlier.py), alternating old and new runs
+with one BLAS thread, and prints the ratio of the medians.
 Prints the measured rates and ratios side by side from one run: the crane
 envelope, then synthetic 4-variable envelopes of order-8 and order-20
 generalized plants with 1 and 2 local workers and 2 dask workers (the machine
@@ -12,15 +17,19 @@ from __future__ import annotations
 
 import argparse
 import os
-import sys
-import time
-from pathlib import Path
 
-import numpy as np
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")  # one BLAS thread: the comparison is per core
 
-from schedule.design_file import load_design
-from schedule.family import run_design
-from schedule.types import LinearPlant
+import sys  # noqa: E402 (one BLAS thread first)
+import time  # noqa: E402 (one BLAS thread first)
+from pathlib import Path  # noqa: E402 (one BLAS thread first)
+
+import numpy as np  # noqa: E402 (one BLAS thread first)
+
+from schedule.design_file import load_design  # noqa: E402 (one BLAS thread first)
+from schedule.family import run_design  # noqa: E402 (one BLAS thread first)
+from schedule.types import LinearPlant  # noqa: E402 (one BLAS thread first)
 
 ORDER = 7  # plant order; the first-order performance weight adds one state
 
@@ -43,8 +52,11 @@ def synthetic_plant(point):
         _CACHE[order] = _model(order)
     A0, Ai, B, C = _CACHE[order]
     A = A0 + sum(point[f"p{i + 1}"] * a for i, a in enumerate(Ai))
-    return LinearPlant(A, B, C, np.zeros((2, 2)), tuple(f"x{i}" for i in range(order)),
-                       ("u", "d"), ("y1", "y2"))
+    plant_type = LinearPlant
+    if os.environ.get("BENCH_EARLIER"):  # the earlier revision checks its own type
+        from schedule_old.types import LinearPlant as plant_type
+    return plant_type(A, B, C, np.zeros((2, 2)), tuple(f"x{i}" for i in range(order)),
+                      ("u", "d"), ("y1", "y2"))
 
 
 def synthetic_plant_7(point):
@@ -92,6 +104,47 @@ def load() -> str:
     return "load average {:.2f} {:.2f} {:.2f}".format(*os.getloadavg())
 
 
+def compare(points: int, repeats: int) -> None:
+    """run_design (one worker, no fit) now against the earlier revision, alternating."""
+    import tempfile
+
+    import _earlier
+
+    _earlier.load()
+    import schedule_old.design_file as old_df
+    import schedule_old.family as old_family
+
+    from schedule.design_file import parse_design
+
+    def run(mod, spec):
+        t0 = time.perf_counter()
+        out = mod.run_design(spec, None, fit=False)
+        return time.perf_counter() - t0, len(out.family.points), int(np.sum(out.family.ok))
+
+    crane = Path(__file__).resolve().parents[2] / "operating_points" / "crane_design.toml"
+    cases = [("crane", lambda: old_df.load_design(crane), lambda: load_design(crane))]
+    with tempfile.TemporaryDirectory() as tmp:
+        for function, order in (("synthetic_plant_7", 8), ("synthetic_plant_19", 20)):
+            per_axis = max(2, int(round(points ** 0.25)))
+            text = design_text(function, per_axis)
+            cases.append((f"order {order}", lambda t=text: old_df.parse_design(t, tmp),
+                          lambda t=text: parse_design(t, tmp)))
+        for label, old_spec, new_spec in cases:
+            so, sn = old_spec(), new_spec()
+            before, now = [], []
+            for _ in range(repeats):
+                os.environ["BENCH_EARLIER"] = "1"
+                tb, n, okb = run(old_family, so)
+                del os.environ["BENCH_EARLIER"]
+                tn, _n, okn = run(sys.modules["schedule.family"], sn)
+                before.append(tb)
+                now.append(tn)
+            b, w = float(np.median(before)), float(np.median(now))
+            print(f"{label}: {n} points; before {n / b:.1f} points/s ({okb} ok), now "
+                  f"{n / w:.1f} points/s ({okn} ok); now / before time = {w / b:.2f}; {load()}",
+                  flush=True)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--points", type=int, default=2000, help="about this many points")
@@ -99,7 +152,14 @@ def main() -> None:
                         help="points for the order-20 envelope (default: --points)")
     parser.add_argument("--repeats", type=int, default=3, help="median of this many runs")
     parser.add_argument("--no-dask", action="store_true")
+    parser.add_argument("--compare", action="store_true",
+                        help="one worker, now against the earlier revision")
     args = parser.parse_args()
+    if args.compare:
+        import schedule.family  # noqa: F401 (the current package, for sys.modules)
+
+        compare(args.points, args.repeats)
+        return
     import tempfile
 
     from schedule.design_file import parse_design

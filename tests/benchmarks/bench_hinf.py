@@ -124,7 +124,7 @@ def care_loop(plants):
             1e-4,
         )[0]
         if np.isfinite(g):  # solve_continuous_are may fail at every gamma (large orders)
-            hinf.central_controller(p, 1.05 * g)
+            hinf.central_controller(p, 1.05 * g * P.gamma_scale)  # g is the scaled gamma
 
 
 def floor_time(n: int, calls: int, direct: bool = False) -> float:

@@ -1,6 +1,12 @@
 """Benchmark: H-infinity norm by the level-set method against a 10,000-point sweep.
 
-Run ``python tests/benchmarks/bench_norms.py``. For each order (4, 8, 16, 32) and
+Run ``python tests/benchmarks/bench_norms.py [--per-call]``. With ``--per-call`` it
+times, side by side in one run with one BLAS thread, ``h_infinity_norm`` against a plain
+two-step Hamiltonian loop written here (Bruinsma-Steinbuch lower bound, level sets,
+midpoints; none of the certificate's checks) and against the revision before the
+certified route (tests/benchmarks/_earlier.py), and prints the speed ratios.
+
+Without it: for each order (4, 8, 16, 32) and
 damping class (well damped, lightly damped) it times, side by side in one run,
 
 * ``h_infinity_norm`` (Boyd-Balakrishnan-Kabamba / Bruinsma-Steinbuch),
@@ -18,11 +24,17 @@ repeated runs; the machine is shared, so expect noise.
 
 from __future__ import annotations
 
-import time
+import os
 
-import numpy as np
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")  # one BLAS thread: the comparison is per core
 
-from schedule.norms import _sv, h_infinity_norm, h_infinity_norm_many, singular_values
+import sys  # noqa: E402 (one BLAS thread first)
+import time  # noqa: E402 (one BLAS thread first)
+
+import numpy as np  # noqa: E402 (one BLAS thread first)
+
+from schedule.norms import _sv, h_infinity_norm, h_infinity_norm_many, singular_values  # noqa: E402 (one BLAS thread first)
 
 N_SWEEP = 10_000
 
@@ -70,6 +82,63 @@ def median_time(fn, repeat, *args):
     return float(np.median(times)), out
 
 
+def plain_two_step(A, B, C, D, rtol=1e-8):
+    """A plain two-step Hamiltonian loop (Bruinsma and Steinbuch 1990): lower bound from 0,
+    the pole frequencies and D, then level sets and midpoints by direct solves. No
+    stability predicate, no scaling, no consistency tests: the speed floor."""
+    n = A.shape[0]
+    lam = np.linalg.eigvals(A)
+    if lam.real.max() >= 0:
+        return np.inf
+
+    def sig(w):
+        M = 1j * np.asarray(w)[:, None, None] * np.eye(n) - A
+        G = C @ np.linalg.solve(M, np.broadcast_to(B.astype(complex), (len(w),) + B.shape)) + D
+        return np.linalg.norm(G, 2, axis=(1, 2))
+
+    cand = np.concatenate([[0.0], np.abs(lam.imag), np.abs(lam)])
+    lb = max(sig(cand).max(), np.linalg.norm(D, 2))
+    for _ in range(60):
+        g = (1 + 2 * rtol) * lb
+        R = g * g * np.eye(D.shape[1]) - D.T @ D
+        X = np.linalg.solve(R, np.hstack([D.T @ C, B.T]))
+        Ah = A + B @ X[:, :n]
+        H = np.block([[Ah, B @ X[:, n:]], [-(C.T @ C + C.T @ D @ X[:, :n]), -Ah.T]])
+        ev = np.linalg.eigvals(H)
+        w = np.sort(ev.imag[(np.abs(ev.real) <= 1e-6 * np.abs(ev)) & (ev.imag > 0)])
+        if w.size < 2:
+            return lb
+        m = sig(0.5 * (w[:-1] + w[1:]))
+        if m.max() <= g:
+            return lb
+        lb = m.max()
+    return lb
+
+
+def per_call() -> None:
+    """h_infinity_norm per call against a plain loop and the earlier revision."""
+    import _earlier
+
+    _earlier.load()
+    import schedule_old.norms as old
+
+    rng = np.random.default_rng(2024)
+    print(f"{'n':>3} {'damping':>10} {'plain ms':>9} {'before ms':>10} {'now ms':>8} "
+          f"{'plain/now':>10} {'plain/before':>13}")
+    for n in (4, 8, 16, 32):
+        for label, damping in (("0.05-0.7", (0.05, 0.7)), ("1e-4-1e-2", (1e-4, 1e-2))):
+            models = [random_model(rng, n, 2, 2, damping) for _ in range(8)]
+            ts = {"plain": 0.0, "before": 0.0, "now": 0.0}
+            for mdl in models:
+                for name, fn in (("plain", plain_two_step), ("before", old.h_infinity_norm),
+                                 ("now", h_infinity_norm)):
+                    t, _ = median_time(fn, 9, *mdl)
+                    ts[name] += t
+            print(f"{n:>3} {label:>10} {1e3 * ts['plain'] / 8:9.3f} {1e3 * ts['before'] / 8:10.3f} "
+                  f"{1e3 * ts['now'] / 8:8.3f} {ts['plain'] / ts['now']:10.2f} "
+                  f"{ts['plain'] / ts['before']:13.2f}")
+
+
 def main() -> None:
     rng = np.random.default_rng(2024)
     print(f"{'n':>3} {'damping':>14} {'t_norm ms':>10} {'t_sweep ms':>11} {'ratio':>7} "
@@ -113,4 +182,4 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    per_call() if "--per-call" in sys.argv else main()
