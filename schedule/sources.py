@@ -32,7 +32,8 @@ from .errors import InputError
 from .types import LinearPlant
 
 __all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "operating_points_for",
-           "OperatingSet", "as_linear_plant", "check_consistent"]
+           "OperatingSet", "as_linear_plant", "check_consistent", "design_points",
+           "evaluate_points", "model_source_digest"]
 
 ModelFn = Callable[[Mapping[str, float]], LinearPlant]
 
@@ -282,17 +283,7 @@ def operating_points_for(spec: DesignSpec, progress: Callable[[int], None] | Non
     if spec.source.operating_points is not None:
         return _from_file(spec, Path(spec.source.operating_points))
     model = load_model(spec)
-    if spec.grid.points is not None:
-        pts = ScatteredPoints(spec.grid.points, spec.variables).points
-        breakpoints = grid_index = None
-        holes: tuple[str, ...] = ()
-    elif spec.grid.breakpoints is not None:
-        grid = RectangularGrid(spec.grid.breakpoints, spec.grid.holes, spec.variables)
-        pts, breakpoints, grid_index = grid.points, grid.breakpoints, grid.grid_index
-        holes = grid.report()
-    else:
-        raise InputError(f"{spec.name}: [grid] gives no design points; add breakpoints per "
-                         "variable or points = [[...]]")
+    pts, breakpoints, grid_index, holes = design_points(spec)
     plants, reasons = [], []
     for _k, row in enumerate(pts):
         plant, reason = evaluate_model(model, dict(zip(names, row.tolist(), strict=False)))
@@ -346,3 +337,87 @@ def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
                       f"file)" for i, idx in enumerate(full.grid_index.tolist())
                       if tuple(idx) not in present)
     return OperatingSet(pts, plants, breakpoints, grid_index, holes, [""] * len(pts), "file")
+
+
+# --------------------------------------------------------------------------- chunked evaluation
+def design_points(spec: DesignSpec) -> tuple[np.ndarray, tuple | None, np.ndarray | None,
+                                             tuple[str, ...]]:
+    """The design points of a model source, without evaluating the model.
+
+    Returns ``(points (N, d), breakpoints or None, grid_index or None, holes report)``:
+    the [grid] breakpoints minus the holes (last variable fastest), or the scattered
+    ``points``.
+    """
+    if spec.grid.points is not None:
+        return ScatteredPoints(spec.grid.points, spec.variables).points, None, None, ()
+    if spec.grid.breakpoints is not None:
+        grid = RectangularGrid(spec.grid.breakpoints, spec.grid.holes, spec.variables)
+        return grid.points, grid.breakpoints, grid.grid_index, grid.report()
+    raise InputError(f"{spec.name}: [grid] gives no design points; add breakpoints per "
+                     "variable or points = [[...]]")
+
+
+_MODELS: dict = {}  # per process: the loaded model of each source (workers reuse it)
+
+
+def _model_key(spec: DesignSpec) -> tuple:
+    src = spec.source
+    stamp = None
+    if src.model_file is not None:
+        try:
+            stamp = Path(src.model_file).stat().st_mtime_ns
+        except OSError:
+            stamp = None
+    return (src.model, str(src.model_file), src.function, stamp, spec.variable_names)
+
+
+def evaluate_points(spec: DesignSpec, points: np.ndarray
+                    ) -> tuple[list[LinearPlant | None], list[str]]:
+    """The design's model at each row of ``points`` (a chunk of the envelope).
+
+    The model is loaded once per process (:func:`load_model`), so worker processes
+    that evaluate many chunks import it once. A point where the model fails gets
+    ``None`` and a one-line reason (:func:`evaluate_model`).
+    """
+    key = _model_key(spec)
+    if key not in _MODELS:
+        _MODELS.clear()
+        _MODELS[key] = load_model(spec)
+    model = _MODELS[key]
+    names = spec.variable_names
+    plants, reasons = [], []
+    for row in np.asarray(points, dtype=float):
+        plant, reason = evaluate_model(model, dict(zip(names, row.tolist(), strict=True)))
+        plants.append(plant)
+        reasons.append(reason)
+    return plants, reasons
+
+
+def model_source_digest(spec: DesignSpec) -> str:
+    """SHA-256 of the file the design's plants come from (the model's Python file, the
+    module's source file or the operating-point file); '' when it cannot be read.
+
+    A partial design run is resumed only when this is unchanged, so an edited model
+    never mixes with plants computed by the old one. Finding a module's file may import
+    its parent package (never the module itself).
+    """
+    import hashlib
+
+    src = spec.source
+    path = None
+    if src.operating_points is not None:
+        path = Path(src.operating_points)
+    elif src.model_file is not None:
+        path = Path(src.model_file)
+    elif src.model is not None:
+        try:
+            found = importlib.util.find_spec(src.model.partition(":")[0])
+            path = Path(found.origin) if found is not None and found.origin else None
+        except (ImportError, ValueError):
+            path = None
+    if path is None:
+        return ""
+    try:
+        return hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:
+        return ""
