@@ -43,7 +43,8 @@ from .store import CONTROLLER_KEYS, PLANT_KEYS, read_partial, write_family, writ
 from .types import Family, SchedulingVariable, point_text
 
 __all__ = ["design_family", "run_design", "extend_family", "synthesize_family",
-           "common_gamma", "partial_path", "DesignRun", "CHUNK_SIZE"]
+           "common_gamma", "partial_path", "DesignRun", "CHUNK_SIZE", "estimate_design",
+           "Estimate", "envelope_size"]
 
 CHUNK_SIZE = 128  # points per chunk; fixed so results never depend on the backend
 PARTIAL_WRITE_INTERVAL = 0.2  # seconds between rewrites of the partial file
@@ -961,6 +962,244 @@ def design_family(spec, out: str | os.PathLike | None = None, jobs: int = 1,
     """
     return run_design(spec, out, jobs=jobs, cluster=cluster, resume=resume,
                       progress=progress).family
+
+
+# ----------------------------------------------------------------------------- estimate
+@dataclass(frozen=True)
+class Estimate:
+    """What a design run will take, extrapolated from a small timed sample.
+
+    ``seconds`` is the whole run and ``stage_seconds`` its parts ("plants", "gamma",
+    "controllers", "fit"); ``memory_bytes`` the peak memory of the process;
+    ``sample`` the number of points timed and ``workers`` the workers assumed.
+    """
+
+    points: int
+    seconds: float
+    stage_seconds: dict
+    memory_bytes: int
+    sample: int
+    workers: int
+
+    def text(self) -> str:
+        return (f"{self.points} points, about {_duration(self.seconds)} and "
+                f"{self.memory_bytes / 2**20:.0f} MB (timed on {self.sample} points, "
+                f"{self.workers} worker{'s' if self.workers > 1 else ''})")
+
+    def needs_confirmation(self) -> str:
+        """A reason to ask before starting ('' when the run is small enough): more than
+        :data:`CONFIRM_SECONDS`, or more than :data:`CONFIRM_MEMORY_FRACTION` of the memory
+        now available."""
+        why = []
+        if self.seconds > CONFIRM_SECONDS:
+            why.append(f"longer than {_duration(CONFIRM_SECONDS)}")
+        avail = _available_memory()
+        if avail and self.memory_bytes > CONFIRM_MEMORY_FRACTION * avail:
+            why.append(f"more than {CONFIRM_MEMORY_FRACTION:.0%} of the "
+                       f"{avail / 2**30:.1f} GB available")
+        return " and ".join(why)
+
+    def to_dict(self) -> dict:
+        return {"points": self.points, "seconds": round(self.seconds, 3),
+                "stage_seconds": {k: round(v, 3) for k, v in self.stage_seconds.items()},
+                "memory_bytes": int(self.memory_bytes), "sample": self.sample,
+                "workers": self.workers}
+
+
+CONFIRM_SECONDS = 600.0  # `design` asks for --yes above this estimated time ...
+CONFIRM_MEMORY_FRACTION = 0.5  # ... or above this fraction of the available memory
+ESTIMATE_SAMPLE = 64  # points timed for the estimate ...
+ESTIMATE_BUDGET = 2.0  # ... or fewer (at least 8) once their plants took this many seconds
+PARALLEL_EFFICIENCY = 0.85  # assumed speed-up per worker beyond the first
+
+
+def _duration(seconds: float) -> str:
+    s = int(round(seconds))
+    if s < 60:
+        return f"{max(s, 1)} s"
+    if s < 3600:
+        return f"{s // 60} min {s % 60:02d} s"
+    return f"{s // 3600} h {(s % 3600) // 60:02d} min"
+
+
+def _available_memory() -> int:
+    """Bytes of memory available to new work (MemAvailable on Linux), 0 when unknown."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        return int(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return 0
+
+
+def _resident_memory() -> int:
+    """Bytes of memory this process holds now (resident set), 0 when unknown."""
+    try:
+        with open("/proc/self/statm") as fh:
+            return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):
+        return 0
+
+
+def estimate_design(spec, jobs: int = 1, cluster: Any = None, fit: bool = True,
+                    sample: int = ESTIMATE_SAMPLE, rtol: float = 1e-4,
+                    costly_kinds_max_points: int | None = None) -> Estimate:
+    """Estimate the time and memory of :func:`run_design` from a timed sample of points.
+
+    The sample (two runs of ``sample / 2`` consecutive points, at a quarter and at three
+    quarters of the envelope, so that neighbours warm-start each other as they do in the
+    real chunks; fewer when the model is slow, see :data:`ESTIMATE_BUDGET`) runs every
+    stage in this process: model evaluation and generalized plants, the optimal gamma, the
+    central controller at the sample's own common gamma, and, with ``fit``, one
+    observer-form assembly and one closed-loop norm per point (the per-point work of
+    the leave-one-out choice). The per-point times are scaled to the envelope and
+    divided among the workers; the choice counts one assembly per observer-form
+    candidate and two norms per point (the candidates the ranking needs), and the
+    kernel kinds' cubic fits where they are tried. Memory is the process's present
+    size plus the family's arrays, the working copies of the stages and the choice's
+    predictions per point. The sample's results are not kept.
+    """
+    from .parallel import worker_count
+
+    src = _source(spec)
+    N = src.points.shape[0]
+    if N == 0:
+        raise InputError("the envelope holds no operating points; give a grid or a point file")
+    # two runs of consecutive points, at a quarter and three quarters of the envelope:
+    # neighbours warm-start each other in a chunk as they do in the real run
+    half = max(1, min(N, int(sample)) // 2)
+    starts = sorted({min(max(0, int(N * q) - half // 2), max(0, N - half)) for q in (0.25, 0.75)})
+    idx = np.unique(np.concatenate([np.arange(a, min(N, a + half)) for a in starts]))
+    lin = None
+    if src.linear is not None:
+        ops = src.linear
+        lin = {"A": ops.A[idx], "B": ops.B[idx], "C": ops.C[idx], "D": ops.D[idx],
+               "names": (ops.state_names, ops.input_names, ops.output_names)}
+    warm = {k: v[:1] for k, v in lin.items() if k != "names"} if lin else None
+    if warm is not None:
+        warm["names"] = lin["names"]
+    plant_chunk(spec, src.points[idx[:1]], 0, warm)  # model import and first calls
+    parts, taken, t0 = [], 0, time.perf_counter()
+    while taken < idx.size and (taken < 8 or time.perf_counter() - t0 < ESTIMATE_BUDGET):
+        sl = slice(taken, min(idx.size, taken + 8))
+        sub = None if lin is None else {k: (v[sl] if k != "names" else v) for k, v in
+                                        lin.items()}
+        parts.append(plant_chunk(spec, src.points[idx[sl]], 0, sub))
+        taken = sl.stop
+    t_plant = (time.perf_counter() - t0) / taken
+    idx = idx[:taken]
+    res = _join_plant_chunks(parts)
+    valid = res["valid"]
+    stage = {"plants": t_plant * N}
+    per_point = {"gamma": 0.0, "controllers": 0.0, "assemble": 0.0, "norm": 0.0}
+    sizes = 0
+    if res["stack"] is not None and valid.any():
+        stack = {k: v[valid] for k, v in res["stack"].items()}
+        sizes = sum(int(np.prod(v.shape[1:])) for v in stack.values())
+        t0 = time.perf_counter()
+        gam, _reasons = gamma_chunk(stack, rtol)
+        per_point["gamma"] = (time.perf_counter() - t0) / valid.sum()
+        ok = np.isfinite(gam)
+        if ok.any():
+            g = (spec.gamma.value if spec.gamma.policy == "fixed" and spec.gamma.value
+                 else float(np.max(gam[ok])) * (1.0 + spec.gamma.margin))
+            sub = {k: v[ok] for k, v in stack.items()}
+            t0 = time.perf_counter()
+            ctrl, pieces, creasons = controller_chunk(sub, g)
+            per_point["controllers"] = (time.perf_counter() - t0) / ok.sum()
+            if ctrl:
+                good = np.array([not r for r in creasons], dtype=bool)
+                sizes += sum(int(np.prod(v.shape[1:])) for v in (*ctrl.values(),
+                                                                 *pieces.values()))
+                if fit and good.any():
+                    per_point["assemble"], per_point["norm"] = _choice_costs(
+                        {k: v[good] for k, v in sub.items()},
+                        {k: v[good] for k, v in ctrl.items()},
+                        {k: v[good] for k, v in pieces.items()}, g)
+    workers = worker_count(jobs, cluster)
+    speed = 1.0 + PARALLEL_EFFICIENCY * (workers - 1)
+    n_ok = N * (valid.mean() if valid.size else 1.0)
+    stage["plants"] /= speed
+    stage["gamma"] = per_point["gamma"] * n_ok / speed
+    stage["controllers"] = per_point["controllers"] * n_ok / speed
+    limit = (spec.interpolation.costly_kinds_max_points if costly_kinds_max_points is None
+             else costly_kinds_max_points)
+    fit_bytes = 0
+    if fit:
+        stage["fit"], fit_bytes = _choice_estimate(spec, n_ok, per_point, src, limit, speed,
+                                                   sizes)
+    memory = _resident_memory() + int(n_ok * 8 * sizes * 3) + fit_bytes
+    stage = {k: float(v) for k, v in stage.items()}
+    return Estimate(N, float(sum(stage.values())), stage, memory, int(idx.size), workers)
+
+
+def envelope_size(spec) -> int:
+    """The number of design points of ``spec`` (nothing evaluated)."""
+    return int(_source(spec).points.shape[0])
+
+
+def _join_plant_chunks(parts: list[dict]) -> dict:
+    valid = np.concatenate([p["valid"] for p in parts])
+    stacks = [p["stack"] for p in parts]
+    stack = None
+    if any(st is not None for st in stacks):
+        template = next(st for st in stacks if st is not None)
+        stack = {k: np.concatenate([st[k] if st is not None else
+                                    np.zeros((p["valid"].size,) + v.shape[1:])
+                                    for st, p in zip(stacks, parts, strict=True)])
+                 for k, v in template.items()}
+    return {"valid": valid, "stack": stack}
+
+
+def _choice_costs(plant: dict, ctrl: dict, pieces: dict, gamma: float) -> tuple[float, float]:
+    """Seconds per point of one observer-form assembly and one closed-loop norm."""
+    from .hinf import ObserverPieces, assemble_controller
+    from .interpolate import loop_norm_chunk
+    from .plant import GeneralizedPlant
+
+    n = plant["A"].shape[0]
+    t0 = time.perf_counter()
+    for i in range(n):
+        try:
+            assemble_controller(GeneralizedPlant.from_arrays({k: v[i] for k, v in plant.items()}),
+                                ObserverPieces.from_arrays({k: v[i] for k, v in pieces.items()}),
+                                gamma)
+        except ScheduleError:
+            pass
+    t_asm = (time.perf_counter() - t0) / n
+    from .check import closed_loop_many
+
+    t0 = time.perf_counter()
+    try:
+        loop_norm_chunk(*closed_loop_many(plant, ctrl))
+    except ScheduleError:
+        pass
+    return t_asm, (time.perf_counter() - t0) / n
+
+
+def _choice_estimate(spec, n_ok: float, per_point: dict, src: _Source, limit: int,
+                     speed: float, sizes: int) -> tuple[float, int]:
+    """Seconds and extra bytes of the interpolant choice (see :func:`estimate_design`)."""
+    from .interpolants import GRID_KINDS, KINDS
+    from .interpolate import CUBIC_KINDS, costly_kinds
+
+    kind = spec.interpolation.kind
+    kinds = [kind] if kind != "auto" else [k for k in KINDS if k not in GRID_KINDS
+                                           or src.breakpoints is not None]
+    if kind == "auto" and n_ok > limit:
+        kinds = [k for k in kinds if k not in costly_kinds(len(spec.variables))]
+    forms = 2 if spec.interpolation.form == "auto" else 1
+    observer = len(kinds) if spec.interpolation.form in ("auto", "observer") else 0
+    seconds = n_ok * (observer * per_point["assemble"] + 2.0 * per_point["norm"] / speed)
+    cubic = [k for k in kinds if k in CUBIC_KINDS]
+    seconds += len(cubic) * 3 * 2.5e-7 * n_ok ** 3  # kernel fits: measured ~2.5e-7 N^3 s
+    per_candidate = 8 * (sizes + 400)  # predictions, closed loop and errors per point
+    return seconds, int(n_ok * per_candidate * len(kinds) * forms)
 
 
 # ----------------------------------------------------------------------------- refinement

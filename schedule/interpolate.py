@@ -351,6 +351,7 @@ CUBIC_KINDS = ("rbf", "gaussian_process")  # fit and leave-one-out cost grow as 
 COSTLY_KINDS_MAX_POINTS = InterpolationSpec.costly_kinds_max_points
 NORM_RTOL = 1e-6  # relative accuracy of the leave-one-out closed-loop norms
 RANK_TIE = 1e-5  # max norm/gamma within this relative distance counts as a tie
+COMPLETE_EVIDENCE_LOOPS = 5000  # up to this many stable predictions, every norm is computed
 NORM_STATUS = ("complete", "bound", "skipped")
 
 
@@ -741,9 +742,11 @@ def choose_interpolant(family: Family, spec_form: str = "auto", spec_kind: str =
     every candidate. Norms are needed only where they can change the ranking: for
     the candidates with the fewest unstable predictions, computed worst matrix error
     first and stopped as soon as one exceeds the best maximum found so far (the
-    evidence then says "bound"). With ``spec_kind`` "auto" the kinds of
-    :func:`costly_kinds` are left out when the family has more than
-    ``costly_kinds_max_points`` ok points (see :func:`choose`, which says so in its notes).
+    evidence then says "bound"); when all candidates together have at most
+    :data:`COMPLETE_EVIDENCE_LOOPS` stable predictions every norm is computed. With
+    ``spec_kind`` "auto" the kinds of :func:`costly_kinds` are left out when the family
+    has more than ``costly_kinds_max_points`` ok points (:func:`choose` says so in its
+    notes).
 
     Returns the fitted controller and the evidence table.
 
@@ -863,11 +866,13 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
     if not usable and rows.size >= 2:
         reasons = "; ".join(f"{c.form}/{c.kind}: {c.failure}" for c in cands)
         raise InputError(f"no interpolant could be fitted ({reasons}); check the family")
-    # norms only where they can change the ranking: the fewest unstable, best first
+    # norms only where they can change the ranking (the fewest unstable, best first),
+    # unless all of them together are cheap
     fewest = min((int((~c.stable).sum()) for c in usable), default=0)
+    complete = sum(int(c.stable.sum()) for c in usable) <= COMPLETE_EVIDENCE_LOOPS
     for c in usable:
-        if int((~c.stable).sum()) > fewest:
-            c.status = "skipped"
+        if int((~c.stable).sum()) > fewest and not complete:
+            c.status, c.loops = "skipped", None  # its loops are not needed any more
     contenders = sorted((c for c in usable if c.status != "skipped"),
                         key=lambda c: np.nanmedian(c.rel_error)
                         if np.isfinite(c.rel_error).any() else np.inf)
@@ -878,7 +883,9 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
         except ScheduleError as exc:
             c.failure = f"plant interpolant: {_one_line(exc)}"
             continue
-        _norms_of(c, jobs, cluster, stop_above=best * (1.0 + RANK_TIE) * family.gamma)
+        stop = np.inf if complete else best * (1.0 + RANK_TIE) * family.gamma
+        _norms_of(c, jobs, cluster, stop_above=stop)
+        c.loops = None
         if c.status == "complete":
             peak = c.norm[c.stable]
             best = min(best, float(np.max(peak)) / family.gamma if peak.size else np.inf)

@@ -58,6 +58,7 @@ from .errors import InputError
 
 TASK_SECONDS = {"local": 0.1, "dask": 0.5}  # target duration of one task
 IN_FLIGHT = 2  # outstanding tasks per worker
+CHUNKS_PER_WORKER = 8  # work_chunk: independent items are cut at least this finely
 SCATTER_BYTES = 256 * 1024  # larger dask task arguments are scattered to the workers
 CONNECT_TIMEOUT = 5.0  # seconds to reach a dask scheduler
 
@@ -121,21 +122,20 @@ def split_evenly(indices: np.ndarray, jobs: int = 1, cluster: Any = None,
     return [p for p in np.array_split(indices, count) if p.size]
 
 
-def chunk_size_for(total: int, seconds_per_item: float, jobs: int = 1, cluster: Any = None,
-                   largest: int | None = None) -> int:
-    """Items per chunk for ``total`` items costing ``seconds_per_item`` each (measured).
+def work_chunk(total: int, jobs: int = 1, cluster: Any = None, largest: int = 500,
+               smallest: int = 16) -> int:
+    """Items per work chunk for ``total`` independent items.
 
-    A chunk should last about :data:`TASK_SECONDS` of the backend (so the per-task
-    cost stays a few per cent) but there should be at least :data:`IN_FLIGHT` chunks per
-    worker (so the workers finish together); ``largest`` caps the size.
+    In this process one chunk of up to ``largest`` items (fewest calls). On workers the
+    chunks are small enough (at least :data:`CHUNKS_PER_WORKER` per worker, not below
+    ``smallest``) for :func:`run_chunks` to group them into tasks of the measured right
+    duration and to keep every worker busy to the end.
     """
-    workers = 1 if (cluster is None and jobs == 1) else worker_count(jobs, cluster)
-    target = TASK_SECONDS["dask" if cluster is not None else "local"]
-    size = math.ceil(target / max(float(seconds_per_item), 1e-9))
-    size = min(size, max(1, math.ceil(total / (IN_FLIGHT * workers))))
-    if largest is not None:
-        size = min(size, int(largest))
-    return max(1, int(size))
+    if cluster is None and jobs == 1:
+        return max(1, int(largest))
+    workers = worker_count(jobs, cluster)
+    size = math.ceil(total / (CHUNKS_PER_WORKER * workers))
+    return max(1, min(int(largest), max(int(smallest), size)))
 
 
 # ----------------------------------------------------------------------------- workers

@@ -25,6 +25,7 @@ def _summary(run, out: str) -> dict:
         "computed": {"gamma_opt": run.computed_gamma, "controllers": run.computed_controllers},
         "resumed": {"gamma_opt": run.resumed_gamma, "controllers": run.resumed_controllers},
         "seconds": round(run.seconds, 3),
+        "stage_seconds": {k: round(v, 3) for k, v in run.stage_seconds.items()},
         "interpolant": None if f.interpolant is None else dict(f.interpolant.get("attrs", {})),
         "interpolant_error": run.interpolant_error or None,
         "notes": list(run.notes),
@@ -44,6 +45,9 @@ def _summary(run, out: str) -> dict:
 def _print_table(info: dict) -> None:
     rows = [("family file", info["out"]),
             ("points", f"{info['points']} ({info['ok']} ok, {info['failed']} failed)")]
+    if info.get("estimate"):
+        rows.append(("estimate", f"{info['estimate']['seconds']:.1f} s before the run "
+                                 f"(timed on {info['estimate']['sample']} points)"))
     if "gamma_opt_min" in info:
         lo, hi = info["gamma_opt_min"], info["gamma_opt_max"]
         rows.append(("gamma_opt min", f"{lo['value']:.5g} at {point_text(lo['point'])}"))
@@ -89,22 +93,33 @@ def _print_table(info: dict) -> None:
               help="Store the controllers only; fit the interpolant later.")
 @click.option("--chunk-size", default=CHUNK_SIZE, type=click.IntRange(min=1), hidden=True,
               help="Points per work chunk (results are reproducible for a given size).")
+@click.option("--yes", "-y", is_flag=True,
+              help="Start without asking when the estimate before a large run exceeds "
+                   "10 minutes or half the available memory.")
 def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: bool,
-                   quiet: bool, as_json: bool, no_fit: bool, chunk_size: int) -> None:
+                   quiet: bool, as_json: bool, no_fit: bool, chunk_size: int,
+                   yes: bool) -> None:
     """Synthesize H-infinity controllers over the envelope of SPEC at one common gamma.
 
     Computes the optimal gamma at every operating point, the common gamma of
     the design file's policy, the central controller at every point, fits the
-    interpolant and writes the family file.
+    interpolant and writes the family file. Before a run of more than 128 points
+    the time and memory are estimated from a small timed sample; above 10 minutes
+    or half the available memory the run starts only with --yes (or after a
+    yes at the terminal).
     """
     from ..design_file import load_design
     from ..family import run_design
+    from ..parallel import prestart
     from ..progress import ProgressBar
 
     try:
         design = load_design(spec)
     except FileNotFoundError:
         raise InputError(f"design file {spec} does not exist; check the path") from None
+    prestart(jobs, cluster)  # a bad --cluster fails here, before any work
+    estimate = None if resume else _estimate(design, jobs, cluster, not no_fit, yes, as_json,
+                                             quiet)
     bar = ProgressBar(enabled=False if quiet else None, stream=sys.stderr)
     try:
         run = run_design(design, out, jobs=jobs, cluster=cluster, resume=resume, progress=bar,
@@ -112,7 +127,33 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
     finally:
         bar.close()
     info = _summary(run, out)
+    if estimate is not None:
+        info["estimate"] = estimate.to_dict()
     if as_json:
         click.echo(json.dumps(info, indent=2))
     elif not quiet:
         _print_table(info)
+
+
+ESTIMATE_MIN_POINTS = 2 * CHUNK_SIZE  # smaller runs start at once
+
+
+def _estimate(design, jobs: int, cluster, fit: bool, yes: bool, as_json: bool, quiet: bool):
+    """The estimate of a large run; asks (or refuses) when it is above the thresholds."""
+    from ..family import envelope_size, estimate_design
+
+    if envelope_size(design) < ESTIMATE_MIN_POINTS:
+        return None
+    est = estimate_design(design, jobs=jobs, cluster=cluster, fit=fit)
+    why = est.needs_confirmation()
+    if not why or yes:
+        return est
+    message = f"the run is estimated at {est.text()}: {why}"
+    if as_json:
+        click.echo(json.dumps({"estimate": est.to_dict(), "started": False,
+                               "reason": why}, indent=2))
+    elif not quiet and sys.stdin.isatty() and sys.stderr.isatty():
+        if click.confirm(f"{message}. Start it?", default=False, err=True):
+            return est
+        raise InputError("run not started; pass --yes to start it without asking")
+    raise InputError(f"{message}; pass --yes to start it")
