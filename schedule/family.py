@@ -44,7 +44,7 @@ from .types import Family, SchedulingVariable, point_text
 
 __all__ = ["design_family", "run_design", "extend_family", "synthesize_family",
            "common_gamma", "partial_path", "DesignRun", "CHUNK_SIZE", "estimate_design",
-           "Estimate", "envelope_size"]
+           "Estimate", "envelope_size", "plants_for", "PlantSet"]
 
 CHUNK_SIZE = 128  # points per chunk; fixed so results never depend on the backend
 PARTIAL_WRITE_INTERVAL = 0.2  # seconds between rewrites of the partial file
@@ -465,7 +465,8 @@ class _PartialState:
         try:
             done = {s: np.asarray(arrays[f"{s}/done"], dtype=np.int8) for s in STAGES}
             digest = {s: [str(v) for v in np.atleast_1d(arrays[f"digests/{s}"])] for s in STAGES}
-            valid = np.asarray(arrays["plants/valid"]).astype(bool)
+            flags = np.asarray(arrays["plants/valid"])
+            valid = flags.astype(bool)
             plant_reasons = [str(r) for r in np.atleast_1d(arrays["plants/reasons"])]
             gamma_opt = np.asarray(arrays["gamma/gamma_opt"], dtype=float)
             gamma_reasons = [str(r) for r in np.atleast_1d(arrays["gamma/reasons"])]
@@ -490,9 +491,11 @@ class _PartialState:
                     and all(v.ndim >= 1 and v.shape[0] == self.N
                             for g in (plant, mats, pcs) for v in g.values())
                     and (not plant or set(plant) == set(PLANT_KEYS)))
-        if not sizes_ok:
-            raise InputError(f"partial file {where} has inconsistent tables; delete it and run "
-                             "without --resume")
+        flags_ok = all(np.isin(t, (0, 1)).all() for t in (flags, *done.values()))
+        if not sizes_ok or not flags_ok:
+            raise InputError(f"partial file {where} has inconsistent tables (damaged or "
+                             "edited; no digest can vouch for it); delete it and run without "
+                             "--resume")
         self.valid, self.plant_reasons, self.plant = valid, plant_reasons, plant or None
         self.names, self.signature = names or None, tuple(sig) if len(sig) == 3 else None
         self.gamma_opt, self.gamma_reasons = gamma_opt, gamma_reasons
@@ -848,6 +851,37 @@ def synthesize_family(points: np.ndarray, plants: Sequence, build_reasons: Seque
     return run
 
 
+@dataclass(frozen=True)
+class PlantSet:
+    """The generalized plants of a design's envelope, stacked: ``plant`` maps the nine
+    keys to (N, rows, cols) arrays (zeros where ``valid`` is False, ``reasons`` says why),
+    ``names`` the channel names."""
+
+    points: np.ndarray
+    plant: dict
+    valid: np.ndarray
+    reasons: tuple[str, ...]
+    names: dict
+
+
+def plants_for(spec, jobs: int = 1, cluster: Any = None, chunk_size: int = CHUNK_SIZE,
+               progress: Progress | None = None) -> PlantSet:
+    """The first stage of :func:`run_design` alone: the model (or the operating-point
+    file) and the weights at every design point, chunk by chunk on the workers.
+
+    Only the stacked results are kept, so the memory beyond them stays that of a few
+    chunks whatever the number of points.
+    """
+    src = _source(spec)
+    N = src.points.shape[0]
+    run = DesignRun(family=None)  # type: ignore[arg-type]
+    state, writer = _open_state(N, chunk_size, "", None, False, run)
+    _Stages(state, writer, run, src.points, spec.variables, jobs, cluster,
+            progress).plants(spec, src.linear)
+    return PlantSet(src.points, state.plant or {}, state.valid, tuple(state.plant_reasons),
+                    state.names or {})
+
+
 def run_design(spec, out: str | os.PathLike | None = None, jobs: int = 1, cluster: Any = None,
                resume: bool = False, progress: Progress | None = None, fit: bool = True,
                rtol: float = 1e-4, chunk_size: int = CHUNK_SIZE,
@@ -1011,6 +1045,7 @@ CONFIRM_MEMORY_FRACTION = 0.5  # ... or above this fraction of the available mem
 ESTIMATE_SAMPLE = 64  # points timed for the estimate ...
 ESTIMATE_BUDGET = 2.0  # ... or fewer (at least 8) once their plants took this many seconds
 PARALLEL_EFFICIENCY = 0.85  # assumed speed-up per worker beyond the first
+CHOICE_OVERHEAD = 2.5e-4  # s per point and candidate besides assembly and norms (measured)
 
 
 def _duration(seconds: float) -> str:
@@ -1101,6 +1136,10 @@ def estimate_design(spec, jobs: int = 1, cluster: Any = None, fit: bool = True,
     if res["stack"] is not None and valid.any():
         stack = {k: v[valid] for k, v in res["stack"].items()}
         sizes = sum(int(np.prod(v.shape[1:])) for v in stack.values())
+        first = {k: v[:1] for k, v in stack.items()}
+        g1, _ = gamma_chunk(first, rtol)  # first calls (imports, caches) are not timed
+        if np.isfinite(g1[0]):
+            controller_chunk(first, float(g1[0]) * 1.1)
         t0 = time.perf_counter()
         gam, _reasons = gamma_chunk(stack, rtol)
         per_point["gamma"] = (time.perf_counter() - t0) / valid.sum()
@@ -1195,7 +1234,8 @@ def _choice_estimate(spec, n_ok: float, per_point: dict, src: _Source, limit: in
         kinds = [k for k in kinds if k not in costly_kinds(len(spec.variables))]
     forms = 2 if spec.interpolation.form == "auto" else 1
     observer = len(kinds) if spec.interpolation.form in ("auto", "observer") else 0
-    seconds = n_ok * (observer * per_point["assemble"] + 2.0 * per_point["norm"] / speed)
+    seconds = n_ok * (observer * per_point["assemble"] + 2.0 * per_point["norm"] / speed
+                      + CHOICE_OVERHEAD * len(kinds) * forms)
     cubic = [k for k in kinds if k in CUBIC_KINDS]
     seconds += len(cubic) * 3 * 2.5e-7 * n_ok ** 3  # kernel fits: measured ~2.5e-7 N^3 s
     per_candidate = 8 * (sizes + 400)  # predictions, closed loop and errors per point

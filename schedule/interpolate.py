@@ -352,6 +352,7 @@ COSTLY_KINDS_MAX_POINTS = InterpolationSpec.costly_kinds_max_points
 NORM_RTOL = 1e-6  # relative accuracy of the leave-one-out closed-loop norms
 RANK_TIE = 1e-5  # max norm/gamma within this relative distance counts as a tie
 COMPLETE_EVIDENCE_LOOPS = 5000  # up to this many stable predictions, every norm is computed
+NORM_BLOCK = 64  # first block of norms of a candidate (then x4 each block)
 NORM_STATUS = ("complete", "bound", "skipped")
 
 
@@ -641,7 +642,7 @@ def _norms_of(cand: _Candidate, jobs: int, cluster, stop_above: float = np.inf) 
         return
     err = cand.rel_error[cand.loop_rows[where]]
     order = where[np.argsort(-np.nan_to_num(err, nan=np.inf), kind="stable")]
-    start, size = 0, 64
+    start, size = 0, NORM_BLOCK
     while start < order.size:
         sel = order[start:start + size]
         cand.norm[cand.loop_rows[sel]] = _loop_norms(cand.loops, sel, jobs, cluster)
