@@ -927,6 +927,8 @@ def run_design(spec, out: str | os.PathLike | None = None, jobs: int = 1, cluste
         run.stage_seconds["fit"] = time.perf_counter() - t1
     if out is not None:
         t1 = time.perf_counter()
+        if progress:
+            progress("write", 0, 1)
         _remove_stale_temps(out)
         write_family(out, run.family)
         try:
@@ -934,6 +936,8 @@ def run_design(spec, out: str | os.PathLike | None = None, jobs: int = 1, cluste
         except FileNotFoundError:
             pass
         run.stage_seconds["write"] = time.perf_counter() - t1
+        if progress:
+            progress("write", 1, 1)
     run.seconds = time.perf_counter() - t0
     return run
 

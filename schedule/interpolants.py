@@ -1065,11 +1065,12 @@ class PolynomialLeastSquares(Interpolant):
     def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
         """Leave-one-out predictions of the least-squares fit of degree ``degree_``.
 
-        The hat-matrix identity (e.g. Hastie, Tibshirani and Friedman 2009, eq. 7.52):
-        with the design matrix Phi = QR and leverages ``h_i = |Q_i|^2``, the refit
-        without point i predicts ``y_i - (y_i - yhat_i) / (1 - h_i)``. The fit
-        includes the constant monomial, so standardizing the values changes nothing.
-        Points of leverage ~1 (the rest cannot determine the fit) are refitted.
+        The hat-matrix identity (e.g. Hastie, Tibshirani and Friedman 2009, sec. 7.10.1):
+        with Q an orthonormal basis of the design matrix's columns and leverages
+        ``h_i = |Q_i|^2``, the refit without point i predicts
+        ``y_i - (y_i - yhat_i) / (1 - h_i)``. The fit includes the constant monomial,
+        so standardizing the values changes nothing. Points of leverage ~1 (the rest
+        cannot determine the fit) are refitted.
         """
         from math import comb
 
@@ -1078,10 +1079,12 @@ class PolynomialLeastSquares(Interpolant):
         if comb(self.degree_ + self.d_, self.d_) > n - 1:
             return np.zeros_like(y), np.zeros(n, dtype=bool)
         phi = _monomials((x - self.lower) / (self.upper - self.lower), self.exponents_)
-        Q, R = np.linalg.qr(phi)
-        diag = np.abs(np.diag(R))
-        if diag.size and diag.min() <= 1e-10 * diag.max():  # rank deficient: by definition
-            return self.leave_one_out_by_refit(x, y)
+        # orthonormal basis of the column space, with the rank cut-off of lstsq (rcond
+        # None): a rank-deficient basis (more monomials than distinct values on an axis)
+        # still fixes the fitted values, and the identity holds where h_i < 1
+        U, sv, _ = np.linalg.svd(phi, full_matrices=False)
+        rank = int(np.sum(sv > sv[0] * np.finfo(float).eps * max(phi.shape))) if sv.size else 0
+        Q = U[:, :rank]
         h = np.sum(Q * Q, axis=1)
         resid = y - Q @ (Q.T @ y)
         ok = (1.0 - h) > 1e-8

@@ -155,6 +155,38 @@ def _check_form_kind(form: str, kind: str) -> None:
 
 
 # ----------------------------------------------------------------------------- controller
+def assemble_each(gamma: float, pieces: dict, plants: dict
+                  ) -> tuple[dict[str, np.ndarray] | None, np.ndarray, str]:
+    """Observer-form controllers from stacked pieces and plants, point by point
+    (:func:`schedule.hinf.assemble_controller`); a module-level function, so chunks of
+    points can be assembled on workers.
+
+    Returns ``(K, ok, error)``: the stacked "A", "B", "C", "D" (zeros where a point
+    failed; None when every point failed), the mask of assembled points and the first
+    failure's one-line reason ('' when none failed).
+    """
+    from .hinf import ObserverPieces, assemble_controller
+    from .plant import GeneralizedPlant
+
+    n = np.shape(plants["A"])[0]
+    out, ok, error = None, np.zeros(n, dtype=bool), ""
+    for m in range(n):
+        try:
+            k = assemble_controller(
+                GeneralizedPlant.from_arrays({name: plants[name][m] for name in PLANT_KEYS}),
+                ObserverPieces.from_arrays({name: pieces[name][m] for name in pieces}), gamma)
+        except (ScheduleError, np.linalg.LinAlgError) as exc:
+            error = error or (str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+            continue
+        if out is None:
+            out = {name: np.zeros((n,) + np.shape(a)) for name, a in
+                   zip(CONTROLLER_KEYS, k, strict=True)}
+        for name, a in zip(CONTROLLER_KEYS, k, strict=True):
+            out[name][m] = a
+        ok[m] = True
+    return out, ok, error
+
+
 class ScheduledController:
     """A controller scheduled over the operating envelope, ``u = K(p) y``.
 
@@ -292,24 +324,11 @@ class ScheduledController:
                               self.plant_layout.unpack(self.plant.evaluate(p)))
 
     def _assemble(self, p, pieces: dict, plants: dict) -> dict[str, np.ndarray]:
-        from .hinf import ObserverPieces, assemble_controller
-        from .plant import GeneralizedPlant
-
-        out = None
-        for m in range(p.shape[0]):
-            try:
-                k = assemble_controller(
-                    GeneralizedPlant.from_arrays({n: plants[n][m] for n in PLANT_KEYS}),
-                    ObserverPieces.from_arrays({n: pieces[n][m] for n in pieces}), self.gamma)
-            except ScheduleError as exc:
-                point = ", ".join(f"{v:g}" for v in p[m])
-                raise NumericalError(f"observer-form controller at point ({point}) could not "
-                                     f"be assembled: {exc}") from None
-            if out is None:
-                out = {n: np.empty((p.shape[0],) + np.shape(a))
-                       for n, a in zip(CONTROLLER_KEYS, k, strict=True)}
-            for n, a in zip(CONTROLLER_KEYS, k, strict=True):
-                out[n][m] = a
+        out, ok, error = assemble_each(self.gamma, pieces, plants)
+        if error:
+            point = ", ".join(f"{v:g}" for v in p[int(np.argmin(ok))])
+            raise NumericalError(f"observer-form controller at point ({point}) could not "
+                                 f"be assembled: {error}")
         return out
 
     def derivative(self, points, variable_index: int) -> dict[str, np.ndarray]:
@@ -565,9 +584,12 @@ class _Candidate:
     failure: str = ""
 
 
-def _predict(family: Family, sc: ScheduledController, rows: np.ndarray
-             ) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Leave-one-out controllers at the ok rows (closed forms of :mod:`interpolants`)."""
+def _predict(family: Family, sc: ScheduledController, rows: np.ndarray, jobs: int = 1,
+             cluster=None) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Leave-one-out controllers at the ok rows (closed forms of :mod:`interpolants`; the
+    observer-form assembly point by point, on the workers of ``jobs`` / ``cluster``)."""
+    from .parallel import run_chunks, split_evenly
+
     pts = np.asarray(family.points, dtype=float)[rows]
     source = family.controller if sc.form == "matrices" else family.pieces
     values, ok = sc.part.leave_one_out(pts, sc.part_layout.pack(source, rows))
@@ -581,28 +603,29 @@ def _predict(family: Family, sc: ScheduledController, rows: np.ndarray
         pv, pok = sc.plant.leave_one_out(pts, sc.plant_layout.pack(family.plant, rows))
         ok &= pok
         plants = sc.plant_layout.unpack(pv)
-        for i in np.flatnonzero(ok):
-            try:
-                k = sc._assemble(pts[i:i + 1], {n_: v[i:i + 1] for n_, v in part.items()},
-                                 {n_: v[i:i + 1] for n_, v in plants.items()})
-            except (ScheduleError, np.linalg.LinAlgError):
-                ok[i] = False
-                continue
-            for name in CONTROLLER_KEYS:
-                K[name][i] = k[name][0]
+        pieces = split_evenly(np.flatnonzero(ok), jobs, cluster)
+        tasks = [(sc.gamma, {n_: v[p] for n_, v in part.items()},
+                  {n_: v[p] for n_, v in plants.items()}) for p in pieces]
+        for t, (k, kok, _error) in run_chunks(assemble_each, tasks, jobs=jobs, cluster=cluster):
+            sel = pieces[t]
+            ok[sel] = kok
+            for name in CONTROLLER_KEYS if k is not None else ():
+                K[name][sel[kok]] = k[name][kok]
     finite = np.ones(n, dtype=bool)
     for k in CONTROLLER_KEYS:
         finite &= np.all(np.isfinite(K[k].reshape(n, -1)), axis=1)
     return K, ok & finite
 
 
-def leave_one_out_controllers(family: Family, controller: ScheduledController
+def leave_one_out_controllers(family: Family, controller: ScheduledController,
+                              jobs: int = 1, cluster=None
                               ) -> tuple[np.ndarray, dict[str, np.ndarray], np.ndarray]:
     """Controllers predicted at every "ok" point by the interpolant without that point.
 
     The predictions reuse the hyperparameters of ``controller`` (fitted on all
     points) and come from each kind's closed form (:meth:`Interpolant.leave_one_out`),
-    not from N refits.
+    not from N refits; observer-form assembly runs on the workers of ``jobs`` /
+    ``cluster``.
 
     Returns
     -------
@@ -615,13 +638,14 @@ def leave_one_out_controllers(family: Family, controller: ScheduledController
         K = {k: np.zeros((rows.size,) + np.shape(family.controller[k])[1:])
              for k in CONTROLLER_KEYS}
         return rows, K, np.zeros(rows.size, dtype=bool)
-    K, good = _predict(family, controller, rows)
+    K, good = _predict(family, controller, rows, jobs, cluster)
     return rows, K, good
 
 
-def _evaluate_candidate(family: Family, cand: _Candidate, rows: np.ndarray) -> None:
+def _evaluate_candidate(family: Family, cand: _Candidate, rows: np.ndarray, jobs: int = 1,
+                        cluster=None) -> None:
     """Predictions, matrix errors, closed loops and their stability (no norms yet)."""
-    cand.K, cand.good = _predict(family, cand.controller, rows)
+    cand.K, cand.good = _predict(family, cand.controller, rows, jobs, cluster)
     cand.rel_error = _rel_errors(cand.K, {k: np.asarray(family.controller[k])[rows]
                                           for k in CONTROLLER_KEYS}, cand.good)
     cand.loops, good = _closed_loops(family, rows, cand.K, cand.good)
@@ -693,7 +717,7 @@ def leave_one_out(family: Family, form: str = "matrices", kind: str = "multiline
                          failure="leave-one-out needs at least 2 ok points")
     cand = _Candidate(form, kind, full)
     with _single_thread_blas():
-        _evaluate_candidate(family, cand, rows)
+        _evaluate_candidate(family, cand, rows, jobs, cluster)
         _norms_of(cand, jobs, cluster)
     return _result(cand, family, rows)
 
@@ -860,7 +884,7 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
                 fits.layout(cand.form), plant, fits.layout("plant"))
             if rows.size < 2:
                 raise InputError("leave-one-out needs at least 2 ok points")
-            _evaluate_candidate(family, cand, rows)
+            _evaluate_candidate(family, cand, rows, jobs, cluster)
         except (ScheduleError, np.linalg.LinAlgError) as exc:
             cand.failure = _one_line(exc)
     usable = [c for c in cands if not c.failure]

@@ -327,6 +327,19 @@ def test_closed_form_leave_one_out_equals_refitting(kind, points):
     assert np.all(np.abs(fast - slow) <= 1e-10 * scale)
 
 
+def test_polynomial_leave_one_out_with_a_rank_deficient_design_equals_refitting():
+    # degree 5 on an axis with 5 breakpoints: y^5 is a combination of lower powers there,
+    # so the design matrix is rank deficient; lstsq's minimum-norm fit still fixes the
+    # fitted values and the identity holds (refitting is the reference)
+    y = smooth(GRID)
+    it = PolynomialLeastSquares(LO, HI, degree=5).fit(GRID, y)
+    assert np.linalg.matrix_rank(np.vander(B1, 6)) < 6
+    fast, ok = it.leave_one_out(GRID, y)
+    slow, ok_ref = it.leave_one_out_by_refit(GRID, y)
+    assert np.array_equal(ok, ok_ref) and ok.all()
+    assert np.all(np.abs(fast - slow) <= 1e-9 * np.abs(y).max(axis=0))
+
+
 def test_delaunay_leave_one_out_in_one_and_three_variables_equals_refitting():
     for d, n in ((1, 9), (3, 25)):
         pts = RNG.uniform(size=(n, d))
