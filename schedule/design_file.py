@@ -186,7 +186,7 @@ class GammaSpec:
 class InterpolationSpec:
     form: str = "auto"
     kind: str = "auto"
-    costly_kinds_max_points: int = 200  # "auto" tries rbf, gaussian_process up to this size
+    costly_kinds_max_points: int = 200  # "auto" tries the costly kinds up to this many points
 
 
 @dataclass(frozen=True)
