@@ -619,85 +619,75 @@ class _Stages:
     def _stack(self, idx: np.ndarray) -> dict[str, np.ndarray]:
         return {k: self.state.plant[k][idx] for k in PLANT_KEYS}
 
-    def gamma(self, rtol: float) -> None:
-        """Stage 2: the optimal gamma of every valid point."""
+    def _run(self, stage: str, label: str, mask: np.ndarray, func, arg, take) -> None:
+        """One of the synthesis stages on the points of ``mask``: the chunks not finished
+        yet (a chunk without such points is finished at once) run on the workers and
+        ``take(points, chunk, result)`` stores each result."""
         st, t0 = self.state, time.perf_counter()
-        valid = st.valid
         todo, pick = [], {}
         for c, idx in enumerate(st.chunks):
-            if st.done["gamma"][c]:
+            if st.done[stage][c]:
                 continue
-            sel = idx[valid[idx]]
+            sel = idx[mask[idx]]
             if sel.size == 0:
-                st.finish("gamma", c)
+                st.finish(stage, c)
                 continue
             todo.append(c)
             pick[c] = sel
-        total = int(valid.sum())
-        self.run.resumed_gamma = total - sum(pick[c].size for c in todo)
-        done = self.run.resumed_gamma
-        self._report("gamma", done, total)
-        tasks = _Tasks(todo, lambda c: (self._stack(pick[c]), rtol))
-        for t, (gam, reasons) in run_chunks(gamma_chunk, tasks, jobs=self.jobs,
-                                            cluster=self.cluster):
+        total = int(mask.sum())
+        done = total - sum(pick[c].size for c in todo)
+        setattr(self.run, f"resumed_{label}", done)
+        self._report(label, done, total)
+        tasks = _Tasks(todo, lambda c: (self._stack(pick[c]), arg))
+        for t, res in run_chunks(func, tasks, jobs=self.jobs, cluster=self.cluster):
             c = todo[t]
-            sel = pick[c]
+            take(pick[c], c, res)
+            st.finish(stage, c)
+            setattr(self.run, f"computed_{label}",
+                    getattr(self.run, f"computed_{label}") + pick[c].size)
+            done += pick[c].size
+            self.writer.mark()
+            self._report(label, done, total)
+        self.writer.flush()
+        self._timed(label, t0)
+
+    def gamma(self, rtol: float) -> None:
+        """Stage 2: the optimal gamma of every valid point."""
+        st = self.state
+
+        def take(sel: np.ndarray, _c: int, res) -> None:
+            gam, reasons = res
             st.gamma_opt[sel] = gam
             for i, r in zip(sel, reasons, strict=False):
                 st.gamma_reasons[i] = r
-            st.finish("gamma", c)
-            self.run.computed_gamma += sel.size
-            done += sel.size
-            self.writer.mark()
-            self._report("gamma", done, total)
-        self.writer.flush()
-        self._timed("gamma", t0)
+
+        self._run("gamma", "gamma", st.valid, gamma_chunk, rtol, take)
 
     def controllers(self, status_ok: np.ndarray, gamma: float) -> None:
         """Stage 3: the central controller at the common gamma at every ok point."""
-        st, t0 = self.state, time.perf_counter()
+        st = self.state
         if not (st.ctrl_gamma == gamma):  # new gamma (or nan): earlier controllers are stale
             st.reset_controllers(gamma)
-        todo, pick = [], {}
-        for c, idx in enumerate(st.chunks):
-            if st.done["controller"][c]:
-                continue
-            sel = idx[status_ok[idx]]
-            if sel.size == 0:
-                st.finish("controller", c)
-                continue
-            todo.append(c)
-            pick[c] = sel
-        total = int(status_ok.sum())
-        self.run.resumed_controllers = total - sum(pick[c].size for c in todo)
-        done = self.run.resumed_controllers
-        self._report("controllers", done, total)
-        tasks = _Tasks(todo, lambda c: (self._stack(pick[c]), gamma))
-        for t, (ctrl, pieces, creasons) in run_chunks(controller_chunk, tasks, jobs=self.jobs,
-                                                      cluster=self.cluster):
-            c = todo[t]
-            sel = pick[c]
+
+        def take(sel: np.ndarray, c: int, res) -> None:
+            ctrl, pieces, creasons = res
             for i, reason in zip(sel, creasons, strict=True):
                 st.ctrl_reasons[i] = reason
-            if ctrl:
-                if st.controller is None:
-                    st.controller = {k: np.zeros((st.N,) + v.shape[1:]) for k, v in ctrl.items()}
-                    st.pieces = {k: np.zeros((st.N,) + v.shape[1:]) for k, v in pieces.items()}
-                good = np.array([not r for r in creasons], dtype=bool)
-                for k, v in ctrl.items():
-                    st.controller[k][sel[good]] = v[good]
-                for k, v in pieces.items():
-                    if k not in st.pieces or st.pieces[k].shape[1:] != v.shape[1:]:
-                        raise InputError(f"observer pieces '{k}' have shape {v.shape[1:]} in "
-                                         f"chunk {c}, unlike other chunks; report this as a bug")
-                    st.pieces[k][sel[good]] = v[good]
-            st.finish("controller", c)
-            self.run.computed_controllers += sel.size
-            done += sel.size
-            self.writer.mark()
-            self._report("controllers", done, total)
-        self.writer.flush()
-        self._timed("controllers", t0)
+            if not ctrl:
+                return
+            if st.controller is None:
+                st.controller = {k: np.zeros((st.N,) + v.shape[1:]) for k, v in ctrl.items()}
+                st.pieces = {k: np.zeros((st.N,) + v.shape[1:]) for k, v in pieces.items()}
+            good = np.array([not r for r in creasons], dtype=bool)
+            for k, v in ctrl.items():
+                st.controller[k][sel[good]] = v[good]
+            for k, v in pieces.items():
+                if k not in st.pieces or st.pieces[k].shape[1:] != v.shape[1:]:
+                    raise InputError(f"observer pieces '{k}' have shape {v.shape[1:]} in "
+                                     f"chunk {c}, unlike other chunks; report this as a bug")
+                st.pieces[k][sel[good]] = v[good]
+
+        self._run("controller", "controllers", status_ok, controller_chunk, gamma, take)
 
 
 def _family_from_state(st: _PartialState, stages: _Stages, *, variables, policy: str,

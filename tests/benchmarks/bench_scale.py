@@ -18,7 +18,10 @@ figures to trust, medians of ``--repeats``; the load average is printed with the
    --jobs 2 for comparison).
 
 Peak memory per stage: the resident high-water mark (VmHWM), reset before each stage
-through /proc/self/clear_refs (Linux).
+through /proc/self/clear_refs (Linux). On a loaded machine wall-clock speed-ups mean
+little, so part 3 also prints CPU figures from /proc: the total CPU of the parallel run
+(parent and workers) relative to the serial run's, and the speed-up two idle cores
+would give (the serial CPU over the busiest of parent and workers).
 """
 
 from __future__ import annotations
@@ -208,10 +211,15 @@ def parallel(args, tmp: Path) -> None:
     print(f"parallel: {len(fam.points)}-point envelope, {len(pts)} check points", flush=True)
     s2 = CheckSettings(samples=0, gamma_opt=False, rate=False)
     one = {k: "1" for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}
+    from schedule.parallel import _executor
+
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   dashboard_address=None, env=one) as lc, \
             distributed.Client(lc) as client:
         client.run(lambda: __import__("schedule.family"))
+        dask_pids = list(client.run(os.getpid).values())
+        _executor(2).submit(int).result()  # the local workers exist from here on
+        loky_pids = [p.pid for p in _executor(2)._processes.values()]
         rows = {"checks": [], "synthesis": [], "design": []}
         for _ in range(args.repeats):
             for what, fn in (
@@ -219,19 +227,46 @@ def parallel(args, tmp: Path) -> None:
                     ("synthesis", lambda **kw: run_design(spec, None, fit=False, **kw)),
                     ("design", lambda **kw: run_design(spec, None, **kw))):
                 times = []
-                for kw in ({}, {"jobs": 2}, {"cluster": client}):
+                for kw, pids in (({}, []), ({"jobs": 2}, loky_pids),
+                                 ({"cluster": client}, dask_pids)):
+                    c0, w0 = _cpu_self(), [_cpu(p) for p in pids]
                     t = time.perf_counter()
                     fn(**kw)
                     times.append(time.perf_counter() - t)
+                    busy = [_cpu(p) - c for p, c in zip(pids, w0, strict=True)]
+                    times.append((_cpu_self() - c0, busy))
                 rows[what].append(times)
         for what, runs in rows.items():
-            runs = np.array(runs)
-            print(f"{what:<10} serial {np.median(runs[:, 0]):6.1f} s; 2 local workers "
-                  f"{np.median(runs[:, 0] / runs[:, 1]):.2f}x; dask LocalCluster 2 workers "
-                  f"{np.median(runs[:, 0] / runs[:, 2]):.2f}x (runs "
-                  f"{', '.join(f'{x:.2f}' for x in runs[:, 0] / runs[:, 2])}; target >= 1.6)",
-                  flush=True)
+            wall = np.array([[r[0], r[2], r[4]] for r in runs])
+            serial_cpu = np.median([r[1][0] for r in runs])
+            line = (f"{what:<10} serial {np.median(wall[:, 0]):6.1f} s; 2 local workers "
+                    f"{np.median(wall[:, 0] / wall[:, 1]):.2f}x; dask LocalCluster 2 workers "
+                    f"{np.median(wall[:, 0] / wall[:, 2]):.2f}x (runs "
+                    f"{', '.join(f'{x:.2f}' for x in wall[:, 0] / wall[:, 2])}; target >= 1.6)")
+            for label, k in (("local", 3), ("dask", 5)):
+                parent = np.median([r[k][0] for r in runs])
+                workers = np.median([max(r[k][1]) for r in runs])
+                total = np.median([r[k][0] + sum(r[k][1]) for r in runs])
+                # CPU seconds, not wall: the speed-up two idle cores would give
+                line += (f"; {label}: CPU {total / serial_cpu:.2f}x serial's, idle-core "
+                         f"speed-up {serial_cpu / max(parent, workers):.2f}x")
+            print(line, flush=True)
     print(load())
+
+
+def _cpu(pid: int) -> float:
+    """CPU seconds (user + system) used so far by process ``pid`` (Linux /proc)."""
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except OSError:
+        return float("nan")
+
+
+def _cpu_self() -> float:
+    t = os.times()
+    return t.user + t.system
 
 
 def main() -> None:
