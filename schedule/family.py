@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError, ScheduleError
-from .parallel import prestart, run_chunks
+from .parallel import prestart, run_chunks, session
 from .store import CONTROLLER_KEYS, PLANT_KEYS, read_partial, write_family, write_partial
 from .types import Family, SchedulingVariable, point_text
 
@@ -329,11 +329,7 @@ def _source(spec) -> _Source:
     from . import sources
 
     if spec.source.operating_points is not None:
-        from .oppoints import read_operating_points
-
-        ops = sources.operating_points_for(spec)  # checks variables, bounds, breakpoints
-        file = read_operating_points(spec.source.operating_points)
-        points, bp, gi, holes = ops.points, ops.breakpoints, ops.grid_index, ops.holes_report
+        file, points, bp, gi, holes = sources.file_points(spec, Path(spec.source.operating_points))
     else:
         file = None
         points, bp, gi, holes = sources.design_points(spec)
@@ -884,10 +880,18 @@ def run_design(spec, out: str | os.PathLike | None = None, jobs: int = 1, cluste
     :func:`design_family`); then the interpolant is chosen and fitted and the family
     written. ``run.stage_seconds`` holds the time of each stage.
     """
-    t0 = time.perf_counter()
     out = Path(out) if out is not None else None
     if out is not None and not (out.parent if str(out.parent) else Path(".")).is_dir():
         raise InputError(f"output folder {out.parent} does not exist; create it first")
+    with session(cluster) as client:  # one connection for every stage
+        return _run_design(spec, out, jobs, client, resume, progress, fit, rtol, chunk_size,
+                           costly_kinds_max_points)
+
+
+def _run_design(spec, out: Path | None, jobs: int, cluster: Any, resume: bool,
+                progress: Progress | None, fit: bool, rtol: float, chunk_size: int,
+                costly_kinds_max_points: int | None) -> DesignRun:
+    t0 = time.perf_counter()
     prestart(jobs, cluster)  # worker start-up overlaps with reading the envelope
     src = _source(spec)
     points = src.points

@@ -411,17 +411,19 @@ class LooResult:
 
     @property
     def max_norm_ratio(self) -> float:
-        r = self.norm_ratio
-        if self.failure or not r.size or self.norm_status == "skipped":
-            return float("inf") if self.failure or not r.size else float("nan")
-        return float(np.nanmax(r)) if np.any(~np.isnan(r)) else float("nan")
+        """Max norm/gamma over every prediction: inf when one is unstable or failed."""
+        if self.failure or not self.stable.size or not self.stable.all():
+            return float("inf")
+        return self.max_stable_norm_ratio
 
     @property
     def max_stable_norm_ratio(self) -> float:
+        """Max norm/gamma over the stable predictions (inf when there are none; nan when
+        no norm was computed; a lower bound when ``norm_status`` is "bound")."""
         r = self.norm_ratio[self.stable]
         if self.failure or not r.size:
             return float("inf")
-        if self.norm_status == "skipped" or np.all(np.isnan(r)):
+        if np.all(np.isnan(r)):
             return float("nan")
         return float(np.nanmax(r))
 
@@ -440,9 +442,8 @@ class LooResult:
         (Ties in max norm/gamma within :data:`RANK_TIE` are decided by
         :func:`best_candidate`, which is what the choice uses.)
         """
-        med = self.median_error
-        mx = self.max_stable_norm_ratio
-        return (self.n_unstable, mx if np.isfinite(mx) or mx == np.inf else np.inf,
+        med, mx = self.median_error, self.max_stable_norm_ratio
+        return (self.n_unstable, np.inf if np.isnan(mx) else mx,
                 med if np.isfinite(med) else np.inf)
 
     def summary(self) -> dict:

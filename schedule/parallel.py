@@ -14,8 +14,8 @@ Backends
   SIGKILL), so no worker outlives an interrupted run.
 - ``cluster=ADDRESS``: a dask.distributed scheduler (``Client(ADDRESS)``); the
   optional ``cluster`` extra must be installed. A ``distributed.Client`` or
-  ``LocalCluster`` object may be given instead of an address. :func:`connect`
-  checks the address and connects once per process.
+  ``LocalCluster`` object may be given instead of an address. :func:`session`
+  checks the address and connects once for a block of work (a design run).
 
 Tasks and chunks
 ----------------
@@ -42,7 +42,6 @@ holds the GIL); ``--death-timeout 60`` lets workers leave when the scheduler goe
 
 from __future__ import annotations
 
-import atexit
 import math
 import os
 import re
@@ -50,6 +49,7 @@ import socket
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from typing import Any
 
 import numpy as np
@@ -85,7 +85,7 @@ def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
     if not len(chunks):
         return iter(())
     if cluster is not None:
-        return _run_dask(func, chunks, connect(cluster))
+        return _run_dask(func, chunks, cluster)
     if jobs == 1 or len(chunks) == 1:
         return ((i, func(*chunks[i])) for i in range(len(chunks)))
     return _run_local(func, chunks, jobs)
@@ -106,8 +106,8 @@ def worker_count(jobs: int = 1, cluster: Any = None) -> int:
     """Workers that run tasks at once: ``jobs``, or the dask cluster's worker threads."""
     if cluster is None:
         return _check_jobs(jobs)
-    client = connect(cluster)
-    return max(1, int(sum(client.nthreads().values())))
+    with session(cluster) as client:
+        return max(1, int(sum(client.nthreads().values())))
 
 
 def split_evenly(indices: np.ndarray, jobs: int = 1, cluster: Any = None,
@@ -193,8 +193,8 @@ def prestart(jobs: int = 1, cluster: Any = None) -> None:
     and connect now. No effect for ``jobs=1``."""
     jobs = _check_jobs(jobs)
     if cluster is not None:
-        connect(cluster)
-        return
+        with session(cluster):
+            return
     if jobs == 1:
         return
     executor = _executor(jobs)
@@ -267,21 +267,8 @@ def _run_local(func, chunks, jobs) -> Iterator[tuple[int, Any]]:
 
 
 # ----------------------------------------------------------------------------- dask
-_CLIENTS: dict[str, Any] = {}
 _ADDRESS = re.compile(r"(?:(tcp|tls|ws|wss|ucx)://)?(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
                       r":(\d{1,5})")
-
-
-def _close_clients() -> None:
-    for client in list(_CLIENTS.values()):
-        try:
-            client.close(timeout=2)
-        except Exception:  # noqa: BLE001 - best effort at exit
-            pass
-    _CLIENTS.clear()
-
-
-atexit.register(_close_clients)
 
 
 def check_address(address: str) -> tuple[str, str, int]:
@@ -304,55 +291,51 @@ def check_address(address: str) -> tuple[str, str, int]:
     return scheme, host, port
 
 
-def connect(cluster: Any):
-    """A ``distributed.Client`` for ``cluster`` (an address, a Client or a cluster object).
+@contextmanager
+def session(cluster: Any):
+    """The ``distributed.Client`` of ``cluster`` for a block of work (None without one).
 
-    Addresses are checked first (:func:`check_address`), a plain TCP address is probed
-    with one socket connection (a refused or silent port fails in seconds), and one
-    client per address is kept for the life of the process.
+    ``cluster`` is an address, a ``Client`` (used as it is) or a cluster object. An
+    address is checked first (:func:`check_address`) and a plain TCP one probed with
+    one socket connection, so a wrong or silent address fails in seconds with one
+    line; a client made here is closed at the end of the block. A design run opens one
+    session for all its stages.
 
     Raises
     ------
     InputError
         dask.distributed is not installed, or the scheduler cannot be reached (one line).
     """
+    if cluster is None:
+        yield None
+        return
     try:
         from distributed import Client
     except ImportError:
         raise InputError("--cluster needs dask.distributed; install the extra with "
                          "pip install 'schedule[cluster]'") from None
     if isinstance(cluster, Client):
-        return cluster
-    if not isinstance(cluster, str):  # a LocalCluster or another cluster object
-        key = f"object:{id(cluster)}"
-        if key not in _CLIENTS:
-            try:
-                _CLIENTS[key] = Client(cluster, set_as_default=False)
-            except Exception as exc:  # noqa: BLE001 - any failure is one line for the user
-                raise InputError(f"cannot use the dask cluster {cluster!r} "
-                                 f"({type(exc).__name__}); check that it runs") from None
-        return _CLIENTS[key]
-    if cluster.startswith("inproc://"):
-        scheme = "inproc"
-    else:
+        yield cluster
+        return
+    if isinstance(cluster, str) and not cluster.startswith("inproc://"):
         scheme, host, port = check_address(cluster)
-    if cluster in _CLIENTS and _CLIENTS[cluster].status == "running":
-        return _CLIENTS[cluster]
-    if scheme == "tcp":
-        try:
-            socket.create_connection((host, port), timeout=CONNECT_TIMEOUT).close()
-        except OSError as exc:
-            raise InputError(f"cannot reach the dask scheduler at {cluster!r} "
-                             f"({type(exc).__name__}: {exc.strerror or exc}); check the address "
-                             "and that `dask scheduler` runs there") from None
+        if scheme == "tcp":
+            try:
+                socket.create_connection((host, port), timeout=CONNECT_TIMEOUT).close()
+            except OSError as exc:
+                raise InputError(f"cannot reach the dask scheduler at {cluster!r} "
+                                 f"({type(exc).__name__}: {exc.strerror or exc}); check the "
+                                 "address and that `dask scheduler` runs there") from None
     try:
         client = Client(cluster, timeout=f"{CONNECT_TIMEOUT}s", set_as_default=False)
     except Exception as exc:  # noqa: BLE001 - any failure is one line for the user
         raise InputError(f"cannot reach the dask scheduler at {cluster!r} "
                          f"({type(exc).__name__}); check the address and that it runs"
                          ) from None
-    _CLIENTS[cluster] = client
-    return client
+    try:
+        yield client
+    finally:
+        client.close()
 
 
 def _nbytes(args: tuple) -> int:
@@ -365,13 +348,18 @@ def _nbytes(args: tuple) -> int:
     return total
 
 
-def _run_dask(func, chunks, client) -> Iterator[tuple[int, Any]]:
+def _run_dask(func, chunks, cluster) -> Iterator[tuple[int, Any]]:
+    with session(cluster) as client:
+        yield from _run_on(func, chunks, client)
+
+
+def _run_on(func, chunks, client) -> Iterator[tuple[int, Any]]:
     from distributed import as_completed
 
     pid = os.getpid()
     workers = max(1, int(sum(client.nthreads().values())))
     plan = _Planner(len(chunks), workers, TASK_SECONDS["dask"])
-    pending = as_completed()
+    pending = as_completed(loop=client.loop)
     count = 0
 
     def submit() -> bool:

@@ -33,7 +33,7 @@ from .types import LinearPlant
 
 __all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "operating_points_for",
            "OperatingSet", "as_linear_plant", "check_consistent", "design_points",
-           "evaluate_points", "model_source_digest"]
+           "evaluate_points", "model_source_digest", "file_points"]
 
 ModelFn = Callable[[Mapping[str, float]], LinearPlant]
 
@@ -299,6 +299,14 @@ def operating_points_for(spec: DesignSpec, progress: Callable[[int], None] | Non
 
 
 def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
+    ops, pts, breakpoints, grid_index, holes = file_points(spec, path)
+    plants = [ops.plant(k) for k in range(len(ops))]
+    return OperatingSet(pts, plants, breakpoints, grid_index, holes, [""] * len(pts), "file")
+
+
+def file_points(spec: DesignSpec, path: Path):
+    """An operating-point file checked against the design, without per-point objects:
+    ``(OperatingPoints, points, breakpoints, grid_index, holes report)``."""
     from .oppoints import read_operating_points
 
     ops = read_operating_points(path)
@@ -317,7 +325,6 @@ def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
                              f"design bounds of {v.name} [{v.lower:g}, {v.upper:g}]; widen the "
                              "bounds in the design file")
     ScatteredPoints(pts, spec.variables)  # duplicates, NaN
-    plants = [ops.plant(k) for k in range(len(ops))]
     breakpoints = grid_index = None
     holes: tuple[str, ...] = ()
     if ops.breakpoints is not None:
@@ -336,7 +343,7 @@ def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
         holes = tuple(f"grid point {point_text(names, full.points[i])} skipped (not in the "
                       f"file)" for i, idx in enumerate(full.grid_index.tolist())
                       if tuple(idx) not in present)
-    return OperatingSet(pts, plants, breakpoints, grid_index, holes, [""] * len(pts), "file")
+    return ops, pts, breakpoints, grid_index, holes
 
 
 # --------------------------------------------------------------------------- chunked evaluation
