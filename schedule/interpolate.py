@@ -371,7 +371,8 @@ COSTLY_KINDS_MAX_POINTS = InterpolationSpec.costly_kinds_max_points
 NORM_RTOL = 1e-6  # relative accuracy of the leave-one-out closed-loop norms
 RANK_TIE = 1e-5  # max norm/gamma within this relative distance counts as a tie
 COMPLETE_EVIDENCE_LOOPS = 5000  # up to this many stable predictions, every norm is computed
-NORM_BLOCK = 64  # first block of norms of a candidate (then x4 each block)
+NORM_BLOCK = 64  # first block of norms of a candidate (then x4 each block ...
+NORM_BLOCK_MAX = 1024  # ... up to this many loops)
 NORM_STATUS = ("complete", "bound", "skipped")
 
 
@@ -672,7 +673,7 @@ def _norms_of(cand: _Candidate, jobs: int, cluster, stop_above: float = np.inf) 
         sel = order[start:start + size]
         cand.norm[cand.loop_rows[sel]] = _loop_norms(cand.loops, sel, jobs, cluster)
         start += sel.size
-        size *= 4
+        size = min(4 * size, NORM_BLOCK_MAX)  # blocks bound the memory of the norm stacks
         if np.nanmax(cand.norm[cand.loop_rows[sel]]) > stop_above and start < order.size:
             cand.status = "bound"
             return
