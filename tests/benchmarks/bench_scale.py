@@ -221,6 +221,10 @@ def parallel(args, tmp: Path) -> None:
         _executor(2).submit(int).result()  # the local workers exist from here on
         loky_pids = [p.pid for p in _executor(2)._processes.values()]
         rows = {"checks": [], "synthesis": [], "design": []}
+        for kw in ({}, {"jobs": 2}, {"cluster": client}):  # warm-up: imports in the workers
+            check_points({k: v[:64] for k, v in P.items()}, {k: v[:64] for k, v in K.items()},
+                         fam.gamma, s2, **kw)
+            run_design(spec, None, fit=False, **kw)
         for _ in range(args.repeats):
             for what, fn in (
                     ("checks", lambda **kw: check_points(P, K, fam.gamma, s2, **kw)),
@@ -248,8 +252,9 @@ def parallel(args, tmp: Path) -> None:
                 workers = np.median([max(r[k][1]) for r in runs])
                 total = np.median([r[k][0] + sum(r[k][1]) for r in runs])
                 # CPU seconds, not wall: the speed-up two idle cores would give
-                line += (f"; {label}: CPU {total / serial_cpu:.2f}x serial's, idle-core "
-                         f"speed-up {serial_cpu / max(parent, workers):.2f}x")
+                line += (f"; {label}: CPU {total / serial_cpu:.2f}x serial's (parent "
+                         f"{parent:.1f} s, busiest worker {workers:.1f} s), idle-core speed-up "
+                         f"{serial_cpu / max(parent, workers):.2f}x")
             print(line, flush=True)
     print(load())
 
