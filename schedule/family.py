@@ -569,10 +569,11 @@ class _Stages:
                 lin = {"A": linear.A[idx], "B": linear.B[idx], "C": linear.C[idx],
                        "D": linear.D[idx], "names": (linear.state_names, linear.input_names,
                                                      linear.output_names)}
-            return spec, self.points[idx], int(idx[0]), lin
+            return self.points[idx], int(idx[0]), lin
 
         tasks = _Tasks(todo, make)
-        for t, res in run_chunks(plant_chunk, tasks, jobs=self.jobs, cluster=self.cluster):
+        for t, res in run_chunks(plant_chunk, tasks, jobs=self.jobs, cluster=self.cluster,
+                                 shared=(spec,)):
             c = todo[t]
             idx = st.chunks[c]
             self._take_plants(c, idx, res)

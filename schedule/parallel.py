@@ -26,8 +26,9 @@ from the measured cost of the chunks already finished: a task should last about
 :data:`IN_FLIGHT` tasks per worker are outstanding at a time, so the chunk
 arguments are built only shortly before they are sent (``chunks`` may be a lazy
 sequence) and memory stays bounded whatever the number of chunks. On dask,
-arguments larger than :data:`SCATTER_BYTES` are scattered to the workers
-directly instead of travelling inside the task graph.
+arguments common to every chunk (``shared``) are scattered to the workers once,
+and chunk arguments larger than :data:`SCATTER_BYTES` are scattered directly to
+the worker instead of travelling inside the task graph.
 
 Starting a cluster of several machines (the ``cluster`` extra installed on each,
 with this package and the model's module importable at the same paths)::
@@ -64,8 +65,9 @@ CONNECT_TIMEOUT = 5.0  # seconds to reach a dask scheduler
 
 
 def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
-               cluster: Any = None) -> Iterator[tuple[int, Any]]:
-    """Apply ``func(*chunks[i])`` to every chunk and yield ``(i, result)`` as each finishes.
+               cluster: Any = None, shared: tuple = ()) -> Iterator[tuple[int, Any]]:
+    """Apply ``func(*shared, *chunks[i])`` to every chunk and yield ``(i, result)`` as each
+    finishes.
 
     Parameters
     ----------
@@ -75,6 +77,8 @@ def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
     jobs : number of local worker processes; 1 runs in this process.
     cluster : a dask.distributed scheduler address (``"tcp://host:8786"``), a
         ``Client`` or a cluster object; overrides ``jobs``.
+    shared : leading arguments common to every chunk (a design, settings); on dask they
+        are scattered to the workers once, not sent with every task.
 
     Raises
     ------
@@ -84,11 +88,12 @@ def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
     jobs = _check_jobs(jobs)
     if not len(chunks):
         return iter(())
+    shared = tuple(shared)
     if cluster is not None:
-        return _run_dask(func, chunks, cluster)
+        return _run_dask(func, chunks, cluster, shared)
     if jobs == 1 or len(chunks) == 1:
-        return ((i, func(*chunks[i])) for i in range(len(chunks)))
-    return _run_local(func, chunks, jobs)
+        return ((i, func(*shared, *chunks[i])) for i in range(len(chunks)))
+    return _run_local(func, chunks, jobs, shared)
 
 
 def _check_jobs(jobs) -> int:
@@ -202,12 +207,12 @@ def prestart(jobs: int = 1, cluster: Any = None) -> None:
         executor.submit(_noop)
 
 
-def _batch(func, first: int, batch: list[tuple], caller_pid: int = -1):
+def _batch(func, first: int, batch: list[tuple], caller_pid: int = -1, shared: tuple = ()):
     """Run consecutive chunks on a worker: ``(first, [results], seconds per chunk)``."""
     if os.getpid() != caller_pid:  # a worker process (not threads of the caller's process)
         _limit_blas_threads()
     t0 = time.perf_counter()
-    out = [func(*args) for args in batch]
+    out = [func(*shared, *args) for args in batch]
     return first, out, (time.perf_counter() - t0) / max(len(batch), 1)
 
 
@@ -236,7 +241,7 @@ class _Planner:
         self.seconds.append(seconds_per_chunk)
 
 
-def _run_local(func, chunks, jobs) -> Iterator[tuple[int, Any]]:
+def _run_local(func, chunks, jobs, shared: tuple = ()) -> Iterator[tuple[int, Any]]:
     """Local worker processes (loky's reusable process pool, as used by joblib).
 
     The pool is reused between calls (the stages of a family run share the workers)
@@ -252,7 +257,7 @@ def _run_local(func, chunks, jobs) -> Iterator[tuple[int, Any]]:
         while True:
             while len(running) < IN_FLIGHT * jobs and (r := plan.take()) is not None:
                 running.add(executor.submit(_batch, func, r.start, [chunks[i] for i in r],
-                                            pid))
+                                            pid, shared))
             if not running:
                 return
             done, running = wait(running, return_when=FIRST_COMPLETED)
@@ -348,15 +353,17 @@ def _nbytes(args: tuple) -> int:
     return total
 
 
-def _run_dask(func, chunks, cluster) -> Iterator[tuple[int, Any]]:
+def _run_dask(func, chunks, cluster, shared: tuple = ()) -> Iterator[tuple[int, Any]]:
     with session(cluster) as client:
-        yield from _run_on(func, chunks, client)
+        yield from _run_on(func, chunks, client, shared)
 
 
-def _run_on(func, chunks, client) -> Iterator[tuple[int, Any]]:
+def _run_on(func, chunks, client, shared: tuple) -> Iterator[tuple[int, Any]]:
     from distributed import as_completed
 
     pid = os.getpid()
+    if shared:  # once to every worker, then referenced by each task
+        shared = tuple(client.scatter(list(shared), broadcast=True, hash=False))
     workers = max(1, int(sum(client.nthreads().values())))
     plan = _Planner(len(chunks), workers, TASK_SECONDS["dask"])
     pending = as_completed(loop=client.loop)
@@ -369,7 +376,7 @@ def _run_on(func, chunks, client) -> Iterator[tuple[int, Any]]:
         batch = [chunks[i] for i in r]
         if sum(_nbytes(a) for a in batch) > SCATTER_BYTES:
             batch = client.scatter(batch, hash=False, direct=None)
-        pending.add(client.submit(_batch, func, r.start, batch, pid, pure=False))
+        pending.add(client.submit(_batch, func, r.start, batch, pid, shared, pure=False))
         return True
 
     try:
