@@ -496,6 +496,8 @@ def _closed_loops(family: Family, rows: np.ndarray, K: dict, good: np.ndarray):
     for the rows where ``good``; a row whose loop is not well posed is dropped from good."""
     from .check import closed_loop_many
 
+    if not good.any():
+        return (np.zeros((0, 0, 0)),) * 4, good
     plant = {n: np.asarray(family.plant[n], float)[rows[good]] for n in PLANT_KEYS}
     ctrl = {n: K[n][good] for n in CONTROLLER_KEYS}
     try:
@@ -511,6 +513,8 @@ def _closed_loops(family: Family, rows: np.ndarray, K: dict, good: np.ndarray):
                 pass
         good = good.copy()
         good[np.flatnonzero(good)[~keep]] = False
+        if not keep.any():
+            return (np.zeros((0, 0, 0)),) * 4, good
         loops = closed_loop_many({n: v[keep] for n, v in plant.items()},
                                  {n: v[keep] for n, v in ctrl.items()})
         return loops, good
