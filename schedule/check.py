@@ -283,27 +283,26 @@ def _take(d: dict, idx) -> dict:
 def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None = None,
                  jobs: int = 1, cluster=None,
                  progress: Callable[[str, int, int], None] | None = None) -> dict:
-    """:func:`check_arrays` over many points in chunks, serially, on workers or on dask."""
-    from .parallel import run_chunks
+    """:func:`check_arrays` over many points in chunks, serially, on workers or on dask
+    (chunk and task sizes: :func:`schedule.parallel.work_chunk`)."""
+    from .parallel import run_chunks, session, work_chunk
 
     s = settings or CheckSettings()
     P = _stacked(P, PLANT_KEYS)
     K = _stacked(K, ("A", "B", "C", "D"))
     M = P["A"].shape[0]
-    size = int(s.chunk)
-    if jobs > 1 or cluster is not None:  # at least two chunks per worker
-        workers = max(int(jobs), 2)
-        size = max(1, min(size, -(-M // (2 * workers))))
-    starts = list(range(0, M, size))
-    chunks = [(_take(P, slice(a, a + size)), _take(K, slice(a, a + size)), float(gamma),
-               s.gamma_tolerance, s.classical) for a in starts]
     parts: dict[int, dict] = {}
     done = 0
-    for i, res in run_chunks(_kernel_chunk, chunks, jobs=jobs, cluster=cluster):
-        parts[i] = res
-        done += len(res["norm"])
-        if progress:
-            progress("check", done, M)
+    with session(cluster) as client:
+        size = work_chunk(M, jobs, client, largest=int(s.chunk))
+        starts = list(range(0, M, size))
+        chunks = [(_take(P, slice(a, a + size)), _take(K, slice(a, a + size)), float(gamma),
+                   s.gamma_tolerance, s.classical) for a in starts]
+        for i, res in run_chunks(_kernel_chunk, chunks, jobs=jobs, cluster=client):
+            parts[i] = res
+            done += len(res["norm"])
+            if progress:
+                progress("check", done, M)
     if not parts:
         return {}
     return {k: np.concatenate([parts[i][k] for i in range(len(chunks))]) for k in parts[0]}

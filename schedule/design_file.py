@@ -241,6 +241,7 @@ class GammaSpec:
 class InterpolationSpec:
     form: str = "auto"
     kind: str = "auto"
+    costly_kinds_max_points: int = 200  # "auto" tries the costly kinds up to this many points
 
 
 @dataclass(frozen=True)
@@ -988,11 +989,14 @@ def _parse_gamma(r: _Reader, t: dict) -> GammaSpec:
 
 
 def _parse_interpolation(r: _Reader, t: dict) -> InterpolationSpec:
-    r.keys(t, "interpolation", ("form", "kind"))
+    r.keys(t, "interpolation", ("form", "kind", "costly_kinds_max_points"))
     return InterpolationSpec(form=r.choice(t, "interpolation", "form", "auto",
                                            INTERPOLATION_FORMS),
                              kind=r.choice(t, "interpolation", "kind", "auto",
-                                           INTERPOLATION_KINDS))
+                                           INTERPOLATION_KINDS),
+                             costly_kinds_max_points=r.integer(
+                                 t, "interpolation", "costly_kinds_max_points",
+                                 InterpolationSpec.costly_kinds_max_points, minimum=0))
 
 
 def _parse_check(r: _Reader, t: dict) -> CheckSpec:

@@ -7,13 +7,19 @@ Every kind speaks one small vocabulary:
 - ``derivative(points (M, d), variable_index) -> (M, k)`` (per physical unit)
 - ``to_arrays() -> (arrays, attrs)`` and the classmethod ``from_arrays(arrays, attrs)``
 - ``refit(points, values)``: a new interpolant of the same kind fitted with the
-  hyperparameters (degree, smoothing, kernel) of this one frozen; used by the
-  leave-one-out evidence so that only the linear part is refitted.
+  hyperparameters (degree, smoothing, kernel) of this one frozen;
+- ``leave_one_out(points, values) -> (predictions, ok)``: row i is what ``refit``
+  without point i predicts at point i. Every kind computes all rows without N
+  refits: the linear smoothers from one factorization (Gaussian process:
+  Rasmussen and Williams 2006, sec. 5.4.2; RBF: Rippa 1999; polynomial least
+  squares: the hat-matrix identity), the grid kinds by dropping one breakpoint
+  row at a time, the Delaunay kind by re-triangulating around each point only.
+  ``leave_one_out_by_refit`` is the definition (N refits), kept as the reference.
 
 Inputs are scaled to the unit box ``[0, 1]^d`` with the scheduling-variable
 bounds before anything else. A loaded interpolant evaluates with numpy (and
 scipy's Delaunay point location for the ``delaunay`` kind) only; scikit-learn
-is used to FIT the polynomial and Gaussian-process kinds and never stored.
+is used to FIT the Gaussian-process kind and never stored.
 
 Kinds
 -----
@@ -33,8 +39,7 @@ Kinds
     simplex); ``outside_hull(points)`` flags such points.
 ``polynomial``
     Least squares on all monomials of total degree <= q; q chosen by K-fold
-    cross-validation (scikit-learn ``PolynomialFeatures``, ``LinearRegression``,
-    ``cross_val_score``) on standardized values.
+    cross-validation on standardized values.
 ``rbf``
     Radial basis functions with a low-degree polynomial tail and smoothing
     (the system solved by scipy.interpolate.RBFInterpolator); the smoothing is
@@ -61,6 +66,7 @@ Learning. MIT Press.
 
 from __future__ import annotations
 
+import hashlib
 import itertools
 import warnings
 
@@ -185,6 +191,45 @@ class Interpolant:
         new = type(self)(self.lower, self.upper)
         return new.fit(points, values)
 
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions with this interpolant's hyperparameters frozen.
+
+        Row i is the value at ``points[i]`` of :meth:`refit` on all the other points
+        (Stone 1974). Kinds that are linear smoothers compute all rows from one
+        factorization (see their ``leave_one_out``); this base version refits N times.
+
+        Returns
+        -------
+        predictions : (N, k) array (rows where ``ok`` is False hold zeros).
+        ok : (N,) bool, False where the refit without that point is impossible (too few
+            points left, a singular system).
+        """
+        x, y = self._loo_input(points, values)
+        return self.leave_one_out_by_refit(x, y)
+
+    def leave_one_out_by_refit(self, points, values, rows=None
+                               ) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions by refitting once per left-out point (the definition;
+        the reference for the closed forms). ``rows`` limits the work to those points."""
+        x, y = self._loo_input(points, values)
+        n = x.shape[0]
+        pred = np.zeros((n, y.shape[1]))
+        ok = np.zeros(n, dtype=bool)
+        for i in (range(n) if rows is None else rows):
+            keep = np.arange(n) != i
+            try:
+                pred[i] = self.refit(x[keep], y[keep]).evaluate(x[i:i + 1])[0]
+            except (InputError, NumericalError, np.linalg.LinAlgError):
+                continue
+            ok[i] = bool(np.all(np.isfinite(pred[i])))
+        return pred, ok
+
+    def _loo_input(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        if self.d_ is None:
+            raise InputError(f"the {self.kind} interpolant is not fitted; call fit() first")
+        x = _as_points(points, self.d_)
+        return x, _as_values(values, x.shape[0])
+
     def _base_arrays(self) -> tuple[dict, dict]:
         arrays = {"lower": self.lower.copy(), "upper": self.upper.copy()}
         attrs = {"kind": self.kind, "format_version": FORMAT_VERSION,
@@ -239,6 +284,51 @@ def _locate_nodes(x: np.ndarray, axes: list[np.ndarray]) -> np.ndarray:
     return idx
 
 
+def _node_estimate(grid: np.ndarray, known: np.ndarray, axes: list[np.ndarray], node: tuple,
+                   degree: int):
+    """The hole-filling estimate of one grid node from the known nodes of the grid lines
+    through it (see :func:`_fill_holes`); None when no line through it has a known node."""
+    from scipy.interpolate import make_interp_spline
+
+    interp, extrap = [], []
+    for j, ax in enumerate(axes):
+        line = list(node)
+        line[j] = slice(None)
+        line = tuple(line)
+        kn = np.flatnonzero(known[line])
+        if kn.size == 0:
+            continue
+        i = node[j]
+        vals = grid[line][kn]
+        if kn.size == 1:
+            est = vals[0]
+        else:
+            k = min(degree, kn.size - 1)
+            est = make_interp_spline(ax[kn], vals, k=k, axis=0)(ax[i])
+        (interp if kn[0] < i < kn[-1] else extrap).append(est)
+    if interp:
+        return np.mean(interp, axis=0)
+    if extrap:
+        return np.mean(extrap, axis=0)
+    return None
+
+
+def _place_on_grid(x: np.ndarray, y: np.ndarray, axes: list[np.ndarray]):
+    """Node index of every point (unit box), the mask of nodes with data and the grid
+    of values (zeros at the holes)."""
+    idx = _locate_nodes(x, axes)
+    shape = tuple(len(a) for a in axes)
+    present = np.zeros(shape, dtype=bool)
+    grid = np.zeros(shape + (y.shape[1],))
+    flat = np.ravel_multi_index(tuple(idx.T), shape)
+    if np.unique(flat).size != flat.size:
+        raise InputError("two points fall on the same grid node; remove the duplicate "
+                         "operating point")
+    present[tuple(idx.T)] = True
+    grid[tuple(idx.T)] = y
+    return idx, present, grid
+
+
 def _fill_holes(grid: np.ndarray, present: np.ndarray, axes: list[np.ndarray],
                 degree: int = 1) -> np.ndarray:
     """Fill grid nodes without data by interpolation along the grid lines through them.
@@ -253,34 +343,15 @@ def _fill_holes(grid: np.ndarray, present: np.ndarray, axes: list[np.ndarray],
     known node on any line take the value of the nearest known node
     (unit-box distance).
     """
-    from scipy.interpolate import make_interp_spline
-
     grid = grid.copy()
     known = present.copy()
     shape = present.shape
     while not known.all():
         estimates = {}
         for node in zip(*np.nonzero(~known), strict=True):
-            interp, extrap = [], []
-            for j, ax in enumerate(axes):
-                line = list(node)
-                line[j] = slice(None)
-                line = tuple(line)
-                kn = np.flatnonzero(known[line])
-                if kn.size == 0:
-                    continue
-                i = node[j]
-                vals = grid[line][kn]
-                if kn.size == 1:
-                    est = vals[0]
-                else:
-                    k = min(degree, kn.size - 1)
-                    est = make_interp_spline(ax[kn], vals, k=k, axis=0)(ax[i])
-                (interp if kn[0] < i < kn[-1] else extrap).append(est)
-            if interp:
-                estimates[node] = np.mean(interp, axis=0)
-            elif extrap:
-                estimates[node] = np.mean(extrap, axis=0)
+            est = _node_estimate(grid, known, axes, node, degree)
+            if est is not None:
+                estimates[node] = est
         if not estimates:  # no known node on any line through a hole: nearest known node
             coords = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, len(axes))
             kflat = np.flatnonzero(known.ravel())
@@ -292,6 +363,50 @@ def _fill_holes(grid: np.ndarray, present: np.ndarray, axes: list[np.ndarray],
             grid[node] = value
             known[node] = True
     return grid
+
+
+def _row_drop_estimates(grid: np.ndarray, axes: list[np.ndarray], degree: int
+                        ) -> np.ndarray:
+    """For every node of a grid without holes, the estimate :func:`_fill_holes` makes when
+    that node alone is missing, computed by dropping one breakpoint row at a time.
+
+    Dropping breakpoint b of axis j and interpolating along axis j (the kind's 1-D rule
+    through the remaining breakpoints, evaluated at the dropped one) gives the line
+    estimate of every node of that row at once; the estimates of a node are then averaged
+    over the axes that bracket it, else over the axes that extrapolate, as for one hole.
+    Cost: one 1-D spline fit per breakpoint, O(nodes x values x sum of breakpoints).
+    """
+    from scipy.interpolate import make_interp_spline
+
+    shape = grid.shape[:-1]
+    s_in, s_ex = np.zeros(grid.shape), np.zeros(grid.shape)
+    c_in, c_ex = np.zeros(shape), np.zeros(shape)
+    for j, ax in enumerate(axes):
+        n = len(ax)
+        if n < 2:
+            continue
+        for b in range(n):
+            keep = np.delete(np.arange(n), b)
+            if n == 2:
+                est = np.take(grid, keep[0], axis=j)
+            elif degree == 1:  # the straight line through the nearest remaining pair
+                lo, hi = (b - 1, b + 1) if 0 < b < n - 1 else ((1, 2) if b == 0 else
+                                                                (n - 3, n - 2))
+                t = (ax[b] - ax[lo]) / (ax[hi] - ax[lo])
+                est = (1.0 - t) * np.take(grid, lo, axis=j) + t * np.take(grid, hi, axis=j)
+            else:
+                vals = np.take(grid, keep, axis=j)
+                est = make_interp_spline(ax[keep], vals, k=min(degree, n - 2), axis=j)(ax[b])
+            row = (slice(None),) * j + (b,)
+            if 0 < b < n - 1:
+                s_in[row] += est
+                c_in[row] += 1
+            else:
+                s_ex[row] += est
+                c_ex[row] += 1
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where((c_in > 0)[..., None], s_in / c_in[..., None],
+                        s_ex / c_ex[..., None])
 
 
 def _tensor_evaluate(coef: np.ndarray, spans: list[np.ndarray],
@@ -361,19 +476,47 @@ class _GridInterpolant(Interpolant):
             raise InputError(f"the {x.shape[0]} points do not form a rectangular grid (they span "
                              f"{n_nodes} grid nodes); use a scattered kind ('delaunay', 'rbf', "
                              "'polynomial' or 'gaussian_process')")
-        idx = _locate_nodes(x, axes)
-        shape = tuple(len(a) for a in axes)
-        present = np.zeros(shape, dtype=bool)
-        grid = np.zeros(shape + (y.shape[1],))
-        flat = np.ravel_multi_index(tuple(idx.T), shape)
-        if np.unique(flat).size != flat.size:
-            raise InputError("two points fall on the same grid node; remove the duplicate "
-                             "operating point")
-        present[tuple(idx.T)] = True
-        grid[tuple(idx.T)] = y
+        _idx, present, grid = _place_on_grid(x, y, axes)
         self.axes_ = axes
         self.filled_ = ~present
         return _fill_holes(grid, present, axes, self._fill_degree)
+
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions without refitting.
+
+        With a node left out the refit fills it as a hole (see :func:`_fill_holes`), and
+        both grid kinds reproduce node values, so the prediction at the node is its
+        hole-filling estimate. For nodes whose grid lines hold no other hole every
+        estimate comes from :func:`_row_drop_estimates` (one breakpoint row dropped at a
+        time); nodes on a line with a hole get the same estimate node by node; a node
+        with no other node on any of its lines is refitted.
+        """
+        x, y = self._loo_input(points, values)
+        u = (x - self.lower) / (self.upper - self.lower)
+        idx, present, grid = _place_on_grid(u, y, self.axes_)
+        nodes = tuple(idx.T)
+        line_full = np.ones(present.shape, dtype=bool)
+        for j in range(present.ndim):
+            line_full &= np.all(present, axis=j, keepdims=True)
+        pred = np.zeros_like(y)
+        ok = np.ones(x.shape[0], dtype=bool)
+        fast = line_full[nodes]
+        if fast.any():
+            pred[fast] = _row_drop_estimates(grid, self.axes_, self._fill_degree)[nodes][fast]
+        slow = []
+        for i in np.flatnonzero(~fast):
+            known = present.copy()
+            node = tuple(int(v) for v in idx[i])
+            known[node] = False
+            est = _node_estimate(grid, known, self.axes_, node, self._fill_degree)
+            if est is None:
+                slow.append(i)
+            else:
+                pred[i] = est
+        if slow:
+            p2, ok2 = self.leave_one_out_by_refit(x, y, rows=slow)
+            pred[slow], ok[slow] = p2[slow], ok2[slow]
+        return pred, ok
 
     def _grid_arrays(self) -> tuple[dict, dict]:
         arrays, attrs = self._base_arrays()
@@ -557,6 +700,97 @@ class CubicSplineGrid(_GridInterpolant):
 
 
 # ----------------------------------------------------------------------------- Delaunay
+def _triangulate(x: np.ndarray) -> np.ndarray:
+    """Simplices (S, d+1) of the Delaunay triangulation of unit-box points (n, d).
+
+    In one dimension the sorted intervals. Qhull's triangulated output may hold flat
+    simplices (co-circular grid points); they contain no point strictly and are dropped.
+    """
+    n, d = x.shape
+    if n < d + 1:
+        raise InputError(f"Delaunay interpolation in {d} variables needs at least {d + 1} "
+                         f"points, got {n}; add points or use kind 'polynomial'")
+    if d == 1:
+        order = np.argsort(x[:, 0])
+        if np.any(np.diff(x[order, 0]) <= _GRID_TOL):
+            raise InputError("two points share the same scheduling value; remove the "
+                             "duplicate operating point")
+        return np.stack([order[:-1], order[1:]], axis=1)
+    from scipy.spatial import Delaunay, QhullError
+
+    try:
+        tri = Delaunay(x)
+    except QhullError as exc:
+        raise InputError(f"Delaunay triangulation failed ({str(exc).splitlines()[0]}); "
+                         "the points may be collinear/coplanar, use kind "
+                         "'polynomial' or 'rbf'") from None
+    simplices = tri.simplices.astype(np.int64)
+    edges = np.transpose(x[simplices[:, :-1]] - x[simplices[:, -1:]], (0, 2, 1))
+    vol = np.abs(np.linalg.det(edges))
+    return simplices[vol > 1e-12 * max(vol.max(), 1e-300)]
+
+
+def _barycentric_all(x: np.ndarray, simplices: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """Barycentric coordinates (S, d+1) of the point p in every simplex (same convention as
+    :meth:`DelaunayLinear._barycentric`: the last vertex is the origin)."""
+    r = x[simplices[:, -1]]
+    M = np.transpose(x[simplices[:, :-1]] - r[:, None, :], (0, 2, 1))
+    b = np.einsum("mij,mj->mi", np.linalg.inv(M), p[None, :] - r)
+    return np.concatenate([b, 1.0 - b.sum(axis=1, keepdims=True)], axis=1)
+
+
+def _local_prediction(x: np.ndarray, local: np.ndarray, i: int):
+    """(vertices, weights) of the point x[i] in the triangulation of x[local], by the rule
+    of :meth:`DelaunayLinear._locate` (the first simplex holding it, else the simplex whose
+    smallest barycentric coordinate is largest), and whether a simplex holds it."""
+    simplices = _triangulate(x[local])
+    b = _barycentric_all(x[local], simplices, x[i])
+    low = b.min(axis=1)
+    inside = np.flatnonzero(low >= -1e-10)
+    s = int(inside[0]) if inside.size else int(np.argmax(low))
+    return local[simplices[s]], b[s], bool(inside.size)
+
+
+_DELAUNAY_LOO: dict = {}  # the last point set's leave-one-out weights
+
+
+def _delaunay_loo_weights(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per point of x (n, d): the d+1 points and weights that predict it by linear
+    interpolation on the Delaunay triangulation of the other points (see
+    :meth:`DelaunayLinear.leave_one_out`), and whether that is possible."""
+    n, d = x.shape
+    idx = np.zeros((n, d + 1), dtype=np.intp)
+    w = np.zeros((n, d + 1))
+    ok = np.zeros(n, dtype=bool)
+    if n < d + 2:
+        return idx, w, ok
+    simplices = _triangulate(x)
+    flat = simplices.ravel()
+    order = np.argsort(flat, kind="stable")
+    starts = np.searchsorted(flat[order], np.arange(n + 1))
+    owner = order // (d + 1)  # simplex of each incidence, grouped by vertex
+
+    def ring(vertices: np.ndarray) -> np.ndarray:
+        rows = np.concatenate([owner[starts[v]:starts[v + 1]] for v in vertices])
+        return np.unique(simplices[rows])
+
+    for i in range(n):
+        link = ring(np.array([i]))
+        link = link[link != i]
+        try:
+            if link.size >= d + 1:
+                verts, bary, inside = _local_prediction(x, link, i)
+            else:
+                inside = False
+            if not inside:
+                wide = ring(link)
+                verts, bary, _ = _local_prediction(x, wide[wide != i], i)
+        except (InputError, np.linalg.LinAlgError):
+            continue
+        idx[i], w[i], ok[i] = verts, bary, True
+    return idx, w, ok
+
+
 class DelaunayLinear(Interpolant):
     """Piecewise-linear interpolation on a Delaunay triangulation of scattered points.
 
@@ -572,34 +806,40 @@ class DelaunayLinear(Interpolant):
 
     def fit(self, points, values) -> DelaunayLinear:
         x, y = self._check_fit_input(points, values)
-        n, d = x.shape
-        if n < d + 1:
-            raise InputError(f"Delaunay interpolation in {d} variables needs at least {d + 1} "
-                             f"points, got {n}; add points or use kind 'polynomial'")
-        if d == 1:
-            order = np.argsort(x[:, 0])
-            if np.any(np.diff(x[order, 0]) <= _GRID_TOL):
-                raise InputError("two points share the same scheduling value; remove the "
-                                 "duplicate operating point")
-            simplices = np.stack([order[:-1], order[1:]], axis=1)
-        else:
-            from scipy.spatial import Delaunay, QhullError
-
-            try:
-                tri = Delaunay(x)
-            except QhullError as exc:
-                raise InputError(f"Delaunay triangulation failed ({str(exc).splitlines()[0]}); "
-                                 "the points may be collinear/coplanar, use kind "
-                                 "'polynomial' or 'rbf'") from None
-            simplices = tri.simplices.astype(np.int64)
-            # Qhull's triangulated output may hold flat simplices (co-circular grid points);
-            # they contain no point strictly, so drop them
-            edges = np.transpose(x[simplices[:, :-1]] - x[simplices[:, -1:]], (0, 2, 1))
-            vol = np.abs(np.linalg.det(edges))
-            simplices = simplices[vol > 1e-12 * max(vol.max(), 1e-300)]
+        simplices = _triangulate(x)
         self.x_, self.values_, self.simplices_ = x, y, simplices
         self._prepare()
         return self
+
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions by re-triangulating only around each left-out point.
+
+        Deleting a vertex from a Delaunay triangulation changes only the simplices
+        around it: the hole is filled by the Delaunay simplices of its neighbours
+        (Devillers 2002). A point inside the hull of the others is therefore
+        predicted from the triangulation of its neighbours; a point outside it
+        (extrapolated by the nearest-simplex rule of :meth:`evaluate`) from the
+        triangulation of its neighbours and theirs. The weights depend on the points
+        only and are shared by every value set on the same points. For points in
+        general position this is the refit without the point; where the points are
+        degenerate (co-circular grid cells) Qhull may split a cell either way in
+        either computation, so the two can differ there.
+
+        References
+        ----------
+        Devillers, O. (2002). On deletion in Delaunay triangulations. Int. J. Comput.
+        Geom. Appl. 12(3), 193-205. doi:10.1142/S0218195902000827
+        """
+        x, y = self._loo_input(points, values)
+        u = (x - self.lower) / (self.upper - self.lower)
+        key = (u.shape, hashlib.sha256(np.ascontiguousarray(u).tobytes()).hexdigest())
+        if key not in _DELAUNAY_LOO:  # the weights serve every value set on these points
+            _DELAUNAY_LOO.clear()
+            _DELAUNAY_LOO[key] = _delaunay_loo_weights(u)
+        idx, w, ok = _DELAUNAY_LOO[key]
+        pred = np.einsum("nv,nvk->nk", w, y[idx])
+        pred[~ok] = 0.0
+        return pred, ok
 
     def _prepare(self) -> None:
         x, s = self.x_, self.simplices_
@@ -737,14 +977,37 @@ def _monomials(x: np.ndarray, exps: np.ndarray, deriv: int | None = None) -> np.
     return out
 
 
+def _kfold_scores(x: np.ndarray, z: np.ndarray, d: int, degrees: list[int], folds: int
+                  ) -> np.ndarray:
+    """K-fold cross-validated mean squared error of least squares of each degree.
+
+    The folds are those of scikit-learn's ``KFold(folds, shuffle=True, random_state=0)``
+    (a seeded permutation cut into near-equal consecutive parts); each degree's design
+    matrix is the first columns of the largest one (monomials ordered by degree).
+    """
+    n = x.shape[0]
+    parts = np.array_split(np.random.RandomState(0).permutation(n), folds)
+    phi_all = _monomials(x, _poly_exponents(d, max(degrees)))
+    scores = []
+    for q in degrees:
+        phi = phi_all[:, :_poly_exponents(d, q).shape[0]]
+        errs = []
+        for test in parts:
+            train = np.setdiff1d(np.arange(n), test, assume_unique=True)
+            coef = linalg.lstsq(phi[train], z[train])[0]
+            errs.append(np.mean((phi[test] @ coef - z[test]) ** 2))
+        scores.append(np.mean(errs))
+    return np.asarray(scores)
+
+
 class PolynomialLeastSquares(Interpolant):
     """Least-squares polynomial in the unit-box coordinates, degree by cross-validation.
 
     Fits ``f(x) ~ sum_t c_t prod_j x_j^{e_tj}`` over all monomials of total
     degree <= q. When ``degree`` is None, q is chosen among 1..max_degree
     (terms fewer than the points) by K-fold cross-validated mean squared error
-    of the standardized values (scikit-learn ``cross_val_score``; Hastie,
-    Tibshirani and Friedman 2009, sec. 7.10). Stored: exponents (T, d) and
+    of the standardized values (:func:`_kfold_scores`; Hastie, Tibshirani and
+    Friedman 2009, sec. 7.10). Stored: exponents (T, d) and
     coefficients (T, k).
     """
 
@@ -780,19 +1043,7 @@ class PolynomialLeastSquares(Interpolant):
             if not candidates or folds < 2:
                 q = 0
             else:
-                from sklearn.linear_model import LinearRegression
-                from sklearn.model_selection import KFold, cross_val_score
-                from sklearn.pipeline import make_pipeline
-                from sklearn.preprocessing import PolynomialFeatures
-
-                cv = KFold(n_splits=folds, shuffle=True, random_state=0)
-                scores = []
-                for q in candidates:
-                    model = make_pipeline(PolynomialFeatures(q, include_bias=True),
-                                          LinearRegression(fit_intercept=False))
-                    s = cross_val_score(model, x, z, cv=cv, scoring="neg_mean_squared_error")
-                    scores.append(-np.mean(s))
-                scores = np.asarray(scores)
+                scores = _kfold_scores(x, z, d, candidates, folds)
                 # smallest degree within 1 % of the best score (parsimony); scores are in
                 # standardized units, so 1e-12 counts as an exact fit
                 q = candidates[int(np.flatnonzero(scores <= scores.min() * 1.01 + 1e-12)[0])]
@@ -810,6 +1061,40 @@ class PolynomialLeastSquares(Interpolant):
         for sl in _chunks(x.shape[0], max(self.k_, len(self.exponents_))):
             out[sl] = _monomials(x[sl], self.exponents_) @ self.coef_
         return out
+
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions of the least-squares fit of degree ``degree_``.
+
+        The hat-matrix identity (e.g. Hastie, Tibshirani and Friedman 2009, sec. 7.10.1):
+        with Q an orthonormal basis of the design matrix's columns and leverages
+        ``h_i = |Q_i|^2``, the refit without point i predicts
+        ``y_i - (y_i - yhat_i) / (1 - h_i)``. The fit includes the constant monomial,
+        so standardizing the values changes nothing. Points of leverage ~1 (the rest
+        cannot determine the fit) are refitted.
+        """
+        from math import comb
+
+        x, y = self._loo_input(points, values)
+        n = x.shape[0]
+        if comb(self.degree_ + self.d_, self.d_) > n - 1:
+            return np.zeros_like(y), np.zeros(n, dtype=bool)
+        phi = _monomials((x - self.lower) / (self.upper - self.lower), self.exponents_)
+        # orthonormal basis of the column space, with the rank cut-off of lstsq (rcond
+        # None): a rank-deficient basis (more monomials than distinct values on an axis)
+        # still fixes the fitted values, and the identity holds where h_i < 1
+        U, sv, _ = np.linalg.svd(phi, full_matrices=False)
+        rank = int(np.sum(sv > sv[0] * np.finfo(float).eps * max(phi.shape))) if sv.size else 0
+        Q = U[:, :rank]
+        h = np.sum(Q * Q, axis=1)
+        resid = y - Q @ (Q.T @ y)
+        ok = (1.0 - h) > 1e-8
+        pred = np.zeros_like(y)
+        pred[ok] = y[ok] - resid[ok] / (1.0 - h[ok])[:, None]
+        if not ok.all():
+            rows = np.flatnonzero(~ok)
+            p2, ok2 = self.leave_one_out_by_refit(x, y, rows=rows)
+            pred[rows], ok[rows] = p2[rows], ok2[rows]
+        return pred, ok
 
     def derivative(self, points, variable_index: int) -> np.ndarray:
         j = self._check_index(variable_index)
@@ -971,6 +1256,35 @@ class RadialBasis(Interpolant):
         self.poly_coef_ = sol[n:]
         return self
 
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions at the fitted smoothing, from one inverse.
+
+        Rippa (1999): for the symmetric system ``A [c; b] = [f; 0]`` the refit without
+        point i misses f_i by ``c_i / (A^-1)_ii`` (the polynomial tail and the
+        smoothing included: the reduced system is A without row and column i).
+        Points where ``(A^-1)_ii`` vanishes (the reduced system is singular) are
+        refitted.
+        """
+        x, y = self._loo_input(points, values)
+        u = (x - self.lower) / (self.upper - self.lower)
+        n, t = x.shape[0], self.exponents_.shape[0]
+        if n - 1 < t:
+            return np.zeros_like(y), np.zeros(n, dtype=bool)
+        try:
+            Ainv = linalg.inv(self._system(u, self.smoothing_))
+        except (linalg.LinAlgError, ValueError):
+            return self.leave_one_out_by_refit(x, y)
+        g = np.diag(Ainv)[:n]
+        c = Ainv[:n, :n] @ y
+        ok = np.abs(g) > 1e-12 * np.max(np.abs(Ainv))
+        pred = np.zeros_like(y)
+        pred[ok] = y[ok] - c[ok] / g[ok, None]
+        if not ok.all():
+            rows = np.flatnonzero(~ok)
+            p2, ok2 = self.leave_one_out_by_refit(x, y, rows=rows)
+            pred[rows], ok[rows] = p2[rows], ok2[rows]
+        return pred, ok
+
     @staticmethod
     def _solve(A: np.ndarray, rhs: np.ndarray):
         try:
@@ -1106,6 +1420,34 @@ class GaussianProcess(Interpolant):
         self.x_, self.L_, self.alpha_ = x, L, alpha
         self.y_mean_, self.y_scale_ = mean, scale
         return self
+
+    def leave_one_out(self, points, values) -> tuple[np.ndarray, np.ndarray]:
+        """Leave-one-out predictions with the fitted hyperparameters, from one inverse.
+
+        Rasmussen and Williams (2006), sec. 5.4.2, eq. 5.12: for zero-mean data d with
+        covariance K (noise included) the prediction at point i from the others is
+        ``d_i - [K^-1 d]_i / [K^-1]_ii``. The refit standardizes the values with the
+        mean m_i of the other points (the scale cancels), so with ``u = K^-1 y`` and
+        ``v = K^-1 1`` it predicts ``y_i - u_i / g_i + m_i v_i / g_i``, g = diag(K^-1).
+        """
+        x, y = self._loo_input(points, values)
+        n = x.shape[0]
+        if n < 2:
+            return np.zeros_like(y), np.zeros(n, dtype=bool)
+        u = (x - self.lower) / (self.upper - self.lower)
+        K = (_gp_kernel(self.kernel, u, u, self.length_scales_, self.amplitude_)
+             + (self.noise_ + self._JITTER) * np.eye(n))
+        try:
+            L = linalg.cholesky(K, lower=True)
+        except linalg.LinAlgError:
+            return self.leave_one_out_by_refit(x, y)
+        Kinv = linalg.cho_solve((L, True), np.eye(n))
+        g = np.diag(Kinv)
+        uy = Kinv @ y
+        v = Kinv.sum(axis=1)
+        mean_rest = (y.sum(axis=0)[None, :] - y) / (n - 1)
+        pred = y - uy / g[:, None] + mean_rest * (v / g)[:, None]
+        return pred, np.all(np.isfinite(pred), axis=1)
 
     def _optimize(self, x: np.ndarray, z: np.ndarray):
         from sklearn.exceptions import ConvergenceWarning

@@ -50,6 +50,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .design_file import InterpolationSpec
 from .errors import InputError, NumericalError, ScheduleError
 from .interpolants import (
     GRID_KINDS,
@@ -154,6 +155,38 @@ def _check_form_kind(form: str, kind: str) -> None:
 
 
 # ----------------------------------------------------------------------------- controller
+def assemble_each(gamma: float, pieces: dict, plants: dict
+                  ) -> tuple[dict[str, np.ndarray] | None, np.ndarray, str]:
+    """Observer-form controllers from stacked pieces and plants, point by point
+    (:func:`schedule.hinf.assemble_controller`); a module-level function, so chunks of
+    points can be assembled on workers.
+
+    Returns ``(K, ok, error)``: the stacked "A", "B", "C", "D" (zeros where a point
+    failed; None when every point failed), the mask of assembled points and the first
+    failure's one-line reason ('' when none failed).
+    """
+    from .hinf import ObserverPieces, assemble_controller
+    from .plant import GeneralizedPlant
+
+    n = np.shape(plants["A"])[0]
+    out, ok, error = None, np.zeros(n, dtype=bool), ""
+    for m in range(n):
+        try:
+            k = assemble_controller(
+                GeneralizedPlant.from_arrays({name: plants[name][m] for name in PLANT_KEYS}),
+                ObserverPieces.from_arrays({name: pieces[name][m] for name in pieces}), gamma)
+        except (ScheduleError, np.linalg.LinAlgError) as exc:
+            error = error or (str(exc).splitlines()[0] if str(exc) else type(exc).__name__)
+            continue
+        if out is None:
+            out = {name: np.zeros((n,) + np.shape(a)) for name, a in
+                   zip(CONTROLLER_KEYS, k, strict=True)}
+        for name, a in zip(CONTROLLER_KEYS, k, strict=True):
+            out[name][m] = a
+        ok[m] = True
+    return out, ok, error
+
+
 class ScheduledController:
     """A controller scheduled over the operating envelope, ``u = K(p) y``.
 
@@ -323,24 +356,11 @@ class ScheduledController:
                               self.plant_layout.unpack(self.plant.evaluate(p)))
 
     def _assemble(self, p, pieces: dict, plants: dict) -> dict[str, np.ndarray]:
-        from .hinf import ObserverPieces, assemble_controller
-        from .plant import GeneralizedPlant
-
-        out = None
-        for m in range(p.shape[0]):
-            try:
-                k = assemble_controller(
-                    GeneralizedPlant.from_arrays({n: plants[n][m] for n in PLANT_KEYS}),
-                    ObserverPieces.from_arrays({n: pieces[n][m] for n in pieces}), self.gamma)
-            except ScheduleError as exc:
-                point = ", ".join(f"{v:g}" for v in p[m])
-                raise NumericalError(f"observer-form controller at point ({point}) could not "
-                                     f"be assembled: {exc}") from None
-            if out is None:
-                out = {n: np.empty((p.shape[0],) + np.shape(a))
-                       for n, a in zip(CONTROLLER_KEYS, k, strict=True)}
-            for n, a in zip(CONTROLLER_KEYS, k, strict=True):
-                out[n][m] = a
+        out, ok, error = assemble_each(self.gamma, pieces, plants)
+        if error:
+            point = ", ".join(f"{v:g}" for v in p[int(np.argmin(ok))])
+            raise NumericalError(f"observer-form controller at point ({point}) could not "
+                                 f"be assembled: {error}")
         return out
 
     def derivative(self, points, variable_index: int) -> dict[str, np.ndarray]:
@@ -377,6 +397,17 @@ class ScheduledController:
 
 
 # ----------------------------------------------------------------------------- LOO
+CUBIC_KINDS = ("rbf", "gaussian_process")  # fit and leave-one-out cost grow as N^3
+# default: "auto" tries the costly kinds (see costly_kinds) up to this many ok points
+COSTLY_KINDS_MAX_POINTS = InterpolationSpec.costly_kinds_max_points
+NORM_RTOL = 1e-6  # relative accuracy of the leave-one-out closed-loop norms
+RANK_TIE = 1e-5  # max norm/gamma within this relative distance counts as a tie
+COMPLETE_EVIDENCE_LOOPS = 5000  # up to this many stable predictions, every norm is computed
+NORM_BLOCK = 64  # first block of norms of a candidate (then x4 each block ...
+NORM_BLOCK_MAX = 1024  # ... up to this many loops)
+NORM_STATUS = ("complete", "bound", "skipped")
+
+
 @dataclass(frozen=True)
 class LooResult:
     """Leave-one-out evidence for one (form, kind) pair.
@@ -385,8 +416,12 @@ class LooResult:
     (row in the family), ``rel_error`` (relative Frobenius error of the
     predicted ``[[AK, BK], [CK, DK]]``; nan when prediction failed),
     ``norm`` (closed-loop H-infinity norm of the predicted controller on the
-    true plant; inf when unstable or failed), ``stable``. ``failure`` is a
-    one-line reason when the whole candidate could not be fitted.
+    true plant; inf when unstable or failed, nan where not computed), ``stable``.
+    ``failure`` is a one-line reason when the whole candidate could not be fitted.
+    ``norm_status`` says how far the norms were computed: "complete" (every stable
+    prediction), "bound" (stopped once one exceeded the best candidate's maximum:
+    ``max_norm_ratio`` is then a lower bound) or "skipped" (more unstable predictions
+    than the best candidate, so no norm can change the ranking).
     """
 
     form: str
@@ -397,6 +432,7 @@ class LooResult:
     norm: np.ndarray
     stable: np.ndarray
     failure: str = ""
+    norm_status: str = "complete"
 
     @property
     def norm_ratio(self) -> np.ndarray:
@@ -408,13 +444,21 @@ class LooResult:
 
     @property
     def max_norm_ratio(self) -> float:
-        r = self.norm_ratio
-        return float(np.max(r)) if r.size and not self.failure else float("inf")
+        """Max norm/gamma over every prediction: inf when one is unstable or failed."""
+        if self.failure or not self.stable.size or not self.stable.all():
+            return float("inf")
+        return self.max_stable_norm_ratio
 
     @property
     def max_stable_norm_ratio(self) -> float:
+        """Max norm/gamma over the stable predictions (inf when there are none; nan when
+        no norm was computed; a lower bound when ``norm_status`` is "bound")."""
         r = self.norm_ratio[self.stable]
-        return float(np.max(r)) if r.size and not self.failure else float("inf")
+        if self.failure or not r.size:
+            return float("inf")
+        if np.all(np.isnan(r)):
+            return float("nan")
+        return float(np.nanmax(r))
 
     @property
     def median_error(self) -> float:
@@ -426,35 +470,190 @@ class LooResult:
         return f"{self.form}/{self.kind}"
 
     def rank_key(self) -> tuple:
-        """Fewest unstable, then lowest max norm/gamma over stable points, then median error."""
-        med = self.median_error
-        return (self.n_unstable, self.max_stable_norm_ratio, med if np.isfinite(med) else np.inf)
+        """Fewest unstable, then lowest max norm/gamma over stable points, then median error.
+
+        (Ties in max norm/gamma within :data:`RANK_TIE` are decided by
+        :func:`best_candidate`, which is what the choice uses.)
+        """
+        med, mx = self.median_error, self.max_stable_norm_ratio
+        return (self.n_unstable, np.inf if np.isnan(mx) else mx,
+                med if np.isfinite(med) else np.inf)
 
     def summary(self) -> dict:
         return {"form": self.form, "kind": self.kind, "n_points": int(len(self.stable)),
                 "n_unstable": self.n_unstable, "max_norm_ratio": self.max_norm_ratio,
-                "median_error": self.median_error, "failure": self.failure}
+                "median_error": self.median_error, "failure": self.failure,
+                "norm_status": self.norm_status}
 
 
-def _block(k: dict, m: int) -> np.ndarray:
-    return np.block([[k["A"][m], k["B"][m]], [k["C"][m], k["D"][m]]])
+def best_candidate(evidence: list[LooResult]) -> LooResult | None:
+    """The candidate the evidence ranks first, None when every candidate failed.
+
+    Fewest unstable predictions; among those the lowest max norm/gamma over the stable
+    predictions, values within :data:`RANK_TIE` of the lowest counting as equal (the
+    norms are accurate to :data:`NORM_RTOL`); among those the lowest median matrix
+    error; the earliest candidate on a complete tie.
+    """
+    usable = [r for r in evidence if not r.failure]
+    if not usable:
+        return None
+    fewest = min(r.n_unstable for r in usable)
+    group = [r for r in usable if r.n_unstable == fewest]
+    peaks = [r.max_stable_norm_ratio for r in group]
+    low = min((v for v in peaks if not np.isnan(v)), default=np.inf)
+    tied = [r for r, v in zip(group, peaks, strict=True)
+            if v == low or v <= low * (1.0 + RANK_TIE)]
+    return min(tied, key=lambda r: r.median_error if np.isfinite(r.median_error) else np.inf)
 
 
-def _closed_loop_norm(plant_arrays: dict, k: tuple) -> tuple[bool, float]:
-    from .norms import closed_loop, h_infinity_norm, is_stable
-    from .plant import GeneralizedPlant
+def _rel_errors(K: dict, truth: dict, good: np.ndarray) -> np.ndarray:
+    """Relative Frobenius errors of the stacked controller blocks [[A, B], [C, D]]."""
+    def stacked(k):
+        top = np.concatenate([k["A"], k["B"]], axis=2)
+        bottom = np.concatenate([k["C"], k["D"]], axis=2)
+        return np.concatenate([top, bottom], axis=1)
 
-    Acl, Bcl, Ccl, Dcl = closed_loop(GeneralizedPlant.from_arrays(plant_arrays), k)
-    if not is_stable(Acl):
-        return False, float("inf")
-    return True, float(h_infinity_norm(Acl, Bcl, Ccl, Dcl, rtol=1e-6)[0])
+    err = np.full(good.shape[0], np.nan)
+    if good.any():
+        pred, true = stacked({n: K[n][good] for n in CONTROLLER_KEYS}), stacked(
+            {n: truth[n][good] for n in CONTROLLER_KEYS})
+        num = np.linalg.norm((pred - true).reshape(pred.shape[0], -1), axis=1)
+        den = np.maximum(np.linalg.norm(true.reshape(true.shape[0], -1), axis=1), 1e-300)
+        err[good] = num / den
+    return err
 
 
-def leave_one_out_controllers(family: Family, controller: ScheduledController
+def _closed_loops(family: Family, rows: np.ndarray, K: dict, good: np.ndarray):
+    """Closed loops (stacked A, B, C, D) of the predicted controllers on the true plants,
+    for the rows where ``good``; a row whose loop is not well posed is dropped from good."""
+    from .norms import closed_loop_many
+
+    if not good.any():
+        return (np.zeros((0, 0, 0)),) * 4, good
+    plant = {n: np.asarray(family.plant[n], float)[rows[good]] for n in PLANT_KEYS}
+    ctrl = {n: K[n][good] for n in CONTROLLER_KEYS}
+    try:
+        return closed_loop_many(plant, ctrl), good
+    except ScheduleError:  # not well posed somewhere: find where, one point at a time
+        keep = np.zeros(int(good.sum()), dtype=bool)
+        for j in range(keep.size):
+            try:
+                closed_loop_many({n: v[j:j + 1] for n, v in plant.items()},
+                                 {n: v[j:j + 1] for n, v in ctrl.items()})
+                keep[j] = True
+            except ScheduleError:
+                pass
+        good = good.copy()
+        good[np.flatnonzero(good)[~keep]] = False
+        if not keep.any():
+            return (np.zeros((0, 0, 0)),) * 4, good
+        loops = closed_loop_many({n: v[keep] for n, v in plant.items()},
+                                 {n: v[keep] for n, v in ctrl.items()})
+        return loops, good
+
+
+def _stable_many(A: np.ndarray) -> np.ndarray:
+    """The package's one stability predicate (:func:`schedule.norms.stability`) on a stack."""
+    from .norms import stability
+
+    if A.shape[0] == 0:
+        return np.zeros(0, dtype=bool)
+    return np.asarray(stability(A).stable, dtype=bool)
+
+
+def costly_kinds(d: int) -> tuple[str, ...]:
+    """Kinds whose cost grows faster than about N log N with the number of points N: the
+    kernel kinds (a dense N x N factorization, N^3) and, in three or more variables, the
+    Delaunay kind (a triangulation of up to N^ceil(d/2) simplices, re-triangulated around
+    every point for leave-one-out)."""
+    return CUBIC_KINDS + (("delaunay",) if d >= 3 else ())
+
+
+def loop_norm_chunk(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray
+                    ) -> np.ndarray:
+    """H-infinity norms of stacked stable loops (worker function), through the package's
+    one norm route (:func:`schedule.norms.h_infinity_norms`); a loop whose norm is not
+    certified gets inf (counted as above gamma, never as a pass)."""
+    from .norms import h_infinity_norms
+
+    cert = h_infinity_norms(A, B, C, D, rtol=NORM_RTOL)
+    return np.where(np.isfinite(cert.upper), np.asarray(cert.norm, dtype=float), np.inf)
+
+
+def _loop_norms(loops, sel: np.ndarray, jobs: int, cluster) -> np.ndarray:
+    """Norms of the loops ``sel`` (indices into the stacked loops), split over workers."""
+    from .parallel import run_chunks, split_evenly
+
+    A, B, C, D = loops
+    pieces = split_evenly(sel, jobs, cluster)
+    out = np.empty(sel.size)
+    starts = np.cumsum([0] + [p.size for p in pieces])
+    tasks = [(A[p], B[p], C[p], D[p]) for p in pieces]
+    for t, norms in run_chunks(loop_norm_chunk, tasks, jobs=jobs, cluster=cluster):
+        out[starts[t]:starts[t + 1]] = norms
+    return out
+
+
+@dataclass
+class _Candidate:
+    """A candidate under evaluation: its controller, predictions and loops."""
+
+    form: str
+    kind: str
+    controller: ScheduledController | None = None
+    K: dict | None = None
+    good: np.ndarray | None = None
+    rel_error: np.ndarray | None = None
+    loops: tuple | None = None
+    loop_rows: np.ndarray | None = None  # positions (among the ok rows) of the loops
+    stable: np.ndarray | None = None
+    norm: np.ndarray | None = None
+    status: str = "complete"
+    failure: str = ""
+
+
+def _predict(family: Family, sc: ScheduledController, rows: np.ndarray, jobs: int = 1,
+             cluster=None) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Leave-one-out controllers at the ok rows (closed forms of :mod:`interpolants`; the
+    observer-form assembly point by point, on the workers of ``jobs`` / ``cluster``)."""
+    from .parallel import run_chunks, split_evenly
+
+    pts = np.asarray(family.points, dtype=float)[rows]
+    source = family.controller if sc.form == "matrices" else family.pieces
+    values, ok = sc.part.leave_one_out(pts, sc.part_layout.pack(source, rows))
+    part = sc.part_layout.unpack(values)
+    n = rows.size
+    K = {k: np.zeros((n,) + np.shape(family.controller[k])[1:]) for k in CONTROLLER_KEYS}
+    if sc.form == "matrices":
+        for k in CONTROLLER_KEYS:
+            K[k][ok] = part[k][ok]
+    else:
+        pv, pok = sc.plant.leave_one_out(pts, sc.plant_layout.pack(family.plant, rows))
+        ok &= pok
+        plants = sc.plant_layout.unpack(pv)
+        pieces = split_evenly(np.flatnonzero(ok), jobs, cluster)
+        tasks = [(sc.gamma, {n_: v[p] for n_, v in part.items()},
+                  {n_: v[p] for n_, v in plants.items()}) for p in pieces]
+        for t, (k, kok, _error) in run_chunks(assemble_each, tasks, jobs=jobs, cluster=cluster):
+            sel = pieces[t]
+            ok[sel] = kok
+            for name in CONTROLLER_KEYS if k is not None else ():
+                K[name][sel[kok]] = k[name][kok]
+    finite = np.ones(n, dtype=bool)
+    for k in CONTROLLER_KEYS:
+        finite &= np.all(np.isfinite(K[k].reshape(n, -1)), axis=1)
+    return K, ok & finite
+
+
+def leave_one_out_controllers(family: Family, controller: ScheduledController,
+                              jobs: int = 1, cluster=None
                               ) -> tuple[np.ndarray, dict[str, np.ndarray], np.ndarray]:
-    """Controllers predicted at every "ok" point by a refit without that point.
+    """Controllers predicted at every "ok" point by the interpolant without that point.
 
-    The refits reuse the hyperparameters of ``controller`` (fitted on all points).
+    The predictions reuse the hyperparameters of ``controller`` (fitted on all
+    points) and come from each kind's closed form (:meth:`Interpolant.leave_one_out`),
+    not from N refits; observer-form assembly runs on the workers of ``jobs`` /
+    ``cluster``.
 
     Returns
     -------
@@ -462,38 +661,62 @@ def leave_one_out_controllers(family: Family, controller: ScheduledController
     K : dict "A", "B", "C", "D" of stacked predicted controllers (n_ok, ...).
     good : (n_ok,) False where the prediction failed (refit or assembly error).
     """
-    sc = controller
     rows = _ok_rows(family)
-    pts = np.asarray(family.points, dtype=float)[rows]
-    part_values = sc.part_layout.pack(family.controller if sc.form == "matrices"
-                                      else family.pieces, rows)
-    plant_values = sc.plant_layout.pack(family.plant, rows) if sc.form == "observer" else None
-    n = rows.size
-    K = {k: np.zeros((n,) + np.shape(family.controller[k])[1:]) for k in CONTROLLER_KEYS}
-    good = np.zeros(n, dtype=bool)
-    if n < 2:
-        return rows, K, good
-    for i in range(n):
-        keep = np.arange(n) != i
-        try:
-            pred = sc.part_layout.unpack(sc.part.refit(pts[keep], part_values[keep])
-                                         .evaluate(pts[i:i + 1]))
-            if sc.form == "observer":
-                plant = sc.plant.refit(pts[keep], plant_values[keep])
-                pred = sc._assemble(pts[i:i + 1], pred,
-                                    sc.plant_layout.unpack(plant.evaluate(pts[i:i + 1])))
-            if not all(np.all(np.isfinite(pred[k])) for k in CONTROLLER_KEYS):
-                continue
-            for k in CONTROLLER_KEYS:
-                K[k][i] = pred[k][0]
-            good[i] = True
-        except (ScheduleError, np.linalg.LinAlgError):
-            continue
+    if rows.size < 2:
+        K = {k: np.zeros((rows.size,) + np.shape(family.controller[k])[1:])
+             for k in CONTROLLER_KEYS}
+        return rows, K, np.zeros(rows.size, dtype=bool)
+    K, good = _predict(family, controller, rows, jobs, cluster)
     return rows, K, good
 
 
+def _evaluate_candidate(family: Family, cand: _Candidate, rows: np.ndarray, jobs: int = 1,
+                        cluster=None) -> None:
+    """Predictions, matrix errors, closed loops and their stability (no norms yet)."""
+    cand.K, cand.good = _predict(family, cand.controller, rows, jobs, cluster)
+    cand.rel_error = _rel_errors(cand.K, {k: np.asarray(family.controller[k])[rows]
+                                          for k in CONTROLLER_KEYS}, cand.good)
+    cand.loops, good = _closed_loops(family, rows, cand.K, cand.good)
+    cand.loop_rows = np.flatnonzero(good)
+    cand.rel_error[cand.good & ~good] = np.nan
+    cand.good = good
+    cand.stable = np.zeros(rows.size, dtype=bool)
+    cand.stable[cand.loop_rows] = _stable_many(cand.loops[0])
+    cand.norm = np.full(rows.size, np.inf)
+    cand.norm[cand.loop_rows[cand.stable[cand.loop_rows]]] = np.nan
+
+
+def _norms_of(cand: _Candidate, jobs: int, cluster, stop_above: float = np.inf) -> None:
+    """Norms of the candidate's stable predictions, worst matrix error first, in growing
+    blocks; stops (status "bound") once one exceeds ``stop_above``."""
+    where = np.flatnonzero(cand.stable[cand.loop_rows])  # indices into the loops
+    if where.size == 0:
+        return
+    err = cand.rel_error[cand.loop_rows[where]]
+    order = where[np.argsort(-np.nan_to_num(err, nan=np.inf), kind="stable")]
+    start, size = 0, NORM_BLOCK
+    while start < order.size:
+        sel = order[start:start + size]
+        cand.norm[cand.loop_rows[sel]] = _loop_norms(cand.loops, sel, jobs, cluster)
+        start += sel.size
+        size = min(4 * size, NORM_BLOCK_MAX)  # blocks bound the memory of the norm stacks
+        if np.nanmax(cand.norm[cand.loop_rows[sel]]) > stop_above and start < order.size:
+            cand.status = "bound"
+            return
+
+
+def _result(cand: _Candidate, family: Family, rows: np.ndarray) -> LooResult:
+    if cand.failure:
+        return LooResult(cand.form, cand.kind, family.gamma, rows,
+                         np.full(rows.size, np.nan), np.full(rows.size, np.inf),
+                         np.zeros(rows.size, dtype=bool), failure=cand.failure)
+    return LooResult(cand.form, cand.kind, family.gamma, rows, cand.rel_error, cand.norm,
+                     cand.stable, norm_status=cand.status)
+
+
 def leave_one_out(family: Family, form: str = "matrices", kind: str = "multilinear",
-                  fitted: ScheduledController | None = None) -> LooResult:
+                  fitted: ScheduledController | None = None, jobs: int = 1,
+                  cluster=None) -> LooResult:
     """Leave-one-out evidence for one (form, kind) pair (see the module notes).
 
     Parameters
@@ -502,35 +725,29 @@ def leave_one_out(family: Family, form: str = "matrices", kind: str = "multiline
     form, kind : the interpolation form and interpolant kind.
     fitted : optional controller already fitted on all points with the same
         form and kind (its hyperparameters are reused).
+    jobs, cluster : workers for the closed-loop norms (:func:`schedule.parallel.run_chunks`).
 
     Returns
     -------
     LooResult
-        per-point relative matrix error, closed-loop norm and stability, plus
-        the summary (max norm/gamma, count unstable, median matrix error).
+        per-point relative matrix error, closed-loop norm and stability (every norm
+        computed), plus the summary (max norm/gamma, count unstable, median error).
     """
     _check_form_kind(form, kind)
     full = fitted if fitted is not None else ScheduledController.fit(family, form, kind)
     if (full.form, full.kind) != (form, kind):
         raise InputError(f"fitted controller is {full.form}/{full.kind}, not {form}/{kind}; "
                          "pass a controller of the same form and kind")
-    rows, K, good = leave_one_out_controllers(family, full)
-    n = rows.size
-    err = np.full(n, np.nan)
-    norm = np.full(n, np.inf)
-    stable = np.zeros(n, dtype=bool)
-    if n < 2:
-        return LooResult(form, kind, family.gamma, rows, err, norm, stable,
+    rows = _ok_rows(family)
+    if rows.size < 2:
+        return LooResult(form, kind, family.gamma, rows, np.full(rows.size, np.nan),
+                         np.full(rows.size, np.inf), np.zeros(rows.size, dtype=bool),
                          failure="leave-one-out needs at least 2 ok points")
-    for i in np.flatnonzero(good):
-        k_true = _block(family.controller, rows[i])
-        err[i] = np.linalg.norm(_block(K, i) - k_true) / max(np.linalg.norm(k_true), 1e-300)
-        truth = {name: np.asarray(family.plant[name][rows[i]], float) for name in PLANT_KEYS}
-        try:
-            stable[i], norm[i] = _closed_loop_norm(truth, tuple(K[k][i] for k in CONTROLLER_KEYS))
-        except (ScheduleError, np.linalg.LinAlgError):
-            stable[i], norm[i] = False, np.inf
-    return LooResult(form, kind, family.gamma, rows, err, norm, stable)
+    cand = _Candidate(form, kind, full)
+    with _single_thread_blas():
+        _evaluate_candidate(family, cand, rows, jobs, cluster)
+        _norms_of(cand, jobs, cluster)
+    return _result(cand, family, rows)
 
 
 def candidate_pairs(family: Family, spec_form: str = "auto", spec_kind: str = "auto"
@@ -556,23 +773,54 @@ def candidate_pairs(family: Family, spec_form: str = "auto", spec_kind: str = "a
     return [(f, k) for f in forms for k in kinds]
 
 
+@dataclass(frozen=True)
+class Choice:
+    """What :func:`choose_interpolant` decided: the fitted controller, the evidence table
+    and notes for the summary (kinds skipped for size, norms left out)."""
+
+    controller: ScheduledController
+    evidence: list
+    notes: tuple[str, ...] = ()
+
+
 def choose_interpolant(family: Family, spec_form: str = "auto", spec_kind: str = "auto",
-                       progress: Callable[[str], None] | None = None
-                       ) -> tuple[ScheduledController, list[LooResult]]:
+                       progress: Callable[[str], None] | None = None,
+                       costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
+                       cluster=None) -> tuple[ScheduledController, list[LooResult]]:
     """Run leave-one-out for the candidate pairs and fit the best one on all points.
 
-    The best pair has the fewest unstable LOO predictions, then the lowest
-    max norm/gamma over the stable ones, then the lowest median matrix error.
-    A candidate that cannot be fitted is kept in the evidence with its
-    one-line reason. Returns the fitted controller and the evidence table.
+    The ranking is that of :func:`best_candidate`. Each candidate is fitted once;
+    its leave-one-out predictions come from closed forms (no refits); the closed
+    loops of all predictions are formed in one batch and their stability decided for
+    every candidate. Norms are needed only where they can change the ranking: for
+    the candidates with the fewest unstable predictions, computed worst matrix error
+    first and stopped as soon as one exceeds the best maximum found so far (the
+    evidence then says "bound"); when all candidates together have at most
+    :data:`COMPLETE_EVIDENCE_LOOPS` stable predictions every norm is computed. With
+    ``spec_kind`` "auto" the kinds of :func:`costly_kinds` are left out when the family
+    has more than ``costly_kinds_max_points`` ok points (:func:`choose` says so in its
+    notes).
+
+    Returns the fitted controller and the evidence table.
 
     Raises
     ------
     InputError
         no candidate could be fitted (the reasons are joined in the message).
     """
+    choice = choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, jobs,
+                    cluster)
+    return choice.controller, choice.evidence
+
+
+def choose(family: Family, spec_form: str = "auto", spec_kind: str = "auto",
+           progress: Callable[[str], None] | None = None,
+           costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
+           cluster=None) -> Choice:
+    """:func:`choose_interpolant` with the notes for the summary (a :class:`Choice`)."""
     with _single_thread_blas():
-        return _choose(family, spec_form, spec_kind, progress)
+        return _choose(family, spec_form, spec_kind, progress, int(costly_kinds_max_points),
+                       jobs, cluster)
 
 
 class _single_thread_blas:
@@ -594,33 +842,124 @@ class _single_thread_blas:
         return False
 
 
-def _choose(family, spec_form, spec_kind, progress):
-    evidence: list[LooResult] = []
-    fitted: dict[tuple[str, str], ScheduledController] = {}
-    rows = _ok_rows(family)
-    for form, kind in candidate_pairs(family, spec_form, spec_kind):
+def _one_line(exc: BaseException) -> str:
+    return str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+
+
+class _Fits:
+    """Interpolants fitted once per (role, kind) and shared by the candidates: role
+    "matrices" (controller matrices), "observer" (observer pieces) or "plant"."""
+
+    def __init__(self, family: Family):
+        self.family = family
+        self.lower, self.upper = _bounds(family)
+        self.rows = _ok_rows(family)
+        self.pts = np.asarray(family.points, dtype=float)[self.rows]
+        self.done: dict[tuple[str, str], Interpolant | ScheduleError] = {}
+
+    def layout(self, role: str) -> Layout:
+        if role == "plant":
+            return Layout.of(self.family.plant, PLANT_KEYS)
+        return ScheduledController._part_layout(self.family, role)
+
+    def get(self, role: str, kind: str) -> Interpolant:
+        key = (role, kind)
+        if key not in self.done:
+            f = self.family
+            source = {"matrices": f.controller, "observer": f.pieces, "plant": f.plant}[role]
+            try:
+                interp = make_interpolant(kind, self.lower, self.upper, _breakpoints(f, kind))
+                self.done[key] = interp.fit(self.pts, self.layout(role).pack(source, self.rows))
+            except (ScheduleError, np.linalg.LinAlgError) as exc:
+                self.done[key] = NumericalError(_one_line(exc)) if not isinstance(
+                    exc, ScheduleError) else exc
+        got = self.done[key]
+        if isinstance(got, ScheduleError):
+            raise got
+        return got
+
+    def controller(self, form: str, kind: str) -> ScheduledController:
+        f = self.family
+        return ScheduledController(form, kind, f.gamma, f.variable_names, self.get(form, kind),
+                                   self.layout(form), self.get("plant", kind),
+                                   self.layout("plant"))
+
+
+def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, jobs, cluster
+            ) -> Choice:
+    pairs = candidate_pairs(family, spec_form, spec_kind)
+    fits = _Fits(family)
+    rows = fits.rows
+    notes: list[str] = []
+    if spec_kind == "auto" and rows.size > costly_kinds_max_points:
+        costly = costly_kinds(len(family.variables))
+        dropped = [k for k in KINDS if k in costly and any(k == kk for _, kk in pairs)]
+        pairs = [(f, k) for f, k in pairs if k not in costly]
+        if dropped:
+            notes.append(f"interpolant kinds {', '.join(dropped)} not tried: {rows.size} ok "
+                         f"points > {costly_kinds_max_points} (their cost grows quickly with "
+                         "the points; raise [interpolation] costly_kinds_max_points to try "
+                         "them)")
+    cands = [_Candidate(f, k) for f, k in pairs]
+    for cand in cands:
         if progress is not None:
-            progress(f"{form}/{kind}")
+            progress(f"{cand.form}/{cand.kind}")
         try:
-            full = ScheduledController.fit(family, form, kind)
-            fitted[(form, kind)] = full
-            evidence.append(leave_one_out(family, form, kind, fitted=full))
+            part = fits.get(cand.form, cand.kind)
+            plant = fits.get("plant", cand.kind) if cand.form == "observer" else None
+            cand.controller = ScheduledController(
+                cand.form, cand.kind, family.gamma, family.variable_names, part,
+                fits.layout(cand.form), plant, fits.layout("plant"))
+            if rows.size < 2:
+                raise InputError("leave-one-out needs at least 2 ok points")
+            _evaluate_candidate(family, cand, rows, jobs, cluster)
         except (ScheduleError, np.linalg.LinAlgError) as exc:
-            msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            evidence.append(LooResult(form, kind, family.gamma, rows,
-                                      np.full(rows.size, np.nan), np.full(rows.size, np.inf),
-                                      np.zeros(rows.size, dtype=bool), failure=msg))
-    usable = [r for r in evidence if not r.failure]
-    if not usable:
+            cand.failure = _one_line(exc)
+    usable = [c for c in cands if not c.failure]
+    if not usable and rows.size >= 2:
+        reasons = "; ".join(f"{c.form}/{c.kind}: {c.failure}" for c in cands)
+        raise InputError(f"no interpolant could be fitted ({reasons}); check the family")
+    # norms only where they can change the ranking (the fewest unstable, best first),
+    # unless all of them together are cheap
+    fewest = min((int((~c.stable).sum()) for c in usable), default=0)
+    complete = sum(int(c.stable.sum()) for c in usable) <= COMPLETE_EVIDENCE_LOOPS
+    for c in usable:
+        if int((~c.stable).sum()) > fewest and not complete:
+            c.status, c.loops = "skipped", None  # its loops are not needed any more
+    contenders = sorted((c for c in usable if c.status != "skipped"),
+                        key=lambda c: np.nanmedian(c.rel_error)
+                        if np.isfinite(c.rel_error).any() else np.inf)
+    best = np.inf
+    for c in contenders:
+        try:  # the stored controller needs the plant interpolant too
+            fits.get("plant", c.kind)
+        except ScheduleError as exc:
+            c.failure = f"plant interpolant: {_one_line(exc)}"
+            continue
+        stop = np.inf if complete else best * (1.0 + RANK_TIE) * family.gamma
+        _norms_of(c, jobs, cluster, stop_above=stop)
+        c.loops = None
+        if c.status == "complete":
+            peak = c.norm[c.stable]
+            best = min(best, float(np.max(peak)) / family.gamma if peak.size else np.inf)
+    evidence = [_result(c, family, rows) for c in cands]
+    top = best_candidate(evidence)
+    if top is None:
         reasons = "; ".join(f"{r.label}: {r.failure}" for r in evidence)
         raise InputError(f"no interpolant could be fitted ({reasons}); check the family")
-    best = min(usable, key=LooResult.rank_key)
-    return fitted[(best.form, best.kind)], evidence
+    controller = fits.controller(top.form, top.kind)
+    left = [r.label for r in evidence if r.norm_status != "complete" and not r.failure]
+    if left:
+        notes.append(f"leave-one-out norms computed only as far as the ranking needs "
+                     f"({len(left)} of {len(evidence)} candidates partly or not at all)")
+    return Choice(controller, evidence, tuple(notes))
 
 
 # ----------------------------------------------------------------------------- evidence I/O
-def evidence_to_arrays(evidence: list[LooResult], chosen: str = "") -> dict:
-    """Plain arrays/strings (for ``family.extra``) holding the LOO evidence table."""
+def evidence_to_arrays(evidence: list[LooResult], chosen: str = "",
+                       notes: tuple[str, ...] = ()) -> dict:
+    """Plain arrays/strings (for ``family.extra``) holding the LOO evidence table and the
+    notes of the choice (see :class:`Choice`)."""
     if not evidence:
         return {}
     return {
@@ -634,7 +973,9 @@ def evidence_to_arrays(evidence: list[LooResult], chosen: str = "") -> dict:
         "loo_max_norm_ratio": np.array([r.max_norm_ratio for r in evidence]),
         "loo_n_unstable": np.array([r.n_unstable for r in evidence], dtype=np.int64),
         "loo_median_error": np.array([r.median_error for r in evidence]),
+        "loo_norm_status": np.array([r.norm_status for r in evidence], dtype=str),
         "loo_chosen": chosen,
+        "loo_notes": np.array(list(notes), dtype=str),
     }
 
 
@@ -645,6 +986,8 @@ def evidence_from_arrays(extra: dict) -> list[LooResult] | None:
     try:
         labels = [str(v) for v in np.atleast_1d(extra["loo_candidates"])]
         failures = [str(v) for v in np.atleast_1d(extra.get("loo_failure", [""] * len(labels)))]
+        status = [str(v) for v in np.atleast_1d(extra.get("loo_norm_status",
+                                                          ["complete"] * len(labels)))]
         gamma = float(np.asarray(extra["loo_gamma"]))
         idx = np.atleast_1d(np.asarray(extra["loo_point_index"])).astype(np.int64)
         out = []
@@ -655,7 +998,8 @@ def evidence_from_arrays(extra: dict) -> list[LooResult] | None:
                                  .reshape(len(labels), -1)[c],
                                  np.asarray(extra["loo_norm"], float).reshape(len(labels), -1)[c],
                                  np.asarray(extra["loo_stable"]).reshape(len(labels), -1)[c]
-                                 .astype(bool), failures[c]))
+                                 .astype(bool), failures[c],
+                                 status[c] if status[c] in NORM_STATUS else "complete"))
     except (ValueError, TypeError, IndexError, KeyError) as exc:
         if isinstance(exc, ScheduleError):
             raise
@@ -665,15 +1009,24 @@ def evidence_from_arrays(extra: dict) -> list[LooResult] | None:
     return out
 
 
+def evidence_notes(extra: dict) -> list[str]:
+    """The notes stored with the evidence (kinds left out for size, norms left out)."""
+    return [str(v) for v in np.atleast_1d(extra.get("loo_notes", [])) if str(v)]
+
+
 def fit_for_family(family: Family, form: str = "auto", kind: str = "auto",
-                   progress: Callable[[str], None] | None = None) -> tuple[dict, dict]:
+                   progress: Callable[[str], None] | None = None,
+                   costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
+                   cluster=None) -> tuple[dict, dict]:
     """For the design stage: choose and fit the interpolant, return what the file stores.
 
     Returns
     -------
     interpolant : dict ``{"arrays": ..., "attrs": ...}`` for ``family.interpolant``.
-    evidence : dict of plain arrays/strings for ``family.extra`` (the LOO table).
+    evidence : dict of plain arrays/strings for ``family.extra`` (the LOO table and the
+        notes of the choice, ``loo_notes``).
     """
-    controller, evidence = choose_interpolant(family, form, kind, progress=progress)
-    chosen = f"{controller.form}/{controller.kind}"
-    return controller.to_arrays(), evidence_to_arrays(evidence, chosen)
+    choice = choose(family, form, kind, progress, costly_kinds_max_points, jobs, cluster)
+    chosen = f"{choice.controller.form}/{choice.controller.kind}"
+    return (choice.controller.to_arrays(),
+            evidence_to_arrays(choice.evidence, chosen, choice.notes))

@@ -40,7 +40,8 @@ from .types import LinearPlant
 
 __all__ = ["load_model", "evaluate_model", "load_nonlinear_model", "nonlinear_model_from",
            "operating_points_for", "OperatingSet", "as_linear_plant", "check_consistent",
-           "without_code", "with_code_from", "with_model", "ignored_code_note"]
+           "without_code", "with_code_from", "with_model", "ignored_code_note", "design_points",
+           "evaluate_points", "model_source_digest", "file_points"]
 
 ModelFn = Callable[[Mapping[str, float]], LinearPlant]
 
@@ -403,17 +404,7 @@ def operating_points_for(spec: DesignSpec, progress: Callable[[int], None] | Non
     if spec.source.operating_points is not None:
         return _from_file(spec, Path(spec.source.operating_points))
     model = load_model(spec)
-    if spec.grid.points is not None:
-        pts = ScatteredPoints(spec.grid.points, spec.variables).points
-        breakpoints = grid_index = None
-        holes: tuple[str, ...] = ()
-    elif spec.grid.breakpoints is not None:
-        grid = RectangularGrid(spec.grid.breakpoints, spec.grid.holes, spec.variables)
-        pts, breakpoints, grid_index = grid.points, grid.breakpoints, grid.grid_index
-        holes = grid.report()
-    else:
-        raise InputError(f"{spec.name}: [grid] gives no design points; add breakpoints per "
-                         "variable or points = [[...]]")
+    pts, breakpoints, grid_index, holes = design_points(spec)
     plants, reasons = [], []
     for _k, row in enumerate(pts):
         plant, reason = evaluate_model(model, dict(zip(names, row.tolist(), strict=False)))
@@ -429,6 +420,14 @@ def operating_points_for(spec: DesignSpec, progress: Callable[[int], None] | Non
 
 
 def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
+    ops, pts, breakpoints, grid_index, holes = file_points(spec, path)
+    plants = [ops.plant(k) for k in range(len(ops))]
+    return OperatingSet(pts, plants, breakpoints, grid_index, holes, [""] * len(pts), "file")
+
+
+def file_points(spec: DesignSpec, path: Path):
+    """An operating-point file checked against the design, without per-point objects:
+    ``(OperatingPoints, points, breakpoints, grid_index, holes report)``."""
     from .oppoints import read_operating_points
 
     ops = read_operating_points(path)
@@ -447,7 +446,6 @@ def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
                              f"design bounds of {v.name} [{v.lower:g}, {v.upper:g}]; widen the "
                              "bounds in the design file")
     ScatteredPoints(pts, spec.variables)  # duplicates, NaN
-    plants = [ops.plant(k) for k in range(len(ops))]
     breakpoints = grid_index = None
     holes: tuple[str, ...] = ()
     if ops.breakpoints is not None:
@@ -466,4 +464,88 @@ def _from_file(spec: DesignSpec, path: Path) -> OperatingSet:
         holes = tuple(f"grid point {point_text(names, full.points[i])} skipped (not in the "
                       f"file)" for i, idx in enumerate(full.grid_index.tolist())
                       if tuple(idx) not in present)
-    return OperatingSet(pts, plants, breakpoints, grid_index, holes, [""] * len(pts), "file")
+    return ops, pts, breakpoints, grid_index, holes
+
+
+# --------------------------------------------------------------------------- chunked evaluation
+def design_points(spec: DesignSpec) -> tuple[np.ndarray, tuple | None, np.ndarray | None,
+                                             tuple[str, ...]]:
+    """The design points of a model source, without evaluating the model.
+
+    Returns ``(points (N, d), breakpoints or None, grid_index or None, holes report)``:
+    the [grid] breakpoints minus the holes (last variable fastest), or the scattered
+    ``points``.
+    """
+    if spec.grid.points is not None:
+        return ScatteredPoints(spec.grid.points, spec.variables).points, None, None, ()
+    if spec.grid.breakpoints is not None:
+        grid = RectangularGrid(spec.grid.breakpoints, spec.grid.holes, spec.variables)
+        return grid.points, grid.breakpoints, grid.grid_index, grid.report()
+    raise InputError(f"{spec.name}: [grid] gives no design points; add breakpoints per "
+                     "variable or points = [[...]]")
+
+
+_MODELS: dict = {}  # per process: the loaded model of each source (workers reuse it)
+
+
+def _model_key(spec: DesignSpec) -> tuple:
+    src = spec.source
+    stamp = None
+    if src.model_file is not None:
+        try:
+            stamp = Path(src.model_file).stat().st_mtime_ns
+        except OSError:
+            stamp = None
+    return (src.model, str(src.model_file), src.function, stamp, spec.variable_names)
+
+
+def evaluate_points(spec: DesignSpec, points: np.ndarray
+                    ) -> tuple[list[LinearPlant | None], list[str]]:
+    """The design's model at each row of ``points`` (a chunk of the envelope).
+
+    The model is loaded once per process (:func:`load_model`), so worker processes
+    that evaluate many chunks import it once. A point where the model fails gets
+    ``None`` and a one-line reason (:func:`evaluate_model`).
+    """
+    key = _model_key(spec)
+    if key not in _MODELS:
+        _MODELS.clear()
+        _MODELS[key] = load_model(spec)
+    model = _MODELS[key]
+    names = spec.variable_names
+    plants, reasons = [], []
+    for row in np.asarray(points, dtype=float):
+        plant, reason = evaluate_model(model, dict(zip(names, row.tolist(), strict=True)))
+        plants.append(plant)
+        reasons.append(reason)
+    return plants, reasons
+
+
+def model_source_digest(spec: DesignSpec) -> str:
+    """SHA-256 of the file the design's plants come from (the model's Python file, the
+    module's source file or the operating-point file); '' when it cannot be read.
+
+    A partial design run is resumed only when this is unchanged, so an edited model
+    never mixes with plants computed by the old one. Finding a module's file may import
+    its parent package (never the module itself).
+    """
+    import hashlib
+
+    src = spec.source
+    path = None
+    if src.operating_points is not None:
+        path = Path(src.operating_points)
+    elif src.model_file is not None:
+        path = Path(src.model_file)
+    elif src.model is not None:
+        try:
+            found = importlib.util.find_spec(src.model.partition(":")[0])
+            path = Path(found.origin) if found is not None and found.origin else None
+        except (ImportError, ValueError):
+            path = None
+    if path is None:
+        return ""
+    try:
+        return hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:
+        return ""

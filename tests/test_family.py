@@ -201,3 +201,76 @@ def test_cli_json_and_bad_input(tmp_path):
                                str(tmp_path / "no_such_dir" / "g.h5")])
     assert res.exit_code == 2 and "does not exist" in res.output
     assert not (tmp_path / "g.h5").exists()
+
+
+# ----------------------------------------------------------------------------- scale
+def _scattered_design(folder: Path, n: int) -> Path:
+    r = np.random.default_rng(0)
+    pts = np.column_stack([r.uniform(1.0, 4.0, n), r.uniform(0.5, 2.0, n)])
+    text = DESIGN.format(model_file=str(HERE), function="msd_plant", stiffness=[1.0],
+                         damping=[0.5], gamma='policy = "common"\nmargin = 0.05')
+    text = text.replace("stiffness = [1.0]\ndamping = [0.5]", f"points = {pts.tolist()}")
+    path = folder / f"scattered{n}.toml"
+    path.write_text(text)
+    return path
+
+
+def test_plant_stage_memory_per_point_is_that_of_the_stored_plants(tmp_path):
+    # The model and weights are evaluated chunk by chunk and only the stacked results are
+    # kept: the memory each extra point costs (tracemalloc peak, difference of two
+    # envelope sizes) must stay near the bytes of its stored plant, whatever per-point
+    # objects the model and the weights create. Keeping them (one LinearPlant and one
+    # GeneralizedPlant per point) costs several times the stored bytes.
+    import tracemalloc
+
+    from schedule.family import plants_for
+
+    plants_for(load_design(_scattered_design(tmp_path, 20)), chunk_size=32)  # imports
+    peaks, stored = {}, {}
+    for n in (256, 1024):
+        spec = load_design(_scattered_design(tmp_path, n))
+        tracemalloc.start()
+        got = plants_for(spec, chunk_size=64)
+        peaks[n] = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+        assert got.valid.all() and got.plant["A"].shape[0] == n
+        stored[n] = sum(v.nbytes for v in got.plant.values()) / n
+    per_point = (peaks[1024] - peaks[256]) / (1024 - 256)
+    assert per_point < 2.0 * stored[1024], (per_point, stored[1024])
+
+
+def test_estimate_is_within_a_factor_of_two_of_the_run(tmp_path):
+    # the ratio of the estimate to the time measured right after it (same machine, same
+    # load), on a 20 x 20 grid with the interpolant choice
+    from schedule.family import estimate_design
+
+    axis = [float(v) for v in np.linspace(1.0, 4.0, 20)]
+    spec = load_design(write_design(tmp_path, stiffness=axis,
+                                    damping=[float(v) for v in np.linspace(0.5, 2.0, 20)]))
+    est = estimate_design(spec)
+    run = run_design(spec, None)
+    assert est.points == 400 and set(est.stage_seconds) == {"plants", "gamma", "controllers",
+                                                            "fit"}
+    assert 0.5 <= est.seconds / run.seconds <= 2.0, (est.to_dict(), run.stage_seconds)
+
+
+def test_large_run_needs_yes(tmp_path, monkeypatch):
+    import schedule.family as family
+
+    design = write_design(tmp_path, stiffness=[float(v) for v in np.linspace(1.0, 4.0, 16)],
+                          damping=[float(v) for v in np.linspace(0.5, 2.0, 16)])  # estimated
+    monkeypatch.setattr(family, "CONFIRM_SECONDS", 1e-3)  # everything counts as long
+    runner = CliRunner()
+    out = tmp_path / "f.h5"
+    res = runner.invoke(main, ["design", str(design), "--out", str(out), "--no-fit"])
+    assert res.exit_code == 2 and "pass --yes" in res.output and not out.exists()
+    assert res.output.count("\n") == 1
+    res = runner.invoke(main, ["design", str(design), "--out", str(out), "--no-fit", "--json"])
+    assert res.exit_code == 2 and not out.exists()
+    report = json.loads(res.output[:res.output.rindex("}") + 1])
+    assert report["started"] is False and report["estimate"]["points"] == 256
+    res = runner.invoke(main, ["design", str(design), "--out", str(out), "--no-fit", "--json",
+                               "--yes"])
+    assert res.exit_code == 0, res.output
+    info = json.loads(res.output)
+    assert info["estimate"]["points"] == 256 and info["points"] == 256 and out.exists()

@@ -299,3 +299,90 @@ def test_multilinear_affine_reproduction_on_random_grids(n0, n1, seed):
     it = MultilinearGrid([b0[0], b1[0]], [b0[-1], b1[-1]]).fit(pts, f(pts))
     q = np.column_stack([r.uniform(b0[0], b0[-1], 50), r.uniform(b1[0], b1[-1], 50)])
     assert np.allclose(it.evaluate(q), f(q), atol=1e-10)
+
+
+# ----------------------------------------------------------------------------- leave-one-out
+# The definition (Stone 1974): row i is the interpolant refitted without point i
+# (hyperparameters frozen) evaluated at point i; leave_one_out_by_refit does exactly that.
+# The closed forms must agree with it to rounding (identities: Rasmussen and Williams 2006,
+# eq. 5.12; Rippa 1999; the hat-matrix identity of least squares; a left-out grid node is
+# a hole filled along its grid lines, which the grid kinds interpolate exactly).
+HOLES = np.ones(len(GRID), dtype=bool)
+HOLES[[8, 22]] = False  # two interior nodes missing: their lines take the slow path
+
+
+@pytest.mark.parametrize("kind, points", [
+    ("multilinear", GRID), ("multilinear", GRID[HOLES]), ("spline", GRID),
+    ("spline", GRID[HOLES]), ("polynomial", GRID), ("rbf", GRID),
+    ("gaussian_process", GRID), ("delaunay", LO + (HI - LO) * RNG.uniform(size=(30, 2))),
+])
+def test_closed_form_leave_one_out_equals_refitting(kind, points):
+    y = smooth(points) * np.array([1.0, 1e3, 1e-3])  # columns of very different size
+    bp = [B0, B1] if kind in ("multilinear", "spline") else None
+    it = make_interpolant(kind, LO, HI, bp).fit(points, y)
+    fast, ok = it.leave_one_out(points, y)
+    slow, ok_ref = it.leave_one_out_by_refit(points, y)
+    assert np.array_equal(ok, ok_ref) and ok.all()
+    scale = np.abs(y).max(axis=0)
+    assert np.all(np.abs(fast - slow) <= 1e-10 * scale)
+
+
+def test_polynomial_leave_one_out_with_a_rank_deficient_design_equals_refitting():
+    # degree 5 on an axis with 5 breakpoints: y^5 is a combination of lower powers there,
+    # so the design matrix is rank deficient; lstsq's minimum-norm fit still fixes the
+    # fitted values and the identity holds (refitting is the reference)
+    y = smooth(GRID)
+    it = PolynomialLeastSquares(LO, HI, degree=5).fit(GRID, y)
+    assert np.linalg.matrix_rank(np.vander(B1, 6)) < 6
+    fast, ok = it.leave_one_out(GRID, y)
+    slow, ok_ref = it.leave_one_out_by_refit(GRID, y)
+    assert np.array_equal(ok, ok_ref) and ok.all()
+    assert np.all(np.abs(fast - slow) <= 1e-9 * np.abs(y).max(axis=0))
+
+
+def test_delaunay_leave_one_out_in_one_and_three_variables_equals_refitting():
+    for d, n in ((1, 9), (3, 25)):
+        pts = RNG.uniform(size=(n, d))
+        y = np.stack([np.sin(3 * pts.sum(axis=1)), pts[:, 0] ** 2], axis=1)
+        it = DelaunayLinear(np.zeros(d), np.ones(d)).fit(pts, y)
+        fast, ok = it.leave_one_out(pts, y)
+        slow, ok_ref = it.leave_one_out_by_refit(pts, y)
+        assert np.array_equal(ok, ok_ref)
+        assert np.allclose(fast[ok], slow[ok], rtol=0, atol=1e-10), d
+
+
+def test_rbf_leave_one_out_matches_scipy_without_the_point():
+    # reference library: scipy's RBFInterpolator fitted on the other points
+    from scipy.interpolate import RBFInterpolator
+
+    pts = RNG.uniform(size=(20, 2))
+    y = smooth(LO + pts * (HI - LO))
+    it = RadialBasis([0, 0], [1, 1], kernel="thin_plate_spline", smoothing=1e-4).fit(pts, y)
+    fast, ok = it.leave_one_out(pts, y)
+    assert ok.all()
+    for i in (0, 7, 19):
+        keep = np.arange(20) != i
+        ref = RBFInterpolator(pts[keep], y[keep], kernel="thin_plate_spline", smoothing=1e-4,
+                              degree=1)(pts[i:i + 1])
+        assert np.allclose(fast[i], ref[0], rtol=1e-8, atol=1e-9)
+
+
+def test_gaussian_process_leave_one_out_matches_scikit_learn_without_the_point():
+    # reference library: scikit-learn with the fixed kernel, fitted on the other points and
+    # normalizing the values by their own mean (Rasmussen and Williams 2006, sec. 5.4.2)
+    from sklearn.gaussian_process import GaussianProcessRegressor
+    from sklearn.gaussian_process.kernels import RBF, ConstantKernel
+
+    x = np.linspace(0.0, 1.0, 9)[:, None]
+    y = np.sin(5 * x) + 0.4 * x
+    a, ell, s = 1.3, 0.3, 1e-3
+    it = GaussianProcess([0.0], [1.0], hyperparameters={"amplitude": a, "length_scales": [ell],
+                                                        "noise": s}).fit(x, y)
+    fast, ok = it.leave_one_out(x, y)
+    assert ok.all()
+    for i in range(9):
+        keep = np.arange(9) != i
+        m = y[keep].mean()
+        gpr = GaussianProcessRegressor(ConstantKernel(a) * RBF(ell), alpha=s + 1e-10,
+                                       optimizer=None).fit(x[keep], y[keep] - m)
+        assert np.isclose(fast[i, 0], m + gpr.predict(x[i:i + 1])[0], rtol=1e-9, atol=1e-10)

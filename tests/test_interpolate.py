@@ -183,7 +183,8 @@ def test_choose_interpolant_ranks_and_evidence_round_trips(hinf_family):
     back = evidence_from_arrays(arrays)
     for r, b in zip(evidence, back, strict=True):
         assert r.label == b.label and r.n_unstable == b.n_unstable
-        assert np.array_equal(r.norm, b.norm)
+        assert np.array_equal(r.norm, b.norm, equal_nan=True)
+        assert r.norm_status == b.norm_status
 
 
 def test_fit_for_family_respects_a_fixed_choice(hinf_family):
@@ -271,3 +272,123 @@ def test_inspect_command_text_json_and_bad_file(hinf_family, tmp_path):
     (tmp_path / "junk.h5").write_bytes(b"not an hdf5 file")
     out = runner.invoke(main, ["inspect", str(tmp_path / "junk.h5")])
     assert out.exit_code == 2 and out.output.count("\n") <= 2
+
+
+def test_inspect_computes_evidence_only_when_asked(hinf_family, tmp_path, monkeypatch):
+    import schedule.interpolate as interp
+    from schedule.cli.main import main
+    from schedule.store import write_family
+
+    write_family(tmp_path / "bare.h5", hinf_family)  # as `design --no-fit` writes it
+    calls = []
+    real = interp.choose
+    monkeypatch.setattr(interp, "choose", lambda *a, **k: calls.append(1) or real(*a, **k))
+    runner = CliRunner()
+    out = runner.invoke(main, ["inspect", str(tmp_path / "bare.h5"), "--json"])
+    assert out.exit_code == 0, out.output
+    info = json.loads(out.output)
+    assert calls == [] and info["leave_one_out"]["table"] == []
+    assert "--evidence" in info["leave_one_out"]["source"]
+    out = runner.invoke(main, ["inspect", str(tmp_path / "bare.h5"), "--json", "--evidence"])
+    info = json.loads(out.output)
+    assert calls == [1] and info["leave_one_out"]["source"] == "computed"
+    assert len(info["leave_one_out"]["table"]) == len(interp.candidate_pairs(hinf_family))
+
+
+# ----------------------------------------------------------------------------- the choice
+@pytest.fixture(scope="module")
+def crane_family() -> Family:
+    from importlib import resources
+
+    from schedule.design_file import load_design
+    from schedule.family import run_design
+
+    with resources.as_file(resources.files("schedule.demo_crane") / "crane_design.toml") as p:
+        return run_design(load_design(p), None, fit=False).family
+
+
+def _evidence_by_refitting(fam: Family) -> list:
+    """The definition of the evidence: every candidate refitted without each ok point
+    (Stone 1974), the prediction closed with the true plant there (norms.closed_loop,
+    norms.h_infinity_norm, checked against scipy in tests/test_norms.py)."""
+    from schedule.errors import ScheduleError
+    from schedule.interpolate import LooResult, candidate_pairs
+
+    rows = np.flatnonzero(fam.ok)
+    pts = fam.points[rows]
+    out = []
+    for form, kind in candidate_pairs(fam):
+        sc = ScheduledController.fit(fam, form, kind)
+        source = fam.controller if form == "matrices" else fam.pieces
+        part, ok = sc.part.leave_one_out_by_refit(pts, sc.part_layout.pack(source, rows))
+        plant, pok = sc.plant.leave_one_out_by_refit(pts, sc.plant_layout.pack(fam.plant, rows))
+        err, norm = np.full(rows.size, np.nan), np.full(rows.size, np.inf)
+        stable = np.zeros(rows.size, dtype=bool)
+        for i in np.flatnonzero(ok & pok):
+            K = sc.part_layout.unpack(part[i:i + 1])
+            try:
+                if form == "observer":
+                    K = sc._assemble(pts[i:i + 1], K, sc.plant_layout.unpack(plant[i:i + 1]))
+            except ScheduleError:
+                continue
+            block = np.block([[K["A"][0], K["B"][0]], [K["C"][0], K["D"][0]]])
+            true = np.block([[fam.controller[n][rows[i]] for n in ("A", "B")],
+                             [fam.controller[n][rows[i]] for n in ("C", "D")]])
+            err[i] = np.linalg.norm(block - true) / np.linalg.norm(true)
+            P = GeneralizedPlant.from_arrays({n: fam.plant[n][rows[i]] for n in PLANT_KEYS})
+            cl = closed_loop(P, tuple(K[n][0] for n in CONTROLLER_KEYS))
+            if is_stable(cl[0]):
+                stable[i], norm[i] = True, h_infinity_norm(*cl, rtol=1e-6)[0]
+        out.append(LooResult(form, kind, fam.gamma, rows, err, norm, stable))
+    return out
+
+
+def test_crane_choice_and_evidence_are_those_of_refitting_every_point(crane_family):
+    from schedule.interpolate import best_candidate, choose
+
+    choice = choose(crane_family)
+    reference = _evidence_by_refitting(crane_family)
+    best = best_candidate(reference)
+    assert (choice.controller.form, choice.controller.kind) == (best.form, best.kind)
+    for got, ref in zip(choice.evidence, reference, strict=True):
+        assert got.label == ref.label and got.norm_status == "complete"
+        assert np.array_equal(got.stable, ref.stable), got.label
+        assert np.allclose(got.rel_error, ref.rel_error, rtol=1e-8, equal_nan=True)
+        assert np.isclose(got.max_stable_norm_ratio, ref.max_stable_norm_ratio, rtol=1e-5)
+
+
+def test_costly_kinds_are_left_out_above_the_limit_and_the_notes_say_so(hinf_family):
+    from schedule.interpolate import choose
+
+    choice = choose(hinf_family, "matrices", "auto", costly_kinds_max_points=5)
+    kinds = [r.kind for r in choice.evidence]
+    assert "rbf" not in kinds and "gaussian_process" not in kinds and "spline" in kinds
+    assert any("rbf, gaussian_process not tried: 12 ok points > 5" in n for n in choice.notes)
+    named = choose(hinf_family, "matrices", "rbf", costly_kinds_max_points=5)
+    assert [r.kind for r in named.evidence] == ["rbf"]  # a kind the design names is tried
+
+
+def test_pruned_evidence_makes_the_same_choice_as_complete_evidence(hinf_family, monkeypatch):
+    # reference: the same choice with every norm computed; pruning may only skip norms
+    # that cannot change the ranking (first key: fewest unstable; then the max norm)
+    import schedule.interpolate as interp
+
+    complete = interp.choose(hinf_family)
+    monkeypatch.setattr(interp, "COMPLETE_EVIDENCE_LOOPS", 0)
+    monkeypatch.setattr(interp, "NORM_BLOCK", 2)
+    pruned = interp.choose(hinf_family)
+    assert (pruned.controller.form, pruned.controller.kind) == (complete.controller.form,
+                                                                complete.controller.kind)
+    status = [r.norm_status for r in pruned.evidence]
+    assert "bound" in status and "skipped" in status
+    best = interp.best_candidate(pruned.evidence)
+    for r, full in zip(pruned.evidence, complete.evidence, strict=True):
+        assert r.n_unstable == full.n_unstable
+        if r.norm_status == "skipped":
+            assert r.n_unstable > best.n_unstable
+        elif r.norm_status == "bound":  # a lower bound of the maximum, above the best one
+            assert best.max_stable_norm_ratio < r.max_stable_norm_ratio
+            assert r.max_stable_norm_ratio <= full.max_stable_norm_ratio * (1 + 1e-12)
+        else:
+            assert np.isclose(r.max_stable_norm_ratio, full.max_stable_norm_ratio, rtol=1e-9)
+    assert any("norms computed only as far as the ranking needs" in n for n in pruned.notes)

@@ -64,9 +64,15 @@ def test_sigkill_then_resume(tmp_path):
                             stderr=subprocess.PIPE, env=ENV)
     killed = False
     deadline = time.monotonic() + 120
+    def finished_chunks(state) -> int:
+        """Chunks finished in the gamma and controller stages (the partial file is written
+        at most every 0.2 s, so the first copy seen may already hold the whole gamma stage:
+        then the kill lands in the controller stage)."""
+        return int(state[0]["gamma/done"].sum() + state[0]["controller/done"].sum())
+
     while time.monotonic() < deadline and proc.poll() is None:
         state = read_partial(partial) if partial.exists() else None
-        if state is not None and state[0]["gamma/done"].sum() >= 3:
+        if state is not None and 3 <= finished_chunks(state) < 2 * n_chunks:
             os.kill(proc.pid, signal.SIGKILL)
             killed = True
             break
@@ -76,8 +82,8 @@ def test_sigkill_then_resume(tmp_path):
         pytest.skip("the run finished before it could be killed")
     assert proc.returncode == -signal.SIGKILL
     assert not out.exists()  # never a half-written family file under the output name
-    done_before = int(read_partial(partial)[0]["gamma/done"].sum())
-    assert 3 <= done_before < n_chunks
+    done_before = finished_chunks(read_partial(partial))
+    assert 3 <= done_before < 2 * n_chunks
 
     res = subprocess.run(CMD + args + ["--out", str(out), "--resume"], capture_output=True,
                          text=True, timeout=300, env=ENV)
@@ -87,6 +93,9 @@ def test_sigkill_then_resume(tmp_path):
     assert info["resumed"]["gamma_opt"] > 0
     assert info["computed"]["gamma_opt"] + info["resumed"]["gamma_opt"] == n_valid
     assert info["computed"]["gamma_opt"] < n_valid
+    # what was finished before the kill is not computed again, in either stage
+    computed = info["computed"]["gamma_opt"] + info["computed"]["controllers"]
+    assert computed < 2 * n_valid
     assert not partial.exists()
 
     ref = tmp_path / "reference.h5"
@@ -97,3 +106,60 @@ def test_sigkill_then_resume(tmp_path):
     assert a.keys() == b.keys()
     different = [k for k in a if a[k] != b[k]]
     assert different == []
+
+
+class _Stop(Exception):
+    pass
+
+
+def _interrupted(spec, out, chunk):
+    """A run stopped at the start of the gamma stage: the partial file holds the plants."""
+    from schedule.family import run_design
+
+    def progress(stage, done, total):
+        if stage == "gamma":
+            raise _Stop
+
+    with pytest.raises(_Stop):
+        run_design(spec, out, fit=False, chunk_size=chunk, progress=progress)
+
+
+def test_bit_flips_in_the_partial_file_are_refused(tmp_path):
+    # Every finished chunk carries a SHA-256 digest over its rows; a flipped bit anywhere in
+    # the stored plants (raw bytes of the file, found with h5py's storage offsets) must make
+    # --resume refuse the file with one line, never reach a family. Reference: the same
+    # file unflipped resumes to the family of an uninterrupted run.
+    from schedule.design_file import load_design
+    from schedule.errors import InputError
+    from schedule.family import run_design
+
+    spec = load_design(write_design(tmp_path, "msd_plant", stiffness=(1.0, 2.0, 3.0, 4.0),
+                                    damping=(0.5, 1.0, 1.5, 2.0)))
+    out = tmp_path / "family.h5"
+    _interrupted(spec, out, chunk=4)
+    partial = partial_path(out)
+    clean = partial.read_bytes()
+    regions = []
+    with h5py.File(partial, "r") as f:
+        for name in ("plants/matrices/A", "plants/matrices/B1", "plants/matrices/D12",
+                     "plants/valid"):
+            offset, size = f[name].id.get_offset(), f[name].id.get_storage_size()
+            assert offset is not None and size > 0
+            regions.append((offset, size))
+    rng = np.random.default_rng(7)
+    for offset, size in regions:
+        for _ in range(3):
+            byte = offset + int(rng.integers(size))
+            data = bytearray(clean)
+            data[byte] ^= 1 << int(rng.integers(8))
+            partial.write_bytes(bytes(data))
+            with pytest.raises(InputError, match="digest|damaged") as err:
+                run_design(spec, out, fit=False, chunk_size=4, resume=True)
+            assert "\n" not in str(err.value)
+            assert not out.exists()
+    partial.write_bytes(clean)
+    resumed = run_design(spec, out, fit=False, chunk_size=4, resume=True)
+    assert resumed.resumed_plants == 16 and resumed.computed_plants == 0
+    reference = run_design(spec, None, fit=False, chunk_size=4).family
+    for k in reference.controller:
+        assert np.array_equal(resumed.family.controller[k], reference.controller[k])

@@ -1,4 +1,9 @@
-"""``schedule inspect family.h5 [--json]``: summary, interpolant and leave-one-out table."""
+"""``schedule inspect family.h5 [--json] [--evidence]``: summary, interpolant, leave-one-out.
+
+Inspecting reads the file and computes nothing long: the leave-one-out table is
+shown when the family file holds it (``schedule design`` stores it); for a
+family written with ``--no-fit`` it is computed only on request (``--evidence``).
+"""
 
 from __future__ import annotations
 
@@ -26,17 +31,38 @@ def _loo_rows(evidence) -> list[dict]:
         rows.append({"form": r.form, "kind": r.kind, "points": int(len(r.stable)),
                      "unstable": r.n_unstable, "max_norm_over_gamma": _num(r.max_norm_ratio),
                      "max_stable_norm_over_gamma": _num(r.max_stable_norm_ratio),
-                     "median_matrix_error": _num(r.median_error), "failure": r.failure})
+                     "median_matrix_error": _num(r.median_error), "failure": r.failure,
+                     "norms": r.norm_status})
     return rows
 
 
-def inspect_family(path: str, loo: bool = True, progress=None) -> dict:
-    """The information `schedule inspect` prints, as a JSON-ready dict."""
+def _design_of(family):
+    """The family's stored design (None when absent or unreadable); nothing is imported."""
+    if not family.design_text:
+        return None
+    from ..design_file import parse_design
+    from ..store import family_base_dir
+
+    try:
+        return parse_design(family.design_text, family_base_dir(family) or ".")
+    except (ScheduleError, ValueError):
+        return None
+
+
+def inspect_family(path: str, evidence: bool = False, progress=None, jobs: int = 1) -> dict:
+    """The information `schedule inspect` prints, as a JSON-ready dict.
+
+    The leave-one-out table comes from the file; when the file has none it is computed
+    only with ``evidence=True`` (the choice of :func:`schedule.interpolate.choose`,
+    with the costly-kinds limit of the family's design text, on ``jobs`` workers).
+    """
     from ..coordinates import check_family_coordinates
     from ..interpolate import (
+        COSTLY_KINDS_MAX_POINTS,
         ScheduledController,
-        choose_interpolant,
+        choose,
         evidence_from_arrays,
+        evidence_notes,
     )
     from ..store import read_family
 
@@ -66,17 +92,26 @@ def inspect_family(path: str, loo: bool = True, progress=None) -> dict:
             info["interpolant"] = ScheduledController.from_family(f).describe()
         except ScheduleError as exc:
             info["interpolant"] = {"error": str(exc)}
-    evidence, source = evidence_from_arrays(f.extra), "file"
-    chosen = str(f.extra.get("loo_chosen", "")) if evidence else ""
-    if evidence is None and loo and ok.sum() >= 2:
+    table, source = evidence_from_arrays(f.extra), "file"
+    chosen = str(f.extra.get("loo_chosen", "")) if table else ""
+    notes = evidence_notes(f.extra) if table else []
+    if table is None and evidence and ok.sum() >= 2:
+        limit = COSTLY_KINDS_MAX_POINTS
+        spec = _design_of(f)
+        if spec is not None:
+            limit = spec.interpolation.costly_kinds_max_points
         try:
-            best, evidence = choose_interpolant(f, progress=progress)
-            source, chosen = "computed", f"{best.form}/{best.kind}"
+            choice = choose(f, progress=progress, costly_kinds_max_points=limit, jobs=jobs)
+            table, source = choice.evidence, "computed"
+            chosen, notes = f"{choice.controller.form}/{choice.controller.kind}", \
+                list(choice.notes)
         except ScheduleError as exc:
-            evidence, source = [], f"not computed: {exc}"
-    info["leave_one_out"] = {"source": source if evidence is not None else "absent",
-                             "best": chosen or None,
-                             "table": _loo_rows(evidence or [])}
+            table, source = [], f"not computed: {exc}"
+    elif table is None:
+        source = ("absent (computed only on request: schedule inspect FILE --evidence; "
+                  f"{int(ok.sum())} ok points)") if ok.sum() >= 2 else "absent"
+    info["leave_one_out"] = {"source": source, "best": chosen or None,
+                             "table": _loo_rows(table or []), "notes": notes}
     try:
         rep = check_family_coordinates(f) if ok.sum() >= 2 else None
         info["coordinates"] = None if rep is None else (
@@ -136,27 +171,39 @@ def _print(info: dict) -> None:
         if r["failure"]:
             echo(f"  {label:<28} failed: {r['failure']}")
             continue
+        peak = r["max_stable_norm_over_gamma"]
+        peak = {"bound": f"> {_fmt(peak)}", "skipped": "-"}.get(r.get("norms"), _fmt(peak))
         echo(f"  {label:<28} {r['unstable']:>3}/{r['points']:<4} "
-             f"{_fmt(r['max_stable_norm_over_gamma']):>14} {_fmt(r['median_matrix_error']):>11}")
+             f"{peak:>14} {_fmt(r['median_matrix_error']):>11}")
+    if any(r.get("norms") != "complete" for r in loo["table"] if not r["failure"]):
+        echo("  (> x: norms stopped once one exceeded the best candidate's maximum; -: not "
+             "computed, more unstable predictions than the best)")
+    for note in loo.get("notes", []):
+        echo(f"  note: {note}")
 
 
 @click.command("inspect")
 @click.argument("family_file", type=click.Path(exists=True, dir_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
-@click.option("--loo/--no-loo", default=True, show_default=True,
-              help="Compute the leave-one-out table when the file does not hold one.")
-def inspect_command(family_file: str, as_json: bool, loo: bool) -> None:
+@click.option("--evidence", is_flag=True,
+              help="Compute the leave-one-out table when the file does not hold one "
+                   "(a family designed with --no-fit); this can take as long as fitting.")
+@click.option("--jobs", "-j", default=1, show_default=True, type=click.IntRange(min=1),
+              help="Worker processes for --evidence.")
+def inspect_command(family_file: str, as_json: bool, evidence: bool, jobs: int) -> None:
     """Summarize FAMILY_FILE: points, gamma, failures, interpolant, leave-one-out table.
 
-    The leave-one-out table refits each interpolant without one design point at
-    a time and closes the predicted controller with the true plant there
-    (max |T|/gamma over the stable predictions; 'unstable' counts the others).
+    Reads the file only; nothing long is computed unless --evidence asks for the
+    leave-one-out table of a family that has none. That table predicts every design
+    point from the others with each candidate interpolant (closed forms, no refits)
+    and closes the predicted controller with the true plant there (max |T|/gamma over
+    the stable predictions; 'unstable' counts the others).
     """
     def progress(label: str) -> None:
         if not as_json:
             click.echo(f"leave-one-out: {label}", err=True)
 
-    info = inspect_family(family_file, loo=loo, progress=progress)
+    info = inspect_family(family_file, evidence=evidence, progress=progress, jobs=jobs)
     if as_json:
         click.echo(json.dumps(info, indent=2))
     else:
