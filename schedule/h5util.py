@@ -172,7 +172,8 @@ def global_heaps(path: str | os.PathLike) -> dict[int, dict[int, int]]:
     three reserved bytes, the collection size (8 bytes, at least 4096), then
     objects (index 2 bytes, reference count 2, reserved 4, size 8, data padded
     to 8 bytes) ending with the free-space object (index 0) that fills the
-    collection exactly (HDF5 file format specification, version 2.0, section
+    collection exactly, or, when less than an object header (16 bytes) is left,
+    with those few bytes and no free-space object (HDF5 file format specification, version 2.0, section
     III.E). A damaged collection, or a string pointing at something that is not
     one, can make the HDF5 library loop for ever when the string is read, so the
     collections are walked here first, in plain Python.
@@ -204,7 +205,9 @@ def _walk_global_heaps(data, size: int) -> dict[int, dict[int, int]]:
             p, objects = at + 16, {}
             while True:
                 if p + 16 > end:
-                    if p != end:
+                    # less room than an object header is left without a free-space
+                    # record (the library only writes one when a header fits)
+                    if (end - p) % 8:
                         raise _HeapError(f"the string heap at byte {at} does not end on an "
                                          "object")
                     break

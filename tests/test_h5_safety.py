@@ -223,3 +223,25 @@ def test_text_inputs_that_are_devices_are_refused_before_reading(family, tmp_pat
         code, out, exc = run_cli(*args)
         assert exc is None and code == 2, out
         assert "character device" in out, out
+
+
+def test_string_heap_ending_with_less_than_a_header_of_free_space_is_read(tmp_path):
+    """HDF5 writes no free-space object when fewer bytes than an object header (16) are
+    left in a global heap collection (HDF5 file format specification, version 2.0, sec.
+    III.E; seen with the bundled crane design text, whose strings left 8 bytes)."""
+    from schedule.h5util import global_heaps
+
+    total = 4096
+    body = total - 16 - 8  # the strings fill all but 8 bytes
+    length = body - 16
+    heap = (b"GCOL" + b"\x01\x00\x00\x00" + total.to_bytes(8, "little")
+            + (1).to_bytes(2, "little") + b"\x01\x00" + b"\0" * 4 + length.to_bytes(8, "little")
+            + b"x" * length + b"\0" * 8)
+    assert len(heap) == total
+    path = tmp_path / "heap.bin"
+    path.write_bytes(b"\0" * 64 + heap)
+    assert global_heaps(path) == {64: {1: length}}
+    longer = heap[:24] + (length + 16).to_bytes(8, "little") + heap[32:]  # runs past the end
+    path.write_bytes(b"\0" * 64 + longer)
+    with pytest.raises(InputError, match="overruns"):
+        global_heaps(path)
