@@ -55,6 +55,7 @@ __all__ = [
     "check_points",
     "check_points_for",
     "check_family",
+    "plants_at",
     "propose_points",
     "spec_for_family",
     "scheduled_loop",
@@ -272,7 +273,12 @@ def check_arrays(P: dict, K: dict, gamma: float,
     return out
 
 
-def _kernel_chunk(P: dict, K: dict, gamma: float, tol: float, classical: bool) -> dict:
+def _kernel_chunk(P: dict, K: dict, gamma: float, tol: float, classical: bool,
+                  sample_time: float = 0.0) -> dict:
+    if sample_time > 0:
+        from .analysis.discrete_loop import discrete_check_arrays
+
+        return discrete_check_arrays(P, K, gamma, tol, classical, sample_time)
     return check_arrays(P, K, gamma, tol, classical)
 
 
@@ -282,8 +288,14 @@ def _take(d: dict, idx) -> dict:
 
 def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None = None,
                  jobs: int = 1, cluster=None,
-                 progress: Callable[[str, int, int], None] | None = None) -> dict:
-    """:func:`check_arrays` over many points in chunks, serially, on workers or on dask."""
+                 progress: Callable[[str, int, int], None] | None = None,
+                 sample_time: float = 0.0) -> dict:
+    """:func:`check_arrays` over many points in chunks, serially, on workers or on dask.
+
+    With ``sample_time`` > 0 the loops are discrete (zero-order-hold plants, discrete
+    controllers) and each chunk goes to
+    :func:`schedule.analysis.discrete_loop.discrete_check_arrays` instead.
+    """
     from .parallel import run_chunks
 
     s = settings or CheckSettings()
@@ -296,7 +308,7 @@ def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None 
         size = max(1, min(size, -(-M // (2 * workers))))
     starts = list(range(0, M, size))
     chunks = [(_take(P, slice(a, a + size)), _take(K, slice(a, a + size)), float(gamma),
-               s.gamma_tolerance, s.classical) for a in starts]
+               s.gamma_tolerance, s.classical, float(sample_time)) for a in starts]
     parts: dict[int, dict] = {}
     done = 0
     for i, res in run_chunks(_kernel_chunk, chunks, jobs=jobs, cluster=cluster):
@@ -647,6 +659,20 @@ def _rate(family, sc, spec, pts, P, K, names) -> object:
         dA[:, j] = (closed_loop_many(Pu, Ku)[0] - closed_loop_many(Pd, Kd)[0]) / step[:, None,
                                                                                      None]
     return rate_bounds(Acl, dA, names)
+
+
+def plants_at(family: Family, points, spec=None, controller=None):
+    """Generalized plants at ``points`` (M, d): the design's model where ``spec`` has one
+    (the true plant), else the family's interpolated plant.
+
+    Returns ``(stack, source (M,) "model" | "interpolated", ok (M,), reasons)``; a point
+    where the model fails has ``ok`` False and its reason.
+    """
+    from .interpolate import ScheduledController
+
+    sc = controller or ScheduledController.from_family(family)
+    pts = np.asarray(points, dtype=float).reshape(-1, len(family.variables))
+    return _plants_at(family, sc, spec, pts, family.variable_names)
 
 
 def _plants_at(family, sc, spec, pts, names):

@@ -173,8 +173,8 @@ def global_heaps(path: str | os.PathLike) -> dict[int, dict[int, int]]:
     objects (index 2 bytes, reference count 2, reserved 4, size 8, data padded
     to 8 bytes) ending with the free-space object (index 0) that fills the
     collection exactly, or, when less than an object header (16 bytes) is left,
-    with those few bytes and no free-space object (HDF5 file format specification, version 2.0, section
-    III.E). A damaged collection, or a string pointing at something that is not
+    with those few bytes and no free-space object (HDF5 file format specification,
+    version 2.0, section III.E). A damaged collection, or a string pointing at something that is not
     one, can make the HDF5 library loop for ever when the string is read, so the
     collections are walked here first, in plain Python.
 
