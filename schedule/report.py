@@ -493,7 +493,8 @@ def table_section(tc) -> list[str]:
     if tc.weaker:
         L += ["**Weaker check:** the table is closed with the family's interpolated plant.", ""]
     cost = tc.cost()
-    loops = [k for k in ("interpolant", "table_continuous", "table") if k in cost]
+    loops = [k for k in ("interpolant", "interpolant_discrete", "table_continuous", "table")
+             if k in cost]
     L += ["| at the same points | " + " | ".join(cost[k]["loop"] for k in loops) + " |",
           "|---|" + "---:|" * len(loops)]
     for key, label, spec in (("max_ratio", "worst norm/gamma", ".4g"),

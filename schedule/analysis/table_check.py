@@ -24,10 +24,12 @@ points. Points in a table cell with a stand-in node (outside a scattered family'
 ``inside`` = 0) are left out and counted in a note.
 
 Side by side at the same points (the cost of each step): the family's interpolant in
-continuous time (what ``schedule check`` judges), the family tabulated at the table's
-breakpoints in continuous time (multilinear tabulation), and the table as it runs
-(tabulation and discretization). The anti-windup gain H and the actuator limits of the
-table do not enter: the linear check assumes the limits inactive.
+continuous time (what ``schedule check`` judges); for a discrete table the interpolant
+discretized like the table (what an ever denser table tends to: the reference that
+tells a failure breakpoints can fix from one they cannot); the family tabulated at the
+table's breakpoints in continuous time (multilinear tabulation alone); and the table as
+it runs (tabulation and discretization). The anti-windup gain H and the actuator
+limits of the table do not enter: the linear check assumes the limits inactive.
 """
 
 from __future__ import annotations
@@ -46,6 +48,7 @@ __all__ = ["TableCheck", "check_table", "table_check_points", "table_matrices", 
 #: the loops compared at every point: label -> description
 LOOPS = {
     "interpolant": "family interpolant, continuous",
+    "interpolant_discrete": "family interpolant, discretized",
     "table_continuous": "table lookup, continuous",
     "table": "table as it runs",
 }
@@ -136,9 +139,10 @@ class TableCheck:
     ``values`` are the numbers of the loop that runs (keys of
     :func:`schedule.check.check_arrays`, plus ``spectral_radius`` and
     ``bilinear_condition`` for discrete tables), ``passed`` / ``reasons`` its verdict by
-    :class:`schedule.check.PassCriterion`; ``compared`` maps "interpolant" and (discrete
-    tables) "table_continuous" to the same numbers of those loops, ``compared_passed``
-    to their verdicts.
+    :class:`schedule.check.PassCriterion`; ``compared`` maps the other loops of
+    :data:`LOOPS` ("interpolant"; for discrete tables "interpolant_discrete" and, when
+    compared, "table_continuous") to the same numbers, ``compared_passed`` to their
+    verdicts.
     """
 
     variable_names: tuple[str, ...]
@@ -178,12 +182,33 @@ class TableCheck:
     def weaker(self) -> bool:
         return bool(np.any(self.plant_source == "interpolated"))
 
+    @property
+    def reference(self) -> str:
+        """The loop an ever denser table tends to: the interpolant, discretized like the
+        table for a discrete one."""
+        return "interpolant_discrete" if "interpolant_discrete" in self.compared \
+            else "interpolant"
+
     def fixable(self) -> np.ndarray:
-        """Indices of failing points where the family's interpolant passes (the table's
-        own fault: tabulation or discretization), worst first."""
-        ok = self.compared_passed.get("interpolant", np.ones(len(self.passed), bool))
+        """Indices of failing points where the reference loop (:attr:`reference`) passes:
+        the multilinear tabulation is at fault and breakpoints can fix it; worst first."""
+        ok = self.compared_passed.get(self.reference, np.ones(len(self.passed), bool))
         idx = np.flatnonzero(~self.passed & ok)
         return idx[np.argsort(-self._ratio()[idx], kind="stable")]
+
+    def unfixable(self) -> np.ndarray:
+        """Indices of failing points where the reference loop fails too (the family, or
+        its discretization, does not meet the criterion there); worst first."""
+        ok = self.compared_passed.get(self.reference, np.ones(len(self.passed), bool))
+        idx = np.flatnonzero(~self.passed & ~ok)
+        return idx[np.argsort(-self._ratio()[idx], kind="stable")]
+
+    def why_unfixable(self, i: int) -> str:
+        """Which step fails at point ``i``: the family's interpolant or its discretization."""
+        if not self.compared_passed["interpolant"][i]:
+            return "the family's interpolant fails there too"
+        return ("the interpolant passes in continuous time but fails discretized at "
+                f"T = {self.sample_time:g} s ({self.method})")
 
     def _ratio(self) -> np.ndarray:
         return np.nan_to_num(np.asarray(self.values["ratio"], float), nan=np.inf)
@@ -212,9 +237,13 @@ class TableCheck:
         out: dict = {}
         for label, vals, passed in self.loops():
             out[label] = _loop_numbers(vals, passed) | {"loop": LOOPS[label]}
-        steps = (("tabulation", "interpolant", "table_continuous"),
-                 ("discretization", "table_continuous", "table"))
-        if "table_continuous" not in self.compared:
+        if "table_continuous" in self.compared:
+            steps = (("tabulation", "interpolant", "table_continuous"),
+                     ("discretization", "table_continuous", "table"))
+        elif "interpolant_discrete" in self.compared:
+            steps = (("discretization", "interpolant", "interpolant_discrete"),
+                     ("tabulation", "interpolant_discrete", "table"))
+        else:
             steps = (("tabulation", "interpolant", "table"),)
         for name, a, b in steps:
             if a not in out or b not in out:
@@ -242,7 +271,7 @@ class TableCheck:
         return {
             "gamma": self.gamma, "points": M, "failed": int((~self.passed).sum()),
             "passed": self.all_passed, "unstable": int((~np.asarray(v["stable"], bool)).sum()),
-            "fixable": int(self.fixable().size),
+            "fixable": int(self.fixable().size), "reference": self.reference,
             "max_ratio": _f(np.max(v["ratio"])) if M else None,
             "min_input_gain_db": _f(np.min(v["in_gain_db"])) if M else None,
             "min_input_phase_deg": _f(np.min(v["in_phase_deg"])) if M else None,
@@ -431,13 +460,21 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
 
     light = replace(s, classical=False)
     compared, compared_passed = {}, {}
-    loops = [("interpolant", sc.evaluate(pts))]
+    Ki = sc.evaluate(pts)
+    loops = [("interpolant", Ki, P, 0.0)]
+    if table.discrete:
+        from ..export.discretize import discretize
+
+        Kid = dict(zip("ABCD", discretize(Ki["A"], Ki["B"], Ki["C"], Ki["D"],
+                                          table.sample_time, table.method, table.prewarp),
+                       strict=True))
+        loops.append(("interpolant_discrete", Kid, Pd, table.sample_time))
     if compare and table.discrete:
         cont = _family_lookup(family, table, notes)
         if cont is not None:
-            loops.append(("table_continuous", table_matrices(cont, pts)))
-    for label, K in loops:
-        vals = check_points(P, K, gamma, light, jobs=jobs, cluster=cluster)
+            loops.append(("table_continuous", table_matrices(cont, pts), P, 0.0))
+    for label, K, plant, T in loops:
+        vals = check_points(plant, K, gamma, light, jobs=jobs, cluster=cluster, sample_time=T)
         compared[label] = {k: vals[k] for k in _COMPARED}
         compared_passed[label] = criterion.judge(vals)[0]
     result = TableCheck(

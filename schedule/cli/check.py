@@ -78,7 +78,8 @@ def print_table_result(tc, quiet: bool = False) -> None:
                f"points fail ({tc.source or 'table'}: {' x '.join(map(str, tc.shape))} nodes, "
                f"{how})")
     cost = tc.cost()
-    loops = [k for k in ("interpolant", "table_continuous", "table") if k in cost]
+    loops = [k for k in ("interpolant", "interpolant_discrete", "table_continuous", "table")
+             if k in cost]
     click.echo(f"  {'':<28}" + " | ".join(cost[k]["loop"] for k in loops))
     for key, label, spec in (("max_ratio", "worst norm/gamma", ".4g"),
                              ("min_input_gain_db", "min input disk gain [dB]", ".3g"),
@@ -97,8 +98,9 @@ def print_table_result(tc, quiet: bool = False) -> None:
     for i in fails:
         pt = ", ".join(f"{n}={x:.4g}" for n, x in zip(tc.variable_names, tc.points[i],
                                                        strict=True))
-        interp = "passes" if tc.compared_passed["interpolant"][i] else "fails too"
-        click.echo(f"    ({pt}) [{tc.kind[i]}] {tc.reasons[i]} (interpolant {interp})")
+        why = ("the family's interpolant passes there: more breakpoints fix it"
+               if tc.compared_passed[tc.reference][i] else tc.why_unfixable(i))
+        click.echo(f"    ({pt}) [{tc.kind[i]}] {tc.reasons[i]} ({why})")
     click.echo(f"  table check: {tc.seconds:.2f} s")
     for n in tc.notes:
         click.echo(f"  note: {n}")
