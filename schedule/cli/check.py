@@ -80,13 +80,14 @@ def print_table_result(tc, quiet: bool = False) -> None:
     cost = tc.cost()
     loops = [k for k in ("interpolant", "interpolant_discrete", "table_continuous", "table")
              if k in cost]
-    click.echo(f"  {'':<28}" + " | ".join(cost[k]["loop"] for k in loops))
+    heads = [cost[k]["loop"] for k in loops]
+    click.echo(f"  {'':<28}" + " | ".join(heads))
     for key, label, spec in (("max_ratio", "worst norm/gamma", ".4g"),
                              ("min_input_gain_db", "min input disk gain [dB]", ".3g"),
                              ("min_input_phase_deg", "min input disk phase [deg]", ".3g"),
                              ("failed", "failing points", "")):
-        vals = " | ".join(_fmt(_num(cost[k][key]), spec) if spec else str(cost[k][key])
-                          for k in loops)
+        vals = " | ".join(format(_fmt(_num(cost[k][key]), spec) if spec else str(cost[k][key]),
+                                 f">{len(h)}") for k, h in zip(loops, heads, strict=True))
         click.echo(f"  {label:<28}{vals}")
     if tc.weaker:
         click.echo("  WEAKER CHECK: the table is closed with the family's interpolated plant")
