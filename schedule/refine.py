@@ -19,9 +19,11 @@ Scattered families gain the proposed points themselves
 
 The loop stops when every check passes, when the point budget is spent, or when no
 proposal is left (for example when only the design points themselves fail: more points
-cannot fix a local design). Then :func:`compare_checks` compares the final check with
-the first: a refined family that is worse than its input (see there) is reported as
-such, and ``schedule refine`` does not write it.
+cannot fix a local design). Then the input family is checked once more at every point of
+the refined family's last check (its in-between points and its new design points are
+in-between points of the input), and :func:`compare_checks` compares the two on the same
+points: a refined family that is worse than its input (see there) is reported as such,
+and ``schedule refine`` does not write it.
 """
 
 from __future__ import annotations
@@ -45,10 +47,13 @@ class Comparison:
     """The refined family's check against its input's.
 
     before, after : summaries ``{"failed", "points", "max_ratio", "min_input_gain_db",
-        "min_input_phase_deg"}`` over the points that decide each verdict.
-    common : points both checks judge (same point, same role: in-between, design point
-        or leave-one-out), with ``failed_before`` / ``failed_after`` among them.
-    new_failures : those common points that passed before and fail after.
+        "min_input_phase_deg"}`` over the points both checks judge and that decide both
+        verdicts (the same point; leave-one-out predictions only with leave-one-out
+        predictions).
+    common : the number of those points, ``failed_before`` / ``failed_after`` the
+        failures among them.
+    new_failures : indices (into ``before``) of common points that passed before and fail
+        after.
     worse : the verdict; ``reasons`` why (empty when not worse).
     """
 
@@ -68,10 +73,10 @@ class Comparison:
                     f"{_num(s['max_ratio'])}, min input disk margins "
                     f"{_num(s['min_input_gain_db'], '.3g')} dB / "
                     f"{_num(s['min_input_phase_deg'], '.3g')} deg")
-        out = [row("input", self.before), row("refined", self.after),
-               f"  on the {self.common} points both check: {self.failed_before} fail in the "
-               f"input, {self.failed_after} in the refined family, "
-               f"{len(self.new_failures)} of them newly"]
+        out = [f"  on the {self.common} points both families are checked at:",
+               row("input", self.before), row("refined", self.after),
+               f"  {len(self.new_failures)} point(s) that passed with the input fail with the "
+               "refined family"]
         if self.reasons:
             out.append("  worse: " + "; ".join(self.reasons))
         return out
@@ -90,29 +95,39 @@ def _num(x, spec: str = ".4g") -> str:
     return format(float(x), spec)
 
 
-def _role(kind) -> str:
-    kind = str(kind)
-    return kind if kind in ("grid", "leave_one_out", "validation") else "between"
-
-
 def _keys(result: CheckResult) -> list[tuple]:
-    return [(_role(k), tuple(np.round(p, 9).tolist()))
+    """Point identity across two checks: the point, and whether it is a leave-one-out
+    prediction (an in-between point of one family may be a design point of the other)."""
+    return [(str(k) == "leave_one_out", tuple(np.round(p, 9).tolist()))
             for k, p in zip(result.kind, result.points, strict=True)]
 
 
-def _gating_summary(result: CheckResult) -> dict:
-    s = result.summary()
-    return {k: s[k] for k in ("failed", "points", "max_ratio", "min_input_gain_db",
-                              "min_input_phase_deg")}
+def _summary_at(result: CheckResult, idx: np.ndarray) -> dict:
+    v = result.values
+
+    def pick(key, fn):
+        return _f(fn(v[key][idx])) if idx.size else None
+
+    return {"failed": int((~result.passed[idx]).sum()), "points": int(idx.size),
+            "max_ratio": pick("ratio", np.max), "min_input_gain_db": pick("in_gain_db", np.min),
+            "min_input_phase_deg": pick("in_phase_deg", np.min)}
+
+
+def _f(x):
+    from .check import _f as json_float
+
+    return json_float(x)
 
 
 def compare_checks(before: CheckResult, after: CheckResult, rtol: float = 1e-9) -> Comparison:
     """Is the refined family (``after``) worse than its input (``before``)?
 
-    Only points that decide each verdict count. A refined family that passes every
-    check is not worse. One that fails is worse when its input passed, when it fails
-    more of the points both checks judge (the same point in the same role), or when its
-    worst closed-loop norm / gamma is larger than the input's (relative ``rtol``).
+    Compared on the points both checks judge and that decide both verdicts (give both
+    the same points: :func:`refine_family` checks the input again at the refined
+    check's points). A refined family that passes every check is not worse. One that
+    fails is worse when the input passes all the common points, when it fails more of
+    them, or when its worst closed-loop norm / gamma among them is larger than the
+    input's (relative ``rtol``).
     """
     bk, ak = _keys(before), _keys(after)
     bg, ag = before.gates, after.gates
@@ -120,20 +135,18 @@ def compare_checks(before: CheckResult, after: CheckResult, rtol: float = 1e-9) 
     pairs = [(i, after_at[k]) for i, k in enumerate(bk) if bg[i] and k in after_at]
     bi = np.array([p[0] for p in pairs], dtype=int)
     ai = np.array([p[1] for p in pairs], dtype=int)
-    fb = int((~before.passed[bi]).sum()) if bi.size else 0
-    fa = int((~after.passed[ai]).sum()) if ai.size else 0
+    b, a = _summary_at(before, bi), _summary_at(after, ai)
+    fb, fa = b["failed"], a["failed"]
     new = bi[before.passed[bi] & ~after.passed[ai]] if bi.size else np.zeros(0, int)
-    b, a = _gating_summary(before), _gating_summary(after)
     reasons = []
-    if not after.all_passed:
-        if before.all_passed:
-            reasons.append("the input passes every check and the refined family does not")
-        if fa > fb:
-            reasons.append(f"it fails {fa} of the {len(pairs)} points both checks judge, the "
-                           f"input {fb}")
-        rb, ra = (float(x) if x is not None else np.nan for x in (b["max_ratio"],
-                                                                  a["max_ratio"]))
-        if ra > rb * (1 + rtol) or (np.isnan(ra) and not np.isnan(rb)):
+    if not after.all_passed and pairs:
+        if fb == 0 and fa > 0:
+            reasons.append("the input passes at every common point and the refined family "
+                           "does not")
+        elif fa > fb:
+            reasons.append(f"it fails {fa} of the {len(pairs)} common points, the input {fb}")
+        rb, ra = (float(x) for x in (b["max_ratio"], a["max_ratio"]))
+        if ra > rb * (1 + rtol):
             reasons.append(f"its worst norm/gamma {ra:.4g} exceeds the input's {rb:.4g}")
     return Comparison(b, a, len(pairs), fb, fa, new, bool(reasons), tuple(reasons))
 
@@ -143,7 +156,8 @@ class RefineOutcome:
     """The refined family, the check of every round, the points added and why it stopped.
 
     ``added_breakpoints`` (rectangular families): variable -> new breakpoints.
-    ``comparison``: the last check against the first (:func:`compare_checks`).
+    ``baseline``: the input family checked at the points of the last check;
+    ``comparison``: the last check against it (:func:`compare_checks`).
     """
 
     family: Family
@@ -151,6 +165,7 @@ class RefineOutcome:
     added: np.ndarray | None = None
     stopped: str = ""
     added_breakpoints: dict = field(default_factory=dict)
+    baseline: CheckResult | None = None
     comparison: Comparison | None = None
 
     @property
@@ -334,5 +349,15 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
                                        extra_points=previous, progress=progress))
     out.added = np.vstack(added) if added else np.zeros((0, len(family.variables)))
     out.added_breakpoints = added_bps
-    out.comparison = compare_checks(out.rounds[0], out.rounds[-1])
+    baseline = out.rounds[0]
+    if added:
+        # the input at every point of the refined family's last check
+        last = out.rounds[-1]
+        where = last.points[last.kind != "leave_one_out"]
+        baseline = check_family(family, replace(s, samples=0, centres=False, midpoints=False,
+                                                points_file=None),
+                                spec=spec, jobs=jobs, cluster=cluster, extra_points=where,
+                                progress=progress)
+    out.baseline = baseline
+    out.comparison = compare_checks(baseline, out.rounds[-1])
     return out

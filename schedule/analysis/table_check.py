@@ -381,9 +381,28 @@ def _family_lookup(family: Family, table, notes: list):
     return cont
 
 
+def _plants(family: Family, pts: np.ndarray, spec, sc, cache: dict | None):
+    """:func:`schedule.check.plants_at`, reusing the points kept in ``cache``."""
+    from ..check import plants_at
+
+    if cache is None:
+        return plants_at(family, pts, spec, sc)
+    keys = [tuple(np.round(p, 12).tolist()) for p in pts]
+    todo = [i for i, k in enumerate(keys) if k not in cache]
+    if todo:
+        P, src, ok, why = plants_at(family, pts[todo], spec, sc)
+        for j, i in enumerate(todo):
+            cache[keys[i]] = ({k: v[j] for k, v in P.items()}, src[j], bool(ok[j]), why[j])
+    rows = [cache[k] for k in keys]
+    P = {k: np.stack([r[0][k] for r in rows]) for k in rows[0][0]}
+    return (P, np.array([r[1] for r in rows], dtype=object), np.array([r[2] for r in rows]),
+            [r[3] for r in rows])
+
+
 def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, cluster=None,
                 progress: Callable[[str, int, int], None] | None = None,
-                compare: bool = True, controller=None, source: str = "") -> TableCheck:
+                compare: bool = True, controller=None, source: str = "",
+                plant_cache: dict | None = None) -> TableCheck:
     """Check a scheduled table as it runs, at every in-between point (module docstring).
 
     Parameters
@@ -400,6 +419,8 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
         beside the table (it tells which failures the table adds).
     controller : the family's ScheduledController (default: the stored one).
     source : a label for the table (its file), shown in the output.
+    plant_cache : a dict kept between calls with the same family, spec and sample time
+        (the export's rounds): the plants at points already seen are reused.
 
     Returns
     -------
@@ -410,7 +431,7 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     InputError
         A table that does not fit the family (variables, sizes), or no point to check.
     """
-    from ..check import CheckSettings, PassCriterion, check_points, plants_at
+    from ..check import CheckSettings, PassCriterion, check_points
     from ..interpolate import ScheduledController
 
     t0 = time.perf_counter()
@@ -439,7 +460,7 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     if not len(pts):
         raise InputError("there is nothing to check in the table: every point lies in a cell "
                          "with stand-in nodes; export denser breakpoints")
-    P, src, ok, why = plants_at(family, pts, spec, sc)
+    P, src, ok, why = _plants(family, pts, spec, sc, plant_cache)
     for i in np.flatnonzero(~ok):
         notes.append(f"check point ({point_text(family.variable_names, pts[i])}) skipped: "
                      f"{why[i]}")

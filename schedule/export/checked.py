@@ -147,9 +147,11 @@ def build_checked_table(family: Family, breakpoints=None, sample_time: float = 0
     controller = ScheduledController.from_family(family)
     out = CheckedExport(table, None)
     added: dict[str, set] = {n: set() for n in names}
+    cache: dict = {}  # plants at the points already checked, for the later rounds
     for round_no in range(max_rounds + 1):
         tc = check_table(family, table, s, spec, jobs=jobs, cluster=cluster, progress=progress,
-                         compare=False, controller=controller, source=source)
+                         compare=False, controller=controller, source=source,
+                         plant_cache=cache)
         out.table, out.check = table, tc
         fix = tc.fixable()
         info = {"shape": dict(zip(names, map(int, table.shape), strict=True)),
