@@ -518,17 +518,7 @@ class CheckResult:
 
     def to_dict(self) -> dict:
         """JSON-ready dict: settings, summary, per-point table, rate bound and proposals."""
-        rows = []
-        keys = [k for k in self.values if np.ndim(self.values[k]) == 1]
-        for i in range(len(self.passed)):
-            row = {"point": dict(zip(self.variable_names, map(float, self.points[i]),
-                                     strict=True)),
-                   "kind": str(self.kind[i]), "plant": str(self.plant_source[i]),
-                   "passed": bool(self.passed[i]), "gates_verdict": bool(self.gates[i]),
-                   "reason": self.reasons[i]}
-            for k in keys:
-                row[k] = _f(self.values[k][i])
-            rows.append(row)
+        rows = point_rows(self, self.gates)
         rate = None
         if self.rate is not None:
             rate = {n: {"single": _f(s), "joint": _f(j), "max_dP_norm": _f(w)}
@@ -542,6 +532,27 @@ class CheckResult:
                 "proposed_breakpoints": {k: [float(x) for x in v]
                                          for k, v in self.proposed_breakpoints.items()},
                 "points": rows}
+
+
+def point_rows(result, gates=None) -> list[dict]:
+    """One JSON-ready dict per checked point of ``result`` (a CheckResult or any object
+    with ``variable_names``, ``points``, ``kind``, ``plant_source``, ``passed``,
+    ``reasons`` and ``values``): the point, its kind and plant, the verdict (with
+    ``gates_verdict`` when ``gates`` is given), the reason and every per-point value."""
+    rows = []
+    keys = [k for k in result.values if np.ndim(result.values[k]) == 1]
+    for i in range(len(result.passed)):
+        row = {"point": dict(zip(result.variable_names, map(float, result.points[i]),
+                                 strict=True)),
+               "kind": str(result.kind[i]), "plant": str(result.plant_source[i]),
+               "passed": bool(result.passed[i])}
+        if gates is not None:
+            row["gates_verdict"] = bool(gates[i])
+        row["reason"] = result.reasons[i]
+        for k in keys:
+            row[k] = _f(result.values[k][i])
+        rows.append(row)
+    return rows
 
 
 def _f(x):

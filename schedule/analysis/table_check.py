@@ -283,19 +283,13 @@ class TableCheck:
 
     def to_dict(self) -> dict:
         """JSON-ready: the table, the summary, the cost of each step, notes and the points."""
-        rows = []
-        keys = [k for k in self.values if np.ndim(self.values[k]) == 1]
-        for i in range(len(self.passed)):
-            row = {"point": dict(zip(self.variable_names, map(float, self.points[i]),
-                                     strict=True)),
-                   "kind": str(self.kind[i]), "plant": str(self.plant_source[i]),
-                   "passed": bool(self.passed[i]), "reason": self.reasons[i]}
-            for k in keys:
-                row[k] = _f(self.values[k][i])
+        from ..check import point_rows
+
+        rows = point_rows(self)
+        for i, row in enumerate(rows):
             for label, vals in self.compared.items():
                 row[f"{label}_ratio"] = _f(vals["ratio"][i])
                 row[f"{label}_passed"] = bool(self.compared_passed[label][i])
-            rows.append(row)
         return {"source": self.source, "sample_time": self.sample_time, "method": self.method,
                 "shape": dict(zip(self.variable_names, map(int, self.shape), strict=True)),
                 "nodes": int(np.prod(self.shape)), "criterion": self.criterion.describe(),
