@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
@@ -458,6 +458,9 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     for i in np.flatnonzero(~ok):
         notes.append(f"check point ({point_text(family.variable_names, pts[i])}) skipped: "
                      f"{why[i]}")
+    if not ok.any():
+        raise InputError(f"the model failed at every check point of the table ({why[0]}); fix "
+                         "the model or check with the interpolated plant")
     pts, kinds, src = pts[ok], kinds[ok], src[ok]
     P = {k: v[ok] for k, v in P.items()}
     criterion = PassCriterion.from_settings(gamma, s)
@@ -471,8 +474,6 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     else:
         values = check_points(P, Kt, gamma, s, jobs=jobs, cluster=cluster, progress=progress)
     passed, reasons = criterion.judge(values)
-    from dataclasses import replace
-
     light = replace(s, classical=False)
     compared, compared_passed = {}, {}
     Ki = sc.evaluate(pts)
