@@ -55,6 +55,7 @@ __all__ = [
     "check_points",
     "check_points_for",
     "check_family",
+    "plants_at",
     "propose_points",
     "spec_for_family",
     "scheduled_loop",
@@ -272,7 +273,12 @@ def check_arrays(P: dict, K: dict, gamma: float,
     return out
 
 
-def _kernel_chunk(P: dict, K: dict, gamma: float, tol: float, classical: bool) -> dict:
+def _kernel_chunk(P: dict, K: dict, gamma: float, tol: float, classical: bool,
+                  sample_time: float = 0.0) -> dict:
+    if sample_time > 0:
+        from .analysis.discrete_loop import discrete_check_arrays
+
+        return discrete_check_arrays(P, K, gamma, tol, classical, sample_time)
     return check_arrays(P, K, gamma, tol, classical)
 
 
@@ -282,9 +288,15 @@ def _take(d: dict, idx) -> dict:
 
 def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None = None,
                  jobs: int = 1, cluster=None,
-                 progress: Callable[[str, int, int], None] | None = None) -> dict:
+                 progress: Callable[[str, int, int], None] | None = None,
+                 sample_time: float = 0.0) -> dict:
     """:func:`check_arrays` over many points in chunks, serially, on workers or on dask
-    (chunk and task sizes: :func:`schedule.parallel.work_chunk`)."""
+    (chunk and task sizes: :func:`schedule.parallel.work_chunk`).
+
+    With ``sample_time`` > 0 the loops are discrete (zero-order-hold plants, discrete
+    controllers) and each chunk goes to
+    :func:`schedule.analysis.discrete_loop.discrete_check_arrays` instead.
+    """
     from .parallel import run_chunks, session, work_chunk
 
     s = settings or CheckSettings()
@@ -297,7 +309,7 @@ def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None 
         size = work_chunk(M, jobs, client, largest=int(s.chunk))
         starts = list(range(0, M, size))
         chunks = [(_take(P, slice(a, a + size)), _take(K, slice(a, a + size)), float(gamma),
-                   s.gamma_tolerance, s.classical) for a in starts]
+                   s.gamma_tolerance, s.classical, float(sample_time)) for a in starts]
         for i, res in run_chunks(_kernel_chunk, chunks, jobs=jobs, cluster=client):
             parts[i] = res
             done += len(res["norm"])
@@ -505,17 +517,7 @@ class CheckResult:
 
     def to_dict(self) -> dict:
         """JSON-ready dict: settings, summary, per-point table, rate bound and proposals."""
-        rows = []
-        keys = [k for k in self.values if np.ndim(self.values[k]) == 1]
-        for i in range(len(self.passed)):
-            row = {"point": dict(zip(self.variable_names, map(float, self.points[i]),
-                                     strict=True)),
-                   "kind": str(self.kind[i]), "plant": str(self.plant_source[i]),
-                   "passed": bool(self.passed[i]), "gates_verdict": bool(self.gates[i]),
-                   "reason": self.reasons[i]}
-            for k in keys:
-                row[k] = _f(self.values[k][i])
-            rows.append(row)
+        rows = point_rows(self, self.gates)
         rate = None
         if self.rate is not None:
             rate = {n: {"single": _f(s), "joint": _f(j), "max_dP_norm": _f(w)}
@@ -529,6 +531,27 @@ class CheckResult:
                 "proposed_breakpoints": {k: [float(x) for x in v]
                                          for k, v in self.proposed_breakpoints.items()},
                 "points": rows}
+
+
+def point_rows(result, gates=None) -> list[dict]:
+    """One JSON-ready dict per checked point of ``result`` (a CheckResult or any object
+    with ``variable_names``, ``points``, ``kind``, ``plant_source``, ``passed``,
+    ``reasons`` and ``values``): the point, its kind and plant, the verdict (with
+    ``gates_verdict`` when ``gates`` is given), the reason and every per-point value."""
+    rows = []
+    keys = [k for k in result.values if np.ndim(result.values[k]) == 1]
+    for i in range(len(result.passed)):
+        row = {"point": dict(zip(result.variable_names, map(float, result.points[i]),
+                                 strict=True)),
+               "kind": str(result.kind[i]), "plant": str(result.plant_source[i]),
+               "passed": bool(result.passed[i])}
+        if gates is not None:
+            row["gates_verdict"] = bool(gates[i])
+        row["reason"] = result.reasons[i]
+        for k in keys:
+            row[k] = _f(result.values[k][i])
+        rows.append(row)
+    return rows
 
 
 def _f(x):
@@ -646,6 +669,20 @@ def _rate(family, sc, spec, pts, P, K, names) -> object:
         dA[:, j] = (closed_loop_many(Pu, Ku)[0] - closed_loop_many(Pd, Kd)[0]) / step[:, None,
                                                                                      None]
     return rate_bounds(Acl, dA, names)
+
+
+def plants_at(family: Family, points, spec=None, controller=None):
+    """Generalized plants at ``points`` (M, d): the design's model where ``spec`` has one
+    (the true plant), else the family's interpolated plant.
+
+    Returns ``(stack, source (M,) "model" | "interpolated", ok (M,), reasons)``; a point
+    where the model fails has ``ok`` False and its reason.
+    """
+    from .interpolate import ScheduledController
+
+    sc = controller or ScheduledController.from_family(family)
+    pts = np.asarray(points, dtype=float).reshape(-1, len(family.variables))
+    return _plants_at(family, sc, spec, pts, family.variable_names)
 
 
 def _plants_at(family, sc, spec, pts, names):

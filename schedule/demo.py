@@ -7,6 +7,11 @@ against the crane model, writes the report, exports the scheduled tables
 and the anti-windup gain), simulates the nonlinear crane under the exported discrete
 controller while hoisting and travelling, and returns a short summary.
 
+The exported table is checked as it runs before it is written (the runtime's lookup
+at every in-between point, the crane model discretized by zero-order hold at the
+table's sample time: :func:`schedule.export.checked.build_checked_table`, the same
+step as ``schedule export``); the report shows family and table side by side.
+
 The demo copies its design file and envelope file into the output folder and
 designs from those copies, so every ``schedule`` command of the tour (printed
 at the end, :data:`NEXT_COMMANDS`) works from that folder. Tables get the
@@ -50,7 +55,8 @@ NEXT_COMMANDS = (
     f"schedule design {DESIGN_FILE} --out crane.h5",
     "schedule inspect crane.h5",
     f"schedule check crane.h5 --design {DESIGN_FILE} --report check-report",
-    "schedule export crane.h5 --format c --out table",
+    f"schedule export crane.h5 --design {DESIGN_FILE} --format c --out table",
+    f"schedule check crane.h5 --design {DESIGN_FILE} --table table --no-gamma-opt -q",
     f"schedule simulate crane.h5 --design {DESIGN_FILE} --out sim",
 )
 
@@ -111,7 +117,8 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     from .atomic import write_dir_atomic, write_text_atomic
     from .check import CheckSettings, check_family
     from .design_file import load_design
-    from .export import build_table, file_sha256, write_tables
+    from .export import file_sha256, write_tables
+    from .export.checked import build_checked_table
     from .family import design_family
     from .paths import refuse_output_over_input
     from .report import write_report
@@ -150,13 +157,19 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
     announce("check")
     settings = CheckSettings.from_spec(spec)
     result = check_family(family, settings, spec=spec, jobs=jobs, progress=progress)
-    report = write_report(result, family, out / REPORT_DIR)
-    files["report"] = Path(report["markdown"])
 
     announce("export")
-    table = build_table(family, sample_time=spec.export.sample_time, method=spec.export.method,
-                        prewarp=spec.export.prewarp, source_sha256=file_sha256(family_path),
-                        limits=spec.limits)
+    checked = build_checked_table(family, sample_time=spec.export.sample_time,
+                                  method=spec.export.method, prewarp=spec.export.prewarp,
+                                  source_sha256=file_sha256(family_path), limits=spec.limits,
+                                  settings=settings, spec=spec, jobs=jobs, progress=progress,
+                                  source=f"{TABLE_DIR}/")
+    if not checked.passed:
+        raise InputError(f"the demo's table fails its own check ({checked.stopped}); worst "
+                         f"point {checked.worst_point()}")
+    table = checked.table
+    report = write_report(result, family, out / REPORT_DIR, table_check=checked.check)
+    files["report"] = Path(report["markdown"])
     try:
         tables.mkdir(exist_ok=True)
     except OSError as exc:
@@ -181,6 +194,7 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
 
     summary = _summary(family, result, sim.summary(), names, units, files, out,
                        time.perf_counter() - t0)
+    summary["table_check"] = _table_summary(checked)
     summary["fmu"] = {"platform": fmu.platform, "note": fmu.note}
     summary_path = out / SUMMARY_FILE
     write_text_atomic(summary_path, json.dumps(summary, indent=1, default=str) + "\n",
@@ -226,6 +240,20 @@ def _summary(family, result, sim: dict, names, units, files, out: Path, seconds:
     }
 
 
+def _table_summary(checked) -> dict:
+    tc = checked.check
+    s, cost = tc.summary(), tc.cost()
+    return {"passed": bool(tc.all_passed), "points": s["points"], "failed": s["failed"],
+            "sample_time": tc.sample_time, "method": tc.method,
+            "shape": list(checked.rounds[-1]["shape"].values()),
+            "added_breakpoints": sum(len(v) for v in checked.added.values()),
+            "worst_ratio": s["max_ratio"],
+            "interpolant_worst_ratio": cost["interpolant"]["max_ratio"],
+            "min_input_gain_margin_db": s["min_input_gain_db"],
+            "min_input_phase_margin_deg": s["min_input_phase_deg"],
+            "seconds": round(tc.seconds, 2)}
+
+
 def _lines(s: dict) -> list[str]:
     names = list(s["gamma_opt_worst_at"])
     units = s["units"]
@@ -249,6 +277,14 @@ def _lines(s: dict) -> list[str]:
         f"input disk margins    >= {_num(s['min_input_gain_margin_db'])} dB, "
         f">= {_num(s['min_input_phase_margin_deg'])} deg",
     ]
+    t = s.get("table_check")
+    if t:
+        lines.append(
+            f"table as it runs      {t['points']} points, "
+            + ("all passed" if t["passed"] else f"{t['failed']} FAILED")
+            + f" (T = {t['sample_time']:g} s, {t['method']}); worst norm / gamma "
+            f"{_num(t['worst_ratio'])}, margins >= {_num(t['min_input_gain_margin_db'])} dB, "
+            f">= {_num(t['min_input_phase_margin_deg'])} deg")
     if s["rate_bound"]:
         lines.append("rate bound            " + ", ".join(
             f"|d {k}/dt| < {v:.3g} {units.get(k, '')}/s" for k, v in s["rate_bound"].items()))

@@ -1293,7 +1293,7 @@ def _controllers_of(plants: Sequence, idx: np.ndarray, gamma: float, jobs: int, 
 
 
 def extend_family(family: Family, spec, new_points, jobs: int = 1,
-                  cluster: Any = None, rtol: float = 1e-4) -> Family:
+                  cluster: Any = None, rtol: float = 1e-4, breakpoints=None) -> Family:
     """Synthesize controllers at ``new_points`` and append them to ``family``.
 
     The common gamma is kept unless a new point's optimum needs a larger one:
@@ -1302,15 +1302,21 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
     the change is recorded as a sentence in ``extra["gamma_raised"]``. With
     policy "fixed" (or when the new optimum stays below the common gamma) the
     old controllers are kept and new points infeasible at the gamma are
-    failed with the reason. The grid structure (breakpoints, grid_index) is
-    dropped (the set becomes scattered) and the interpolant is cleared, since
-    it no longer matches the points.
+    failed with the reason. The interpolant is cleared, since it no longer
+    matches the points; the design text and its base folder and the units are
+    kept (the tool version and creation time are the writer's).
+
+    ``breakpoints`` (one increasing array per variable) keeps the family
+    rectangular: every point, old and new, must be a node of that grid (the
+    caller adds whole grid lines), and the result carries these breakpoints and
+    the grid indices of its points. Without it the grid structure is dropped (the
+    set becomes scattered).
 
     Raises
     ------
     InputError
-        When the spec has no model to evaluate at new points, or the points
-        have the wrong width.
+        When the spec has no model to evaluate at new points, the points
+        have the wrong width, or a point is not a node of ``breakpoints``.
     """
     from .sources import evaluate_model, load_model
 
@@ -1321,6 +1327,29 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
     if spec.source.model is None and spec.source.model_file is None:
         raise InputError("extending a family needs a model source ([source] model or "
                          "model_file); an operating-point file has no values between its points")
+    grid_index = None
+    if breakpoints is not None:
+        bps = tuple(np.asarray(b, dtype=float).reshape(-1) for b in breakpoints)
+        if len(bps) != d or any(b.size == 0 or np.any(np.diff(b) <= 0) for b in bps):
+            raise InputError(f"breakpoints for extending must be {d} increasing lists, one per "
+                             "variable")
+        pts = np.vstack([np.asarray(family.points, dtype=float).reshape(-1, d), new])
+        grid_index = np.zeros(pts.shape, dtype=np.int64)
+        for j, b in enumerate(bps):
+            k = np.clip(np.searchsorted(b, pts[:, j]), 0, b.size - 1)
+            k = np.where((k > 0) & (np.abs(b[k - 1] - pts[:, j]) < np.abs(b[k] - pts[:, j])),
+                         k - 1, k)
+            off = np.abs(b[k] - pts[:, j]) > 1e-12 * max(1.0, float(np.abs(b).max()))
+            if off.any():
+                i = int(np.flatnonzero(off)[0])
+                raise InputError(f"point ({point_text(family.variable_names, pts[i])}) is not "
+                                 f"a node of the extended grid ({family.variable_names[j]}); "
+                                 "add whole grid lines")
+            grid_index[:, j] = k
+        if len({tuple(r) for r in grid_index.tolist()}) != len(grid_index):
+            raise InputError("two points of the extended family fall on the same grid node; "
+                             "add only new nodes")
+        breakpoints = bps
     model = load_model(spec)
     linear, lreasons = [], []
     for row in new:
@@ -1396,8 +1425,9 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
         controller=controller, pieces=pieces, measured_names=family.measured_names,
         control_names=family.control_names, exogenous_names=family.exogenous_names,
         performance_names=family.performance_names, state_names=family.state_names,
-        breakpoints=None, grid_index=None, design_text=family.design_text,
-        extra=extra, interpolant=None, units=dict(family.units))
+        breakpoints=breakpoints, grid_index=grid_index, design_text=family.design_text,
+        design_base_dir=family.design_base_dir, extra=extra, interpolant=None,
+        units=dict(family.units))
 
 
 def _plant_from_family(family: Family, i: int):

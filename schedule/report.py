@@ -13,7 +13,14 @@ Figures, in our own visual style (:data:`STYLE`):
   lines) and the points below them crossed;
 - ``controller_sv.png``: the controller's largest singular value over
   frequency along the scheduling variable (one variable) or along the
-  diagonal line from the lower to the upper corner of the envelope.
+  diagonal line from the lower to the upper corner of the envelope;
+- ``table_ratio.png`` (with a table check, ``schedule check --table``): norm /
+  gamma of the table as it runs against that of the family's interpolant at the
+  same points, and the table's input disk margins against the interpolant's.
+
+With a table check (:mod:`schedule.analysis.table_check`) the summary page gains a
+"Shipped table" section: family and table side by side at the same points, and what
+multilinear tabulation and discretization cost.
 
 Leave-one-out predictions that do not decide the verdict (evidence only) are
 drawn apart, as hollow diamonds outside the colour scales.
@@ -104,7 +111,8 @@ class _AggFigures:
 def _report_member(name: str) -> bool:
     """A file name that an earlier report may have left in the folder (replaced, not kept)."""
     return name in ("summary.md", "summary.html", "gamma_opt.png", "margins.png",
-                    "controller_sv.png") or (name.startswith("ratio_") and name.endswith(".png"))
+                    "controller_sv.png", "table_ratio.png") or (
+        name.startswith("ratio_") and name.endswith(".png"))
 
 
 # The pass criterion's numbers, read where the verdict reads them (the check's settings),
@@ -390,8 +398,10 @@ def _ptxt(result: CheckResult, row) -> str:
     return ", ".join(f"{n} = {x:.4g}" for n, x in zip(result.variable_names, row, strict=True))
 
 
-def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> str:
-    """The summary page as Markdown: verdict, settings, tables, worst points, rate, caution."""
+def markdown_summary(result: CheckResult, figures: list[str] | None = None,
+                     table_check=None) -> str:
+    """The summary page as Markdown: verdict, settings, tables, worst points, rate, the
+    shipped table (with ``table_check``), caution."""
     s = result.summary()
     v = result.values
     L = ["# Frozen-point check of the scheduled controller", ""]
@@ -425,6 +435,8 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> s
                  f"{_fmt(v['in_phase_deg'][i], '.1f')} | {_fmt(v['out_gain_db'][i], '.2f')} | "
                  f"{_fmt(v['in_all_gain_db'][i], '.2f')} | "
                  f"{'pass' if result.passed[i] else 'FAIL: ' + result.reasons[i]} |")
+    if table_check is not None:
+        L += [""] + table_section(table_check)
     L += ["", "## Rate of variation", ""]
     if result.rate is None:
         L.append("Not computed.")
@@ -460,6 +472,98 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> s
 
 def _num(x):
     return float("nan") if x is None else float(x)  # float("inf") parses the JSON-safe "inf"
+
+
+def table_section(tc) -> list[str]:
+    """The "Shipped table" section: the table's verdict, family and table side by side at
+    the same points, the cost of tabulation and discretization, the worst table points."""
+    s = tc.summary()
+    how = (f"discrete, sample time {tc.sample_time:g} s ({tc.method}); the plant discretized "
+           "exactly by zero-order hold" if tc.discrete else "continuous time")
+    L = ["## Shipped table", "",
+         f"- Table: {tc.source or '(in memory)'}, {' x '.join(map(str, tc.shape))} nodes, {how}",
+         f"- Verdict: **{'PASS' if tc.all_passed else 'FAIL'}** ({s['failed']} of "
+         f"{s['points']} points fail; {s['fixable']} of the failures where the family's "
+         "interpolant passes)",
+         f"- Points: the table's nodes, cell centres and edge midpoints with the family "
+         f"check's in-between points; the controller is the table's multilinear lookup, as "
+         f"the target computes it. Checked in {tc.seconds:.2f} s.",
+         "- The anti-windup gain and the actuator limits do not enter this linear check "
+         "(limits inactive).", ""]
+    if tc.weaker:
+        L += ["**Weaker check:** the table is closed with the family's interpolated plant.", ""]
+    cost = tc.cost()
+    loops = [k for k in ("interpolant", "interpolant_discrete", "table_continuous", "table")
+             if k in cost]
+    L += ["| at the same points | " + " | ".join(cost[k]["loop"] for k in loops) + " |",
+          "|---|" + "---:|" * len(loops)]
+    for key, label, spec in (("max_ratio", "worst norm/gamma", ".4g"),
+                             ("failed", "failing points", ""),
+                             ("unstable", "unstable loops", ""),
+                             ("min_input_gain_db", "min input disk gain margin [dB]", ".3g"),
+                             ("min_input_phase_deg", "min input disk phase margin [deg]",
+                              ".3g")):
+        L.append(f"| {label} | " + " | ".join(
+            _fmt(_num(cost[k][key]), spec) if spec else str(cost[k][key]) for k in loops)
+            + " |")
+    L.append("")
+    for step, what in (("tabulation", "Multilinear tabulation (continuous lookup vs "
+                                      "interpolant)"),
+                       ("discretization", "Discretization (table as it runs vs continuous "
+                                          "lookup)")):
+        if step in cost:
+            c = cost[step]
+            L.append(f"- {what}: worst norm/gamma {_signed(c['max_ratio_change'], '.3g')}, "
+                     f"largest increase at one point {_signed(c['largest_ratio_increase'], '.3g')}"
+                     f"; min input disk gain margin {_signed(c['min_input_gain_db_change'], '.3g')}"
+                     f" dB, phase margin {_signed(c['min_input_phase_deg_change'], '.3g')} deg")
+    fails = [i for i in tc.worst(len(tc.passed)) if not tc.passed[i]][:10]
+    if fails:
+        L += ["", "| point | kind | norm/gamma (table) | norm/gamma (interpolant) | "
+              "in. gain [dB] | in. phase [deg] | result |", "|---|---|---:|---:|---:|---:|---|"]
+        for i in fails:
+            pt = ", ".join(f"{n} = {x:.4g}" for n, x in zip(tc.variable_names, tc.points[i],
+                                                            strict=True))
+            L.append(f"| {pt} | {tc.kind[i]} | {_fmt(tc.values['ratio'][i])} | "
+                     f"{_fmt(tc.compared['interpolant']['ratio'][i])} | "
+                     f"{_fmt(tc.values['in_gain_db'][i], '.2f')} | "
+                     f"{_fmt(tc.values['in_phase_deg'][i], '.1f')} | FAIL: {tc.reasons[i]} |")
+    if tc.notes:
+        L += [""] + [f"- note: {n}" for n in tc.notes]
+    return L
+
+
+def _signed(x, spec: str) -> str:
+    x = _num(x)
+    return "-" if np.isnan(x) else format(x, "+" + spec)
+
+
+def _table_figure(plt, tc):
+    """Norm / gamma and input disk gain margin: table as it runs vs the interpolant."""
+    fig, axes = plt.subplots(1, 2, figsize=(10.0, 4.2))
+    interp = tc.compared["interpolant"]
+    limit = float(tc.criterion.norm_limit / tc.gamma)
+    need_gain = float(tc.criterion.gain_margin_db)
+    for ax, key, cap, level, title, label in (
+            (axes[0], "ratio", 3.0, limit, "Closed-loop norm / gamma", "norm / gamma"),
+            (axes[1], "in_gain_db", 40.0, need_gain, "Disk gain margin at the plant input",
+             "gain margin [dB]")):
+        x = np.minimum(_finite(interp[key], cap), cap)
+        y = np.minimum(_finite(tc.values[key], cap), cap)
+        lo, hi = float(min(x.min(), y.min(), level)), float(max(x.max(), y.max(), level))
+        pad = 0.05 * (hi - lo or 1.0)
+        ax.plot([lo - pad, hi + pad], [lo - pad, hi + pad], color=INK, lw=0.8,
+                label="table = interpolant")
+        ax.axhline(level, color=ACCENT, lw=1.5, label="pass limit")
+        ax.axvline(level, color=ACCENT, lw=0.8, ls="--")
+        ok = tc.passed
+        ax.scatter(x[ok], y[ok], s=14, color=DESIGN, label="passes", zorder=3)
+        ax.scatter(x[~ok], y[~ok], s=26, marker="x", color=ACCENT, label="fails", zorder=4)
+        ax.set_xlabel(f"{label}, family interpolant (continuous)")
+        ax.set_ylabel(f"{label}, table as it runs")
+        ax.set_title(title)
+    _figure_legend(fig, axes)
+    return fig
 
 
 def _html(markdown: str) -> str:
@@ -520,11 +624,13 @@ def _bold(text: str) -> str:
 
 
 def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
-                 controller=None) -> dict[str, Path]:
+                 controller=None, table_check=None) -> dict[str, Path]:
     """Write the plots and the summary page into ``out_dir`` (created if needed).
 
     ``controller`` (a ScheduledController) draws the controller-gain map; by
     default the family's stored interpolant is used when it has one.
+    ``table_check`` (a :class:`schedule.analysis.table_check.TableCheck`) adds the
+    "Shipped table" section and ``table_ratio.png``.
 
     Returns ``{"markdown": path, "html": path, "figures": [paths]}``.
 
@@ -564,7 +670,12 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
         c = _controller_sv_plot(plt, result, controller, family, out)
         if c is not None:
             figures.append(c)
-    md = markdown_summary(result, [str(f) for f in figures])
+        if table_check is not None and len(table_check.passed):
+            fig = _table_figure(plt, table_check)
+            plt.save(fig, out / "table_ratio.png")
+            plt.close(fig)
+            figures.append(out / "table_ratio.png")
+    md = markdown_summary(result, [str(f) for f in figures], table_check)
     files: dict[str, str | bytes] = dict(plt.files)
     files["summary.md"] = md
     files["summary.html"] = _html(md)

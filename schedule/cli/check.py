@@ -69,6 +69,48 @@ def print_result(result, quiet: bool = False) -> None:
         click.echo(f"  note: {n}")
 
 
+def print_table_result(tc, quiet: bool = False) -> None:
+    """The table check in a few lines: verdict, the cost of each step, the worst points."""
+    s = tc.summary()
+    how = (f"discrete, T = {tc.sample_time:g} s ({tc.method}), plant by zero-order hold"
+           if tc.discrete else "continuous")
+    click.echo(f"TABLE {'PASS' if tc.all_passed else 'FAIL'}: {s['failed']} of {s['points']} "
+               f"points fail ({tc.source or 'table'}: {' x '.join(map(str, tc.shape))} nodes, "
+               f"{how})")
+    cost = tc.cost()
+    loops = [k for k in ("interpolant", "interpolant_discrete", "table_continuous", "table")
+             if k in cost]
+    heads = [cost[k]["loop"] for k in loops]
+    click.echo(f"  {'':<28}" + " | ".join(heads))
+    for key, label, spec in (("max_ratio", "worst norm/gamma", ".4g"),
+                             ("min_input_gain_db", "min input disk gain [dB]", ".3g"),
+                             ("min_input_phase_deg", "min input disk phase [deg]", ".3g"),
+                             ("failed", "failing points", "")):
+        vals = " | ".join(format(_fmt(_num(cost[k][key]), spec) if spec else str(cost[k][key]),
+                                 f">{len(h)}") for k, h in zip(loops, heads, strict=True))
+        click.echo(f"  {label:<28}{vals}")
+    if tc.weaker:
+        click.echo("  WEAKER CHECK: the table is closed with the family's interpolated plant")
+    if quiet:
+        return
+    fails = [i for i in tc.worst(len(tc.passed)) if not tc.passed[i]][:10]
+    if fails:
+        click.echo("  worst table points:")
+    for i in fails:
+        pt = ", ".join(f"{n}={x:.4g}" for n, x in zip(tc.variable_names, tc.points[i],
+                                                       strict=True))
+        why = ("the family's interpolant passes there: more breakpoints fix it"
+               if tc.compared_passed[tc.reference][i] else tc.why_unfixable(i))
+        click.echo(f"    ({pt}) [{tc.kind[i]}] {tc.reasons[i]} ({why})")
+    click.echo(f"  table check: {tc.seconds:.2f} s")
+    for n in tc.notes:
+        click.echo(f"  note: {n}")
+
+
+def _num(x) -> float:
+    return float("nan") if x is None else float(x)
+
+
 @click.command("check")
 @click.argument("family_file", type=click.Path(dir_okay=False))
 @click.option("--samples", type=click.IntRange(min=0, max=MAX_CHECK_SAMPLES), default=None,
@@ -85,6 +127,11 @@ def print_result(result, quiet: bool = False) -> None:
               help="module:function giving the true plant at a point (overrides the "
                    "design's source for the checks).")
 @design_option
+@click.option("--table", "table_file", type=click.Path(), default=None,
+              help="Also check this exported table as it runs (CSV, JSON, HDF5, the C source "
+                   "(.c, .h or their folder) or an FMU): its lookup at every in-between "
+                   "point, the loop discretized for a discrete table, side by side with the "
+                   "family.")
 @click.option("--json", "as_json", is_flag=True, help="Print the full result as JSON.")
 @click.option("--report", "report_dir", type=click.Path(file_okay=False), default=None,
               help="Write plots and a summary page (Markdown and HTML) into this folder.")
@@ -97,8 +144,9 @@ def print_result(result, quiet: bool = False) -> None:
               help="Let failing leave-one-out predictions fail the check even when the "
                    "in-between points use the true plant (by default they are evidence only).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the verdict lines.")
-def check_command(family_file, samples, sampler, seed, points_file, model, design_file, as_json,
-                  report_dir, jobs, cluster, no_gamma_opt, strict_loo, quiet):
+def check_command(family_file, samples, sampler, seed, points_file, model, design_file,
+                  table_file, as_json, report_dir, jobs, cluster, no_gamma_opt, strict_loo,
+                  quiet):
     """Check the scheduled controller of FAMILY_FILE at frozen in-between points.
 
     Stability, closed-loop norm against gamma, disk and classical margins, the
@@ -109,14 +157,24 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
     model named in the design file given with --design. A model named only in
     the family file is not imported (the file is data); the checks then use the
     family's interpolated plant and say so (a weaker check).
+
+    With --table the exported table is checked too, as the target runs it: the
+    table's multilinear lookup and, for a discrete table, the plant discretized by
+    zero-order hold at the table's sample time (exit code 1 when either fails).
     """
     from ..check import CheckSettings, check_family, spec_for_family
     from ..paths import refuse_output_over_input
     from ..progress import ProgressBar
     from ..store import read_family
 
-    refuse_output_over_input([], [family_file, points_file, design_file], folders=[report_dir])
+    refuse_output_over_input([], [family_file, points_file, design_file, table_file],
+                             folders=[report_dir])
     family = read_family(family_file)
+    table = None
+    if table_file is not None:
+        from ..export.runtime import read_table
+
+        table = read_table(table_file)
     spec = None
     if model is not None or design_file is not None:
         spec = spec_for_family(family, model=model, design=design_file)
@@ -134,6 +192,13 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
     try:
         result = check_family(family, settings, spec=spec, jobs=jobs, cluster=cluster,
                               progress=bar)
+        table_result = None
+        if table is not None:
+            from ..analysis.table_check import check_table
+
+            table_result = check_table(family, table, settings, spec=spec, jobs=jobs,
+                                       cluster=cluster, progress=bar, source=str(table_file))
+            _note_source(table_result, table, family_file)
     finally:
         bar.close()
     result.notes[:0] = code_notes(family, spec, design_file)
@@ -141,12 +206,29 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
         from ..interpolate import ScheduledController
         from ..report import write_report
 
-        write_report(result, family, report_dir, ScheduledController.from_family(family))
+        write_report(result, family, report_dir, ScheduledController.from_family(family),
+                     table_check=table_result)
     if as_json:
-        click.echo(json.dumps(result.to_dict(), indent=1))
+        out = result.to_dict()
+        if table_result is not None:
+            out["table"] = table_result.to_dict()
+        click.echo(json.dumps(out, indent=1))
     else:
         print_result(result, quiet)
+        if table_result is not None:
+            print_table_result(table_result, quiet)
         if report_dir is not None and not quiet:
             click.echo(f"  report: {report_dir}/summary.md")
-    if not result.all_passed:
+    if not result.all_passed or (table_result is not None and not table_result.all_passed):
         sys.exit(1)
+
+
+def _note_source(table_result, table, family_file) -> None:
+    """A note when the table records another source family than ``family_file``."""
+    if not table.source_sha256:
+        return
+    from ..export import file_sha256
+
+    if table.source_sha256 != file_sha256(family_file):
+        table_result.notes.append(f"the table records source family SHA-256 "
+                                  f"{table.source_sha256[:12]}..., not that of {family_file}")

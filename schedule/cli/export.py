@@ -1,15 +1,23 @@
-"""``schedule export FAMILY --format csv|json|hdf5|c|fmu --out PATH``: write a scheduled table."""
+"""``schedule export FAMILY --format csv|json|hdf5|c|fmu --out PATH``: write a scheduled table.
+
+The table is checked as it runs before anything is written
+(:func:`schedule.export.checked.build_checked_table`): breakpoints are added where it
+fails and the family's interpolant passes; a table that still fails is not written
+(exit code 1). ``--no-table-check`` writes the table unchecked.
+"""
 
 from __future__ import annotations
 
 import json
 import os
+import sys
 from pathlib import Path
 
 import click
 
 from ..errors import InputError
 from ..table_files import DEFAULT_PREFIX, FORMATS, folder_target, format_of_suffix, listing
+from .common import code_notes, design_inputs, design_option
 
 
 def export_settings(family) -> dict:
@@ -74,11 +82,12 @@ def _raw_limits(items) -> dict:
     return out
 
 
-def _refuse_overwrite(family_file, formats, out, breakpoints) -> None:
-    """No table may replace the family file or a breakpoints file (see docs/tables.md)."""
+def _refuse_overwrite(family_file, formats, out, breakpoints, others=()) -> None:
+    """No table may replace the family file, a breakpoints file or another input (the
+    design file and what it reads; see docs/tables.md)."""
     from ..paths import refuse_output_over_input
 
-    inputs = [family_file]
+    inputs = [family_file, *others]
     if breakpoints and os.path.isfile(breakpoints):
         inputs.append(breakpoints)
     out = Path(out)
@@ -115,19 +124,40 @@ def _refuse_overwrite(family_file, formats, out, breakpoints) -> None:
               help="Prefix of all C names (format c).")
 @click.option("--no-binary", is_flag=True,
               help="Format fmu: write a source-only unit (no host build).")
+@click.option("--no-table-check", "no_check", is_flag=True,
+              help="Write the table without checking it (by default it is checked as it runs "
+                   "and breakpoints are added where it fails; a failing table is not written).")
+@click.option("--model", default=None,
+              help="module:function giving the true plant for the table check (overrides the "
+                   "design's source).")
+@design_option
+@click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Worker processes for the table check.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def export_command(family_file, formats, out, sample_time, method, prewarp, breakpoints,
-                   prefix, no_binary, as_json):
+                   prefix, no_binary, no_check, model, design_file, jobs, as_json):
     """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md).
 
     Actuator limits ([[limits]] of the design file) and the anti-windup gain go into
     every format.
+
+    The table is checked first as the target runs it (its multilinear lookup at every
+    in-between point; a discrete table in the loop with the plant discretized by
+    zero-order hold), with the design's [check] thresholds. Where it fails and the
+    family's interpolant passes, breakpoints are added (new nodes take the
+    interpolant's value) until it passes; a table that still fails is not written
+    (exit code 1, the worst point named). The true plant comes from --model or the
+    model of the design file given with --design; otherwise the family's interpolated
+    plant (a weaker check).
     """
     from ..export import build_table, file_sha256, write_fmu, write_table
     from ..export.c_source import check_prefix
     from ..export.fmu import model_identifier
     from ..store import read_family
 
+    if no_check and (model is not None or design_file is not None):
+        raise InputError("--model and --design choose the plant of the table check; drop them "
+                         "or drop --no-table-check")
     family = read_family(family_file)
     settings = export_settings(family)
     if not formats:
@@ -145,7 +175,11 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                          "table)")
     if "c" in formats:
         check_prefix(prefix)
-    _refuse_overwrite(family_file, formats, out, breakpoints)
+    spec = None
+    if not no_check:
+        spec = _check_spec(family, model, design_file)
+    _refuse_overwrite(family_file, formats, out, breakpoints,
+                      [design_file, *design_inputs(spec)])
     for fmt in ("c", "fmu"):
         if fmt in formats and sample_time == 0:
             raise InputError(f"format {fmt} needs a discrete table; give --sample-time "
@@ -157,9 +191,31 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
         if named is not None and named != formats[0]:
             raise InputError(f"--out {out} names a {named} file but the format is "
                              f"{formats[0]}; give --out with a matching suffix or -f {named}")
-    table = build_table(family, breakpoints=breakpoints, sample_time=sample_time,
-                        method=method, prewarp=prewarp, source_sha256=file_sha256(family_file),
-                        limits=settings["limits"])
+    build = {"breakpoints": breakpoints, "sample_time": sample_time, "method": method,
+             "prewarp": prewarp, "source_sha256": file_sha256(family_file),
+             "limits": settings["limits"]}
+    checked = None
+    if no_check:
+        table = build_table(family, **build)
+    else:
+        from ..check import CheckSettings
+        from ..export.checked import build_checked_table
+        from ..progress import ProgressBar
+
+        bar = ProgressBar(enabled=False if as_json else None)
+        try:
+            checked = build_checked_table(family, **build, settings=CheckSettings.from_spec(spec),
+                                          spec=spec, jobs=jobs, progress=bar)
+        except InputError as exc:
+            raise InputError(f"the table check could not run: {exc}; or export unchecked with "
+                             "--no-table-check") from None
+        finally:
+            bar.close()
+        checked.check.notes[:0] = code_notes(family, spec, design_file)
+        table = checked.table
+        if not checked.passed:
+            _print_check(checked, as_json, failed=True)
+            sys.exit(1)
     out = Path(out)
     written = []
     notes = []
@@ -202,6 +258,8 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
             "anti_windup": table.anti_windup, "notes": notes
             + [table.extra[k] for k in ("anti_windup_note",) if table.extra.get(k)],
             "warnings": [table.extra[k] for k in ("sample_time_note",) if table.extra.get(k)]}
+    if checked is not None:
+        info["table_check"] = checked.to_dict()
     for warning in info["warnings"]:
         click.echo(f"warning: {warning}", err=True)
     if as_json:
@@ -226,8 +284,68 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
                        + (" (anti-windup)" if table.anti_windup else ""))
     for note in info["notes"]:
         click.echo(f"note: {note}")
+    if checked is not None:
+        _print_check(checked, False, failed=False)
+    else:
+        click.echo("table check: skipped (--no-table-check)")
     for p in written:
         click.echo(f"wrote {p}")
+
+
+def _check_spec(family, model, design_file):
+    """The design behind the table check's plant (None: the interpolated plant)."""
+    from ..check import spec_for_family
+
+    if model is not None or design_file is not None:
+        return spec_for_family(family, model=model, design=design_file)
+    if family.design_text:
+        try:
+            return spec_for_family(family)
+        except InputError:
+            return None
+    return None
+
+
+def _print_check(checked, as_json: bool, failed: bool) -> None:
+    """The table check's verdict, what it cost, the breakpoints added, the worst point."""
+    tc = checked.check
+    s = tc.summary()
+    if as_json:
+        if failed:
+            click.echo(json.dumps({"written": False, "table_check": checked.to_dict()},
+                                  indent=1))
+        return
+    how = (f"discrete loop, T = {tc.sample_time:g} s, plant by zero-order hold"
+           if tc.discrete else "continuous loop")
+    plant = "interpolated plant (weaker)" if tc.weaker else "true plant"
+    click.echo(f"table check: {'FAIL' if failed else 'PASS'}, {s['failed']} of {s['points']} "
+               f"points fail ({how}, {plant}; {tc.criterion.describe()})")
+    cost = tc.cost()
+    a, b = cost["interpolant"], cost["table"]
+    click.echo(f"  worst norm/gamma {_n(b['max_ratio'])} (interpolant {_n(a['max_ratio'])}); "
+               f"min input disk margins {_n(b['min_input_gain_db'], '.3g')} dB / "
+               f"{_n(b['min_input_phase_deg'], '.3g')} deg (interpolant "
+               f"{_n(a['min_input_gain_db'], '.3g')} dB / {_n(a['min_input_phase_deg'], '.3g')}"
+               f" deg); {tc.seconds:.2f} s per check, {len(checked.rounds)} check(s)")
+    for name, values in checked.added.items():
+        click.echo(f"  added {len(values)} breakpoint(s) for {name}: "
+                   + ", ".join(f"{x:.6g}" for x in values))
+    if checked.added:
+        shape = " x ".join(str(n) for n in checked.rounds[-1]["shape"].values())
+        click.echo(f"  table grown to {shape} nodes")
+    for n in tc.notes:
+        click.echo(f"  note: {n}")
+    if failed:
+        click.echo(f"  stopped: {checked.stopped}")
+        click.echo(f"  worst point: {checked.worst_point()}")
+        click.echo("FAIL: nothing written (export unchecked with --no-table-check)")
+
+
+def _n(x, spec: str = ".4g") -> str:
+    if x is None:
+        return "-"
+    x = float(x)
+    return format(x, spec) if x == x and abs(x) != float("inf") else str(x)
 
 
 def _limit(value) -> str:

@@ -37,11 +37,17 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
                    strict_loo, as_json, quiet):
     """Refine FAMILY_FILE: synthesize new points where frozen-point checks fail, refit, recheck.
 
+    A rectangular family gains whole breakpoints (it stays rectangular, keeps its
+    interpolant kind and the checks of its cell centres and edge midpoints); a
+    scattered one gains the proposed points. The points added are printed. A
+    refined family whose check is worse than its input's is not written (exit
+    code 1, with the comparison).
+
     The plant at new points comes from --model, or from the model named in the
     design file given with --design; a model named only inside the family file
     is not imported (the file is data). Exit code 0 when the refined family
     passes every check, 1 when checks still fail (budget spent or nothing left
-    to add), 2 for bad input.
+    to add) or the refined family would be worse, 2 for bad input.
     """
     from ..check import CheckSettings, spec_for_family
     from ..paths import refuse_output_over_input
@@ -59,15 +65,20 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
     settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False,
                                        loo_gates=True if strict_loo else None)
     outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster)
-    write_family(out, outcome.family)
+    written = not outcome.worse
+    if written:
+        write_family(out, outcome.family)
     last = outcome.rounds[-1]
+    names = last.variable_names
     if as_json:
         click.echo(json.dumps({
-            "passed": outcome.passed, "stopped": outcome.stopped,
+            "passed": outcome.passed, "stopped": outcome.stopped, "written": written,
             "rounds": [r.summary() for r in outcome.rounds],
-            "added": [dict(zip(last.variable_names, map(float, r), strict=True))
-                      for r in outcome.added],
-            "out": str(out)}, indent=1))
+            "added": [dict(zip(names, map(float, r), strict=True)) for r in outcome.added],
+            "added_breakpoints": outcome.added_breakpoints,
+            "rectangular": outcome.family.breakpoints is not None,
+            "comparison": outcome.comparison.to_dict(),
+            "out": str(out) if written else None}, indent=1))
     else:
         if not quiet:
             for i, r in enumerate(outcome.rounds):
@@ -75,6 +86,25 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
                 click.echo(f"round {i}: {s['failed']} of {s['points']} points fail "
                            f"(design points {int(np.sum(r.kind == 'grid'))})")
             click.echo(f"added {len(outcome.added)} point(s); stopped: {outcome.stopped}")
-        click.echo(f"{'PASS' if outcome.passed else 'FAIL'}: refined family written to {out}")
-    if not outcome.passed:
+            for n, values in outcome.added_breakpoints.items():
+                click.echo(f"  new breakpoints of {n}: " + ", ".join(f"{x:.6g}" for x in values))
+            for r in outcome.added[:50]:
+                click.echo("  added (" + ", ".join(f"{n}={x:.6g}" for n, x in
+                                                   zip(names, r, strict=True)) + ")")
+            if len(outcome.added) > 50:
+                click.echo(f"  ... and {len(outcome.added) - 50} more (--json lists all)")
+            if outcome.family.breakpoints is not None:
+                shape = " x ".join(str(len(b)) for b in outcome.family.breakpoints)
+                click.echo(f"  the family stays rectangular: {shape} breakpoints")
+        if not quiet or not written:
+            click.echo("comparison with the input family:")
+            for line in outcome.comparison.lines(names):
+                click.echo(line)
+        if written:
+            click.echo(f"{'PASS' if outcome.passed else 'FAIL'}: refined family written to "
+                       f"{out}")
+        else:
+            click.echo(f"FAIL: the refined family is worse than {family_file}; nothing "
+                       "written")
+    if not outcome.passed or not written:
         sys.exit(1)

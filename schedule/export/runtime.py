@@ -135,8 +135,15 @@ def _ordered_matvec(*pairs) -> np.ndarray:
 
 
 def read_table(path: str | os.PathLike) -> ScheduledTable:
-    """Read a CSV, JSON or HDF5 table; the format comes from the suffix or the content."""
+    """Read a table in any format `schedule export` writes: CSV, JSON, HDF5, the C source
+    (``PREFIX_table.c`` or ``.h``, or the folder holding them) or an FMU (its C sources,
+    :mod:`schedule.export.c_reader`; nothing is compiled or run). The format comes from
+    the suffix or the content."""
+    from .c_reader import read_c_table, read_fmu_table
+
     path = str(path)
+    if os.path.isdir(path):
+        return read_c_table(path)
     if not os.path.isfile(path):
         raise InputError(f"table file {path} does not exist; export one with `schedule export`")
     from .csv_table import read_csv_table
@@ -144,18 +151,21 @@ def read_table(path: str | os.PathLike) -> ScheduledTable:
     from .json_table import read_json_table
     ext = os.path.splitext(path)[1].lower()
     readers = {".csv": read_csv_table, ".json": read_json_table, ".h5": read_hdf5_table,
-               ".hdf5": read_hdf5_table}
+               ".hdf5": read_hdf5_table, ".c": read_c_table, ".h": read_c_table,
+               ".fmu": read_fmu_table}
     if ext in readers:
         return readers[ext](path)
     with open(path, "rb") as f:
         head = f.read(8)
     if head.startswith(b"\x89HDF"):
         return read_hdf5_table(path)
+    if head.startswith(b"PK\x03\x04"):
+        return read_fmu_table(path)
     if head.lstrip().startswith(b"{"):
         return read_json_table(path)
     if head.startswith(b"#"):
         return read_csv_table(path)
-    raise InputError(f"{path}: unknown table format; use a .csv, .json or .h5 table")
+    raise InputError(f"{path}: unknown table format; use a .csv, .json, .h5, .c or .fmu table")
 
 
 class TableController:
