@@ -223,6 +223,8 @@ class DesignSpec:
     check: CheckSpec = field(default_factory=CheckSpec)
     export: ExportSpec = field(default_factory=ExportSpec)
     name: str = "<design text>"
+    #: [rate_certificate]: a schedule.analysis.lpv_certificate.CertificateSettings, or None
+    rate_certificate: Any = None
 
     @property
     def variable_names(self) -> tuple[str, ...]:
@@ -376,7 +378,7 @@ def _first_duplicate(items) -> Any:
 # --------------------------------------------------------------------------- entry points
 ARRANGEMENTS = ("mixed_sensitivity", "generalized")
 TOP_KEYS = ("title", "variable", "source", "grid", "channels", "weights", "gamma",
-            "interpolation", "check", "export")
+            "interpolation", "check", "export", "rate_certificate")
 
 
 def load_design(path: str | os.PathLike) -> DesignSpec:
@@ -444,9 +446,12 @@ def parse_design(text: str, base_dir: str | os.PathLike, name: str = "<design te
     interp = _parse_interpolation(r, r.table(data.get("interpolation", {}), "interpolation"))
     check = _parse_check(r, r.table(data.get("check", {}), "check"))
     export = _parse_export(r, r.table(data.get("export", {}), "export"))
+    rates = (_parse_rate_certificate(r, r.table(data["rate_certificate"], "rate_certificate"),
+                                     variables) if "rate_certificate" in data else None)
     return DesignSpec(text=text, base_dir=base, title=title, variables=variables, source=source,
                       grid=grid, channels=channels, weights=weights, gamma=gamma,
-                      interpolation=interp, check=check, export=export, name=name)
+                      interpolation=interp, check=check, export=export, name=name,
+                      rate_certificate=rates)
 
 
 # --------------------------------------------------------------------------- the tables
@@ -824,6 +829,64 @@ def _parse_export(r: _Reader, t: dict) -> ExportSpec:
                      "choose a lower prewarp frequency or a shorter sample_time")
     return ExportSpec(sample_time=sample_time, method=method, prewarp=prewarp,
                       formats=formats if formats is not None else ExportSpec().formats)
+
+
+def _parse_rate_certificate(r: _Reader, t: dict, variables):
+    """[rate_certificate] -> schedule.analysis.lpv_certificate.CertificateSettings.
+
+    The basis expressions are parsed (never evaluated as code) by
+    schedule.analysis.expression; the keys and defaults are the fields of
+    CertificateSettings (one list of them).
+    """
+    from dataclasses import fields
+
+    from .analysis.basis import parse_basis
+    from .analysis.lpv_certificate import CertificateSettings
+
+    k = "rate_certificate"
+    allowed = tuple(f.name for f in fields(CertificateSettings))
+    r.keys(t, k, allowed)
+    names = tuple(v.name for v in variables)
+    kw: dict = {}
+    if "basis" in t:
+        basis = t["basis"]
+        if not isinstance(basis, list) or not all(isinstance(x, str) for x in basis):
+            raise r.fail(_join(k, "basis"), f"expected a list of expressions, got {_tname(basis)}",
+                         'write ["1", "1/rope_length", ...]')
+        try:
+            parse_basis(basis, names)
+        except InputError as exc:
+            raise r.fail(_join(k, "basis"), str(exc), "fix the expression") from None
+        kw["basis"] = tuple(basis)
+    if "rates" in t:
+        rates = r.table(t["rates"], _join(k, "rates"))
+        for n in rates:
+            if n not in names:
+                raise r.fail(_join(k, f"rates.{n}"), f"'{n}' is not a scheduling variable",
+                             f"use one of {', '.join(names)}")
+        kw["rates"] = tuple((n, r.number(rates, _join(k, "rates"), n, positive=True))
+                            for n in rates)
+    for key in ("gain", "witness"):
+        if key in t:
+            if not isinstance(t[key], bool):
+                raise r.fail(_join(k, key), f"expected true or false, got {_tname(t[key])}",
+                             "write true or false")
+            kw[key] = t[key]
+    for key, lo in (("dense", 1), ("samples", 0), ("max_rounds", 1), ("cuts", 1), ("curve", 0)):
+        if key in t:
+            kw[key] = r.integer(t, k, key, 0, minimum=lo)
+    if "tolerance" in t:
+        kw["tolerance"] = r.number(t, k, "tolerance", positive=True)
+    if "solver" in t:
+        from .analysis.lmi import SOLVERS
+
+        kw["solver"] = r.choice(t, k, "solver", "clarabel", SOLVERS)
+    out = CertificateSettings(**kw)
+    try:
+        out.validate(names)
+    except InputError as exc:
+        raise r.fail(k, str(exc), "see docs/design-file.md") from None
+    return out
 
 
 # --------------------------------------------------------------------------- against a plant

@@ -11,7 +11,9 @@ Figures, in our own visual style (:data:`STYLE`):
   phase) over the envelope;
 - ``controller_sv.png``: the controller's largest singular value over
   frequency along the diagonal line from the lower to the upper corner of
-  the envelope.
+  the envelope;
+- ``gain_vs_rate.png``: the certified induced-L2 gain bound gamma(nu) against
+  the scheduling rate (when the rate certificate was computed).
 
 Every file is written to a temporary name in the target folder and renamed,
 so a failed run never leaves a half-written file.
@@ -242,6 +244,35 @@ def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path)
     return path
 
 
+def _gain_rate_plot(plt, result: CheckResult, out: Path) -> Path | None:
+    """gamma(nu): the certified gain bound against the rate, one panel per variable."""
+    rc = getattr(result, "rate_certificate", None)
+    curves = {} if rc is None else {n: c for n, c in rc.gain_curve.items() if len(c)}
+    if not curves:
+        return None
+    fig, axes = plt.subplots(1, len(curves), figsize=(5.2 * len(curves), 3.8), squeeze=False)
+    units = dict(zip(rc.names, rc.units, strict=True))
+    for ax, (name, curve) in zip(axes[0], curves.items(), strict=True):
+        r = np.array([a for a, _ in curve], float)
+        g = np.array([b for _, b in curve], float)
+        ax.plot(r, g, marker="o", color=INK, label="certified bound gamma(nu)")
+        ax.axhline(rc.frozen_gain, color=DESIGN, linestyle="--", linewidth=1.0,
+                   label="largest frozen H-infinity norm")
+        w = rc.witness
+        if w is not None and np.isfinite(w.observed_gain.get(name, np.nan)) and r.size:
+            ax.plot([r[-1]], [w.observed_gain[name]], marker="v", color=ACCENT, linestyle="none",
+                    label="observed in simulation (witness)")
+        unit = units.get(name, "")
+        ax.set_xlabel(f"|d {name}/dt| [{unit}/s]" if unit else f"|d {name}/dt| [1/s]")
+        ax.set_ylabel("induced L2 gain")
+        ax.set_title(f"Gain bound while {name} moves")
+        ax.legend(loc="best")
+    path = out / "gain_vs_rate.png"
+    _save_figure(fig, path)
+    plt.close(fig)
+    return path
+
+
 def _fmt(x, spec: str = ".4g") -> str:
     x = float(x)
     if np.isnan(x):
@@ -306,6 +337,8 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None) -> s
         for n, w, a, b in zip(result.rate.names, result.rate.worst, result.rate.single,
                               result.rate.joint, strict=True):
             L.append(f"| {n} | {_fmt(w)} | {_fmt(a)} | {_fmt(b)} |")
+    if getattr(result, "rate_certificate", None) is not None:
+        L += ["", "## Certified scheduling rates", ""] + result.rate_certificate.markdown_lines()
     L += ["", "## Proposed refinement", ""]
     if result.proposals is None or len(result.proposals) == 0:
         L.append("None: no in-between point fails.")
@@ -429,6 +462,9 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
         c = _controller_sv_plot(plt, result, controller, family, out)
         if c is not None:
             figures.append(c)
+        g = _gain_rate_plot(plt, result, out)
+        if g is not None:
+            figures.append(g)
     md = markdown_summary(result, [str(f) for f in figures])
     md_path = out / "summary.md"
     html_path = out / "summary.html"

@@ -1,0 +1,14 @@
+"""Analysis of the scheduled loop beyond frozen points.
+
+- :mod:`.expression`: safe arithmetic expressions of the scheduling variables
+  (basis functions named in a design file), with exact derivatives;
+- :mod:`.basis`: the basis of a parameter-dependent Lyapunov matrix;
+- :mod:`.lmi`: the rate-bounded LMIs, assembled for a conic solver and
+  checked at any points;
+- :mod:`.lpv_certificate`: certified scheduling rates and gain bounds (the
+  cutting-plane loop, bisection, the family driver);
+- :mod:`.witness`: parameter trajectories that show how far the certificate is
+  from what a simulation of the loop observes.
+
+cvxpy and clarabel are imported only inside the functions that solve LMIs.
+"""
