@@ -333,7 +333,7 @@ def _kron_batch(X: np.ndarray, Y: np.ndarray) -> np.ndarray:
 
 
 def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
-              margin: float = 1.0, solver: str = "clarabel", tolerance: float = 1e-7,
+              margin: float = 1.0, solver: str = "clarabel", tolerance: float = 1e-6,
               max_iterations: int = 200) -> LmiSolution:
     """Solve the imposed LMIs for P_k (and the smallest gamma).
 

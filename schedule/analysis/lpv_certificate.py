@@ -103,9 +103,9 @@ class CertificateSettings:
     dense: int = 6
     samples: int = 256
     max_rounds: int = 8
-    cuts: int = 24
+    cuts: int = 32
     tolerance: float = 0.1
-    curve: int = 4
+    curve: int = 3
     solver: str = "clarabel"
     witness: bool = True
 
@@ -167,8 +167,10 @@ class RateCertificate:
     certified_rate : {variable: largest certified |dp/dt| with the others frozen}
         (inf: any rate; 0: not even the frozen loop is certified with this basis).
     joint_rate : {variable: rate} certified with all of them moving at once.
-    gain_bound : {variable: gamma at certified_rate}, and "joint".
-    gain_curve : {variable: ((rate, gamma), ...)} from 0 to the certified rate.
+    gain_bound : {variable: gamma at certified_rate (at the target rate when any rate
+        is certified)}, and "joint" at joint_rate.
+    gain_curve : {variable: ((rate, gamma), ...)} from 0 to that rate (nan where the
+        gain could not be certified).
     frozen_gain : largest frozen H-infinity norm over the dense points (a lower
         bound of every gamma(nu)).
     checks : {variable or "joint": the RateAttempt that certified it}.
@@ -567,10 +569,7 @@ class Certifier:
         """
         direction = np.asarray(direction, dtype=float)
         tol = float(self.settings.tolerance)
-        frozen = self.attempt(0.0 * direction, gain)
-        if not frozen.certified:
-            return 0.0, None, frozen
-        lo, lo_att, hi, hi_att = 0.0, frozen, np.inf, None
+        lo, lo_att, hi, hi_att = 0.0, None, np.inf, None
         cap = self._cap(direction)
         c = float(start)
         while True:
@@ -588,16 +587,18 @@ class Certifier:
                     return float("inf"), a, None
             else:
                 hi, hi_att = c, a
-            if np.isfinite(hi) and (lo > 0 or hi < cap * 1e-9):
-                if lo <= 0:
-                    return 0.0, frozen, hi_att
+            if np.isfinite(hi) and lo > 0:
                 if hi / lo <= 1.0 + tol:
                     return lo, lo_att, hi_att
                 c = float(np.sqrt(lo * hi))
-            elif not np.isfinite(hi):
-                c = 4.0 * lo
-            else:
+            elif np.isfinite(hi):  # nothing certified yet: go down
                 c = c / 4.0
+                if c < cap * 1e-9:
+                    frozen = self.attempt(0.0 * direction, gain)
+                    return 0.0, (frozen if frozen.certified else None), (
+                        hi_att if frozen.certified else frozen)
+            else:
+                c = 4.0 * lo
 
     def _cap(self, direction) -> float:
         """A scale beyond which rates count as 'any': every moving variable crosses its range
@@ -678,7 +679,9 @@ def certify_loop(loop_at: LoopFunction, variables: Sequence[SchedulingVariable],
             say(f"rate certificate: gain bound gamma(nu) for {name}")
             j = names.index(name)
             top = certified[name]
-            rates_ = ([0.0] if s.curve <= 1 or not np.isfinite(top) or top <= 0 else
+            if not np.isfinite(top):  # any rate: the curve up to the target, if there is one
+                top = targets.get(name, 0.0)
+            rates_ = ([0.0] if s.curve <= 1 or top <= 0 else
                       list(np.linspace(0.0, top, int(s.curve))))
             curve = []
             for r in rates_:

@@ -195,6 +195,7 @@ class WitnessResult:
         rate (a lower bound of the true worst case)} and its trajectory.
     searched_up_to : {variable: the largest rate tried}.
     trajectories : number of simulated trajectories.
+    unstable_path : {variable: the :class:`Trajectory` found unstable} (not in JSON).
     """
 
     unstable_rate: dict
@@ -203,6 +204,7 @@ class WitnessResult:
     observed_trajectory: dict
     searched_up_to: dict
     trajectories: int
+    unstable_path: dict
 
     def to_dict(self) -> dict:
         def f(x):
@@ -258,6 +260,7 @@ def search_witness(loop_at: Callable, variables: Sequence[SchedulingVariable],
     lo = np.array([v.lower for v in variables], float)
     hi = np.array([v.upper for v in variables], float)
     unstable, unstable_traj, observed, observed_traj, searched = {}, {}, {}, {}, {}
+    paths: dict = {}
     count = 0
     for name, rate in certified.items():
         if name not in names:
@@ -272,7 +275,7 @@ def search_witness(loop_at: Callable, variables: Sequence[SchedulingVariable],
                 b[j] = c
                 bases.append(b)
         start = float(rate) if np.isfinite(rate) and rate > 0 else 0.01 * (hi[j] - lo[j])
-        best_rate, best_desc = np.inf, ""
+        best_rate, best_desc, best_path = np.inf, "", None
         best_gain, gain_desc = 0.0, ""
         top = start
         for base in bases:
@@ -313,14 +316,16 @@ def search_witness(loop_at: Callable, variables: Sequence[SchedulingVariable],
                         mult = floquet_multiplier(path, traj)
                         count += 1
                         if mult > 1.0 + 1e-6 and traj.rate < best_rate:
-                            best_rate = traj.rate
+                            best_rate, best_path = traj.rate, traj
                             best_desc = (f"{traj.describe(names)}: Floquet multiplier "
                                          f"{mult:.4g} per period {traj.period:.4g} s")
                 top = max(top, r)
                 r *= float(growth)
         unstable[name] = best_rate
+        if best_path is not None:
+            paths[name] = best_path
         unstable_traj[name] = best_desc
         observed[name] = best_gain if gain else float("nan")
         observed_traj[name] = gain_desc
         searched[name] = top
-    return WitnessResult(unstable, unstable_traj, observed, observed_traj, searched, count)
+    return WitnessResult(unstable, unstable_traj, observed, observed_traj, searched, count, paths)
