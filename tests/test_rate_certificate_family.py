@@ -86,9 +86,11 @@ def test_check_hook_certifies_the_target_and_reports_beside_the_frozen_bound(che
     curve = rc.gain_curve["stiffness"]
     assert curve[0][0] == 0.0 and curve[-1][0] == pytest.approx(rate)
     assert all(g >= rc.frozen_gain * (1 - 1e-6) for _, g in curve)
-    # the frozen norms come from the check's own numbers: the largest closed-loop norm at the
-    # check points is at most the largest frozen norm over the (denser) certificate points
-    assert np.nanmax(checked.values["norm"]) <= rc.frozen_gain * (1 + 1e-3)
+    # the frozen norms agree with the check's own: the largest closed-loop norm at the check
+    # points (true plant; leave-one-out predictions are another controller) is at most the
+    # largest frozen norm over the (denser) certificate points
+    true = checked.kind != "leave_one_out"
+    assert np.max(checked.values["norm"][true]) <= rc.frozen_gain * (1 + 1e-3)
     w = rc.witness
     assert w is not None and w.trajectories > 0
     # a certified rate cannot be destabilizing: the witness finds nothing unstable below it

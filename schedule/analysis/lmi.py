@@ -334,7 +334,7 @@ def _kron_batch(X: np.ndarray, Y: np.ndarray) -> np.ndarray:
 
 def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
               margin: float = 1.0, solver: str = "clarabel", tolerance: float = 1e-6,
-              max_iterations: int = 200) -> LmiSolution:
+              max_iterations: int = 100) -> LmiSolution:
     """Solve the imposed LMIs for P_k (and the smallest gamma).
 
     Stability (``gain=False``): find P(p) with ``L(p_i, v_i) <= -margin I`` at every

@@ -400,7 +400,9 @@ class Certifier:
         self.dF = np.einsum("ikj,kl->ilj", dF, Ri)
         self.span = span
         self.n_start = int(n_imposed)
-        self.cuts: list[tuple[int, tuple]] = []
+        # cut points (point index, vertex signs), kept apart for the stability and the gain
+        # LMIs: the points where one is tight need not be those where the other is
+        self.pools: dict[bool, list[tuple[int, tuple]]] = {False: [], True: []}
         self.gain_margin = 1e-4 * max(float(np.max(self.gamma_frozen)), 1e-12)
         self.solves = 0
         self.log: Callable[[str], None] = lambda msg: None
@@ -424,13 +426,18 @@ class Certifier:
         rates = np.asarray(rates, dtype=float)
         return self.signs(rates) * rates
 
-    def _cones_for(self, rates) -> tuple[np.ndarray, np.ndarray]:
+    @property
+    def cuts(self) -> list:
+        """All cut points so far (stability and gain)."""
+        return self.pools[False] + self.pools[True]
+
+    def _cones_for(self, rates, gain: bool = False) -> tuple[np.ndarray, np.ndarray]:
         """Imposed (point index, signed vertex) pairs for a box: every start point at every
         vertex, plus the cuts so far (their signs mapped onto this box)."""
         signs = self.signs(rates)
         moving = np.asarray(rates) > 0
         pairs = {(i, tuple(sg)) for i in range(self.n_start) for sg in signs}
-        for i, sg in self.cuts:
+        for i, sg in self.pools[bool(gain)]:
             pairs.add((i, tuple(np.where(moving, sg, 1.0))))
         pairs = sorted(pairs)
         idx = np.array([i for i, _ in pairs], dtype=int)
@@ -456,7 +463,7 @@ class Certifier:
         last = None
         first = 0.0
         for rnd in range(1, int(s.max_rounds) + 1):
-            I, V = self._cones_for(rates)
+            I, V = self._cones_for(rates, gain)
             t0 = time.perf_counter()
             sol = solve_lmi(A[I], Fb[I], dFb[I], V, B[I], C[I], D[I], gain=gain,
                             margin=margin, solver=s.solver)
@@ -493,7 +500,7 @@ class Certifier:
                 return self._fail(rates, rnd, f"the LMI fails at imposed points (worst relative "
                                   f"eigenvalue {worst[k]:.2e} at ({self._pt(k)})): the "
                                   f"solver's answer ({sol.status}) is not accurate enough", last)
-            self.cuts.extend(new)
+            self.pools[bool(gain)].extend(new)
             first = worst[k] if rnd == 1 else first
             if rnd >= 3 and worst[k] > 0.25 * first:
                 return self._fail(rates, rnd, f"the cutting planes do not converge (worst "
