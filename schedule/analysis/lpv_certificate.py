@@ -10,14 +10,16 @@ Yang, Packard and Becker 1996; Apkarian and Adams 1998). The LMIs are in
 
 How a rate box is certified (:meth:`Certifier.attempt`):
 
-1. impose the LMIs (margin mu) at a set of points (the design points and the
-   cell centres to start with) and every vertex of the rate box, and solve;
+1. impose the LMIs at a set of points (the design points to start with) and
+   every vertex of the rate box, and solve (stability: the largest margin;
+   gain: the smallest gamma);
 2. check the P(p) found a posteriori on a much denser set of points (and at
    the imposed ones): the largest eigenvalue of L(p, v) over the vertices,
    relative to the size of its terms, must be negative, and P(p) positive
    definite, at every point;
-3. if the check fails, add the worst violating points to the imposed set and
-   solve again (a cutting-plane loop), up to ``max_rounds`` times.
+3. if the check fails, add the worst violating points (with their violated
+   vertices) to the imposed set and solve again (a cutting-plane loop), up to
+   ``max_rounds`` times, or until the violation stops shrinking.
 
 Only what step 2 confirms is certified; the solver's own status is never
 trusted (a gridded LMI holds only where imposed: on an 8 x 4 crane grid the
@@ -30,7 +32,10 @@ The largest certified rate of each variable alone (the others frozen) and of
 all of them together (one common scaling of reference rates) comes from a
 geometric bisection on the rate, with the imposed points kept across steps
 (they remain valid cuts). Feasibility is monotone: a P(p) certified at a rate
-box also certifies every smaller box (the LMI is affine in the rate).
+box also certifies every smaller box (the LMI is affine in the rate), and a
+certified P(p) is pushed to the largest rate it still certifies at every
+check point (:meth:`Certifier.extend`, a generalized eigenvalue per point).
+If a constant P passes, every rate is certified (quadratic stability).
 
 Scaling: the states are first balanced (one constant diagonal scaling,
 :func:`schedule.rate.balancing_scaling`) and then whitened by the mean of the
@@ -100,7 +105,7 @@ class CertificateSettings:
     basis: tuple[str, ...] | None = None
     rates: tuple[tuple[str, float], ...] = ()
     gain: bool = True
-    dense: int = 6
+    dense: int = 12
     samples: int = 256
     max_rounds: int = 8
     cuts: int = 32
@@ -169,8 +174,8 @@ class RateCertificate:
     joint_rate : {variable: rate} certified with all of them moving at once.
     gain_bound : {variable: gamma at certified_rate (at the target rate when any rate
         is certified)}, and "joint" at joint_rate.
-    gain_curve : {variable: ((rate, gamma), ...)} from 0 to that rate (nan where the
-        gain could not be certified).
+    gain_curve : {variable: ((rate, gamma), ...)} from 0 to that rate, through the
+        target rate when there is one (nan where the gain could not be certified).
     frozen_gain : largest frozen H-infinity norm over the dense points (a lower
         bound of every gamma(nu)).
     checks : {variable or "joint": the RateAttempt that certified it}.
@@ -382,8 +387,6 @@ class Certifier:
         self.B = Ti @ B
         self.C = C @ T
         self.D = D
-        # stability margin: the size of the frozen solutions' margin (P near I, see the docs)
-        self.margin = 0.5 / float(np.max(size))
         self.gamma_frozen, _ = h_infinity_norm_many(A, B, C, D) if B.shape[2] and C.shape[1] \
             else (np.zeros(M), None)
         F, dF = basis.evaluate(self.points)
@@ -459,7 +462,7 @@ class Certifier:
         signs = self.signs(rates)
         verts = signs * rates
         A, B, C, D = self.A, self.B, self.C, self.D
-        margin = self.gain_margin if gain else self.margin
+        margin = self.gain_margin if gain else 0.0
         last = None
         first = 0.0
         for rnd in range(1, int(s.max_rounds) + 1):
@@ -578,15 +581,9 @@ class Certifier:
         tol = float(self.settings.tolerance)
         lo, lo_att, hi, hi_att = 0.0, None, np.inf, None
         cap = self._cap(direction)
-        c = float(start)
+        c = min(float(start), cap)
+        downs = 0
         while True:
-            if c >= cap:
-                const = self._constant_P(direction, gain)
-                if const is not None:
-                    return float("inf"), const, None
-                if lo >= cap:
-                    return lo, lo_att, None
-                c = cap
             a = self.attempt(c * direction, gain)
             if a.certified:
                 lo, lo_att = max(c, self.extend(a, direction, gain)), a
@@ -594,18 +591,25 @@ class Certifier:
                     return float("inf"), a, None
             else:
                 hi, hi_att = c, a
+                if lo_att is None and downs == 0:  # nothing certified: is the frozen loop?
+                    frozen = self.attempt(0.0 * direction, gain)
+                    if not frozen.certified:
+                        return 0.0, None, frozen
+                    lo, lo_att = min(self.extend(frozen, direction, gain), hi), frozen
+            if lo >= cap:
+                const = self._constant_P(direction, gain)
+                return (float("inf"), const, None) if const is not None else (lo, lo_att, None)
             if np.isfinite(hi) and lo > 0:
                 if hi / lo <= 1.0 + tol:
                     return lo, lo_att, hi_att
                 c = float(np.sqrt(lo * hi))
-            elif np.isfinite(hi):  # nothing certified yet: go down
+            elif np.isfinite(hi):  # only the frozen loop is certified: look lower, a few times
+                downs += 1
+                if downs > 6:
+                    return lo, lo_att, hi_att
                 c = c / 4.0
-                if c < cap * 1e-9:
-                    frozen = self.attempt(0.0 * direction, gain)
-                    return 0.0, (frozen if frozen.certified else None), (
-                        hi_att if frozen.certified else frozen)
             else:
-                c = 4.0 * lo
+                c = min(4.0 * lo, cap)
 
     def _cap(self, direction) -> float:
         """A scale beyond which rates count as 'any': every moving variable crosses its range
@@ -669,8 +673,12 @@ def certify_loop(loop_at: LoopFunction, variables: Sequence[SchedulingVariable],
         if ok is not None:
             checks[name] = ok
         reasons[name] = bad.reason if bad is not None else ""
-    ref = np.array([targets.get(n, certified.get(n, 0.0)) for n in names])
-    ref = np.where(np.isfinite(ref), ref, 0.0)
+    # reference rates of the joint box: the targets, else the rates certified alone (1 % of
+    # the range per second for a variable certified at any rate or at none)
+    ref = np.array([targets.get(n, certified.get(n, 0.0)) if n in alone else 0.0
+                    for n in names])
+    ref = np.where(np.isfinite(ref) & (ref > 0), ref, 0.01 * cert.span)
+    ref = np.where([n in alone for n in names], ref, 0.0)
     joint = {n: 0.0 for n in alone}
     if len(alone) > 1 and np.any(ref > 0):
         say("rate certificate: all variables moving together")
@@ -690,6 +698,12 @@ def certify_loop(loop_at: LoopFunction, variables: Sequence[SchedulingVariable],
                 top = targets.get(name, 0.0)
             rates_ = ([0.0] if s.curve <= 1 or top <= 0 else
                       list(np.linspace(0.0, top, int(s.curve))))
+            if 0 < targets.get(name, 0.0) < top:  # the target itself, in place of the nearest
+                k = int(np.argmin(np.abs(np.array(rates_[1:-1] or [np.inf]) - targets[name])))
+                if len(rates_) > 2:
+                    rates_[1 + k] = targets[name]
+                else:
+                    rates_.insert(1, targets[name])
             curve = []
             for r in rates_:
                 box = np.zeros(len(names))

@@ -193,7 +193,8 @@ class WitnessResult:
     unstable_trajectory : {variable: its description, Floquet multiplier}.
     observed_gain : {variable: largest energy-ratio gain found at the certified
         rate (a lower bound of the true worst case)} and its trajectory.
-    searched_up_to : {variable: the largest rate tried}.
+    searched_up_to : {variable: the largest rate of the trajectories tried for
+        instability (their amplitude is limited by the envelope)}.
     trajectories : number of simulated trajectories.
     unstable_path : {variable: the :class:`Trajectory` found unstable} (not in JSON).
     """
@@ -277,7 +278,7 @@ def search_witness(loop_at: Callable, variables: Sequence[SchedulingVariable],
         start = float(rate) if np.isfinite(rate) and rate > 0 else 0.01 * (hi[j] - lo[j])
         best_rate, best_desc, best_path = np.inf, "", None
         best_gain, gain_desc = 0.0, ""
-        top = start
+        top = 0.0
         for base in bases:
             path = path_loop(loop_at, base, j, lo[j], hi[j], path_samples)
             A, B, C, D = path(base)
@@ -315,11 +316,11 @@ def search_witness(loop_at: Callable, variables: Sequence[SchedulingVariable],
                         traj = Trajectory(base, j, base[j], amp, om, wave)
                         mult = floquet_multiplier(path, traj)
                         count += 1
+                        top = max(top, traj.rate)
                         if mult > 1.0 + 1e-6 and traj.rate < best_rate:
                             best_rate, best_path = traj.rate, traj
                             best_desc = (f"{traj.describe(names)}: Floquet multiplier "
                                          f"{mult:.4g} per period {traj.period:.4g} s")
-                top = max(top, r)
                 r *= float(growth)
         unstable[name] = best_rate
         if best_path is not None:

@@ -110,6 +110,29 @@ def crane(family_path: str | None, full: bool) -> None:
           f"{t_chk_g:.3f} s; check / solve time {t_chk / t_st:.4f} (stability), "
           f"{t_chk_g / t_gn:.4f} (gain); per check point {1e6 * t_chk / len(pts):.0f} us vs per "
           f"imposed cone {1e6 * t_st / cones:.0f} us")
+    # the failure mode of gridded LMIs (seen while filing the issue): imposed on an 8 x 4 grid
+    # at 1 m/s only, checked on a 40 x 12 grid
+    lo = np.array([v.lower for v in fam.variables])
+    hi = np.array([v.upper for v in fam.variables])
+
+    def grid_of(a, b):
+        g = np.meshgrid(np.linspace(lo[0], hi[0], a), np.linspace(lo[1], hi[1], b),
+                        indexing="ij")
+        return np.stack([x.reshape(-1) for x in g], axis=1)
+
+    coarse, fine = grid_of(8, 4), grid_of(40, 12)
+    two = np.vstack([coarse, fine])
+    c2 = Certifier(loop_at(two), two, len(coarse), fam.variables, basis, s)
+    k = np.repeat(np.arange(len(coarse)), 2)
+    r1 = np.tile([[1.0, 0.0], [-1.0, 0.0]], (len(coarse), 1))
+    sol, t_c = _timed(lambda: solve_lmi(c2.A[k], c2.F[k], c2.dF[k], r1))
+    eig, scale, _, _ = lmi_worst(c2.A, c2.B, c2.C, c2.D, c2.F, c2.dF, sol.Pk, None,
+                                 np.array([[1.0, 0.0], [-1.0, 0.0]]))
+    rel = (eig / scale[:, None]).max(axis=1)
+    print(f"  gridded LMI at 8 x 4 points, 1 m/s: {sol.status}, margin {sol.level:.3g} at the "
+          f"imposed points ({t_c:.1f} s); on the 40 x 12 grid: worst relative eigenvalue "
+          f"{rel[len(coarse):].max():+.3g}, {(rel[len(coarse):] > 0).sum()} of {len(fine)} "
+          "points violate (the cutting planes repair this)")
     if full:
         rc, t_full = _timed(lambda: certify_family(fam, spec, s, progress=None))
         print(f"  full certificate: {t_full:.0f} s, {rc.solves} LMI solves; {load()}")
