@@ -215,7 +215,7 @@ class RateCertificate:
 
     def _unit(self, name: str) -> str:
         u = dict(zip(self.names, self.units, strict=True)).get(name, "")
-        return f" {u}/s" if u else "/s"
+        return f" {u}/s" if u not in ("", "-") else "/s"
 
     def text_lines(self) -> list[str]:
         """A few lines for the terminal: rates alone and jointly, gains, checks, witness."""
