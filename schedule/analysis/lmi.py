@@ -62,6 +62,8 @@ __all__ = ["LmiSolution", "svec", "smat", "solve_lmi", "lmi_worst", "lmi_blocks"
 #: Solver names: "clarabel" (its own API, the default) or "cvxpy:<SOLVER>" (for example
 #: "cvxpy:SCS", "cvxpy:CLARABEL").
 SOLVERS = ("clarabel", "cvxpy:CLARABEL", "cvxpy:SCS")
+#: statuses of a finished solve (Clarabel's and cvxpy's words)
+SOLVED = ("Solved", "AlmostSolved", "optimal", "optimal_inaccurate")
 
 
 # ----------------------------------------------------------------------------- svec
@@ -337,11 +339,14 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
               max_iterations: int = 100) -> LmiSolution:
     """Solve the imposed LMIs for P_k (and the smallest gamma).
 
-    Stability (``gain=False``): find P(p) with ``L(p_i, v_i) <= -margin I`` at every
-    given point and its vertex, minimizing the mean of ``trace P(p_i)`` (a bounded,
-    well-conditioned solution). Gain: minimize gamma subject to ``L(p_i, v) <=
-    -margin I`` (the margin makes the solution strictly feasible, at the price of
-    a slightly larger gamma).
+    Stability (``gain=False``): the P(p) with the largest margin t,
+    ``L(p_i, v_i) <= -t I`` at every given point and its vertex, among those with
+    ``sum_k ||P_k||_F^2 <= 1`` (the LMI is homogeneous in P; the largest-margin
+    solution is the most robust one between the points); the imposed LMIs have
+    no solution when the solver finds ``t <= 0``. ``margin`` is not used.
+    Gain: minimize gamma subject to ``L(p_i, v_i) <= -margin I`` (the margin
+    makes the solution strictly feasible, at the price of a slightly larger
+    gamma).
 
     Parameters
     ----------
@@ -384,8 +389,8 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
         Pk = smat(x[:K * nsv].reshape(K, nsv), n)
         gamma = float(x[-1]) if gain else None
         level = float(x[-1])
-    if not gain and not level > 0:  # the largest margin is not positive: no P exists
-        feasible = False
+    if not gain and not level > 0 and status in SOLVED:  # the largest margin is not
+        feasible = False  # positive: no P exists at the imposed points
     return LmiSolution(Pk, gamma, status, feasible, seconds, iters, int(M.shape[0]), level)
 
 

@@ -231,8 +231,11 @@ class RateCertificate:
                 line += f"; target {_num(self.targets[n])}{u}: {'met' if ok else 'NOT MET'}"
             L.append(line)
             if n in self.gain_bound:
-                L.append(f"    induced L2 gain <= {_num(self.gain_bound[n])} at that rate "
-                         f"(largest frozen H-infinity norm {_num(self.frozen_gain)})")
+                at_target = [g for x, g in self.gain_curve.get(n, ())
+                             if n in self.targets and x == self.targets[n]]
+                L.append(f"    induced L2 gain <= {_num(self.gain_bound[n])} at that rate"
+                         + (f", <= {_num(at_target[0])} at the target" if at_target else "")
+                         + f" (largest frozen H-infinity norm {_num(self.frozen_gain)})")
             if n in self.checks:
                 a = self.checks[n]
                 L.append(f"    checked at {a.dense_points} points: worst relative LMI "
@@ -280,6 +283,9 @@ class RateCertificate:
             L.append(f"| {n} [{u}] | {_num(r)} | {_num(self.joint_rate.get(n, np.nan))} | "
                      f"{_num(self.gain_bound.get(n, np.nan))} | {fb} | {tg} | {wu} |")
         L.append("")
+        for n, curve in self.gain_curve.items():
+            pts = ", ".join(f"{_num(x)}{self._unit(n)}: {_num(g)}" for x, g in curve)
+            L.append(f"- gain bound gamma(nu) while {n} moves: {pts}")
         for k, a in self.checks.items():
             L.append(f"- {k}: LMIs imposed at {a.imposed_points} points, checked at "
                      f"{a.dense_points}; worst relative LMI eigenvalue {a.worst:.2e} at "
