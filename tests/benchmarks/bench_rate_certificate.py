@@ -152,9 +152,11 @@ def envelope(points_per_axis: int) -> None:
 
     text = design_text("synthetic_plant_2", points_per_axis).replace(
         str(HERE.parent / "bench_family.py"), str(HERE))
+    text += '[interpolation]\nform = "matrices"\nkind = "multilinear"\n'  # no LOO choice
     with tempfile.TemporaryDirectory() as tmp:
         spec = parse_design(text, tmp)
         fam, t_design = _timed(lambda: run_design(spec, None).family)
+    print(f"  envelope designed in {t_design:.1f} s", flush=True)
     grid = np.asarray(fam.points, float)[fam.ok]
     loop_at, _ = family_loop(fam, spec)
     loop, t_loop = _timed(lambda: loop_at(grid))
@@ -163,7 +165,7 @@ def envelope(points_per_axis: int) -> None:
     cert, t_prep = _timed(lambda: Certifier(loop, grid, len(grid), fam.variables, basis, s))
     n, K = cert.A.shape[1], len(basis)
     print(f"envelope: {len(grid)} points, 4 variables, closed loop of order {n}, affine basis "
-          f"({K * n * (n + 1) // 2} LMI variables); designed in {t_design:.1f} s; {load()}")
+          f"({K * n * (n + 1) // 2} LMI variables); {load()}", flush=True)
     idx = np.repeat(np.arange(len(grid)), 2)
     rates = np.tile([[0.1, 0, 0, 0], [-0.1, 0, 0, 0]], (len(grid), 1))
     st, t_st = _timed(lambda: solve_lmi(cert.A[idx], cert.F[idx], cert.dF[idx], rates))
@@ -171,7 +173,7 @@ def envelope(points_per_axis: int) -> None:
     _, t_chk = _timed(lambda: lmi_worst(cert.A, cert.B, cert.C, cert.D, cert.F, cert.dF,
                                         st.Pk, None, verts))
     print(f"  loop at {len(grid)} points: {t_loop:.2f} s; coordinates and frozen norms "
-          f"{t_prep:.2f} s")
+          f"{t_prep:.2f} s", flush=True)
     print(f"  stability LMI, {idx.size} cones of size {n}: {t_st:.1f} s ({st.status}, "
           f"{st.iterations} iterations), {1e3 * t_st / idx.size:.1f} ms per cone")
     print(f"  dense check at {len(grid)} points x {len(verts)} vertices: {t_chk:.2f} s; "
@@ -183,9 +185,11 @@ def main() -> None:
     parser.add_argument("--family", default=None, help="a crane family file (else designed)")
     parser.add_argument("--full", action="store_true", help="also the whole crane certificate")
     parser.add_argument("--per-axis", type=int, default=7, help="envelope points per axis")
+    parser.add_argument("--envelope-only", action="store_true", help="skip the crane")
     args = parser.parse_args()
-    print(f"{os.cpu_count()} cores; {load()}")
-    crane(args.family, args.full)
+    print(f"{os.cpu_count()} cores; {load()}", flush=True)
+    if not args.envelope_only:
+        crane(args.family, args.full)
     envelope(args.per_axis)
 
 
