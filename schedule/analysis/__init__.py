@@ -8,7 +8,9 @@
 - :mod:`.lpv_certificate`: certified scheduling rates and gain bounds (the
   cutting-plane loop, bisection, the family driver);
 - :mod:`.witness`: parameter trajectories that show how far the certificate is
-  from what a simulation of the loop observes.
+  from what a simulation of the loop observes;
+- :mod:`.family_rates`: the whole analysis for a controller family (its loop,
+  its point sets), called by ``schedule check --rate-certificate``.
 
 cvxpy and clarabel are imported only inside the functions that solve LMIs.
 """
