@@ -93,6 +93,9 @@ class CheckSettings:
         not fail the check.
     gamma_opt : compute the optimal gamma at each check point (costly).
     rate : compute the scheduling-rate bound.
+    rate_certificate : compute the certified rates and gain bounds of
+        :mod:`schedule.analysis` (LMIs; minutes on a big family), configured by
+        the design's [rate_certificate] table.
     classical : compute classical margins at the plant input.
     chunk : points per work chunk (parallel runs).
     """
@@ -111,6 +114,7 @@ class CheckSettings:
     loo_gates: bool | None = None
     gamma_opt: bool = True
     rate: bool = True
+    rate_certificate: bool = False
     classical: bool = True
     chunk: int = 500
 
@@ -464,6 +468,7 @@ class CheckResult:
     proposed_breakpoints: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
     gating: np.ndarray | None = None
+    rate_certificate: object = None
 
     @property
     def criterion(self) -> PassCriterion:
@@ -525,6 +530,8 @@ class CheckResult:
                                           self.rate.worst, strict=True)}
         return {"settings": asdict(self.settings), "summary": self.summary(),
                 "notes": list(self.notes), "rate_bound": rate,
+                "rate_certificate": (None if self.rate_certificate is None
+                                     else self.rate_certificate.to_dict()),
                 "proposals": [] if self.proposals is None else
                 [dict(zip(self.variable_names, map(float, r), strict=True))
                  for r in self.proposals],
@@ -821,8 +828,29 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
                 result.rate = _rate(family, sc, spec, pts_all[sel], subP, subK, names)
             except ScheduleError as exc:
                 notes.append(f"rate bound not computed: {exc}")
+    if s.rate_certificate:
+        result.rate_certificate = _rate_certificate(family, spec, sc, result, progress)
     result.proposals, result.proposed_breakpoints = propose_points(result, family)
     return result
+
+
+def _rate_certificate(family, spec, sc, result, progress):
+    """The hook into :mod:`schedule.analysis` (certified rates; None with a note on failure)."""
+    from .analysis.family_rates import certify_family
+
+    count = [0]
+
+    def say(_message: str) -> None:
+        count[0] += 1
+        if progress:
+            progress("rates", count[0], count[0] + 1)
+
+    try:
+        return certify_family(family, spec, controller=sc, frozen_bound=result.rate,
+                              progress=say)
+    except ScheduleError as exc:
+        result.notes.append(f"rate certificate not computed: {exc}")
+        return None
 
 
 def scheduled_loop(family: Family, spec=None, controller=None):

@@ -298,6 +298,8 @@ class DesignSpec:
     export: ExportSpec = field(default_factory=ExportSpec)
     name: str = "<design text>"
     limits: tuple[LimitSpec, ...] = ()
+    #: [rate_certificate]: a schedule.analysis.lpv_certificate.CertificateSettings, or None
+    rate_certificate: Any = None
 
     @property
     def variable_names(self) -> tuple[str, ...]:
@@ -461,7 +463,7 @@ def _first_duplicate(items) -> Any:
 # --------------------------------------------------------------------------- entry points
 ARRANGEMENTS = ("mixed_sensitivity", "generalized")
 TOP_KEYS = ("title", "variable", "source", "grid", "channels", "weights", "gamma",
-            "interpolation", "check", "export", "limits")
+            "interpolation", "check", "export", "limits", "rate_certificate")
 
 
 def load_design(path: str | os.PathLike) -> DesignSpec:
@@ -548,10 +550,12 @@ def _parse(text: str, base_dir: str | os.PathLike, name: str) -> DesignSpec:
     check = _parse_check(r, r.table(data.get("check", {}), "check"))
     export = _parse_export(r, r.table(data.get("export", {}), "export"))
     limits = _parse_limits(r, data.get("limits", []), channels)
+    rates = (_parse_rate_certificate(r, r.table(data["rate_certificate"], "rate_certificate"),
+                                     variables) if "rate_certificate" in data else None)
     return DesignSpec(text=text, base_dir=base, title=title, variables=variables, source=source,
                       grid=grid, channels=channels, weights=weights, gamma=gamma,
                       interpolation=interp, check=check, export=export, name=name,
-                      limits=limits)
+                      limits=limits, rate_certificate=rates)
 
 
 # --------------------------------------------------------------------------- the tables
@@ -1080,6 +1084,64 @@ def _parse_limits(r: _Reader, items: Any, ch: ChannelSpec) -> tuple[LimitSpec, .
                          "control: subtract the trim value from the actuator's own limits")
         out[name] = LimitSpec(name, lower, upper, rate)
     return tuple(out[c] for c in ch.controls if c in out)
+
+
+def _parse_rate_certificate(r: _Reader, t: dict, variables):
+    """[rate_certificate] -> schedule.analysis.lpv_certificate.CertificateSettings.
+
+    The basis expressions are parsed (never evaluated as code) by
+    schedule.analysis.expression; the keys and defaults are the fields of
+    CertificateSettings (one list of them).
+    """
+    from dataclasses import fields
+
+    from .analysis.basis import parse_basis
+    from .analysis.lpv_certificate import CertificateSettings
+
+    k = "rate_certificate"
+    allowed = tuple(f.name for f in fields(CertificateSettings))
+    r.keys(t, k, allowed)
+    names = tuple(v.name for v in variables)
+    kw: dict = {}
+    if "basis" in t:
+        basis = t["basis"]
+        if not isinstance(basis, list) or not all(isinstance(x, str) for x in basis):
+            raise r.fail(_join(k, "basis"), f"expected a list of expressions, got {_tname(basis)}",
+                         'write ["1", "1/rope_length", ...]')
+        try:
+            parse_basis(basis, names)
+        except InputError as exc:
+            raise r.fail(_join(k, "basis"), str(exc), "fix the expression") from None
+        kw["basis"] = tuple(basis)
+    if "rates" in t:
+        rates = r.table(t["rates"], _join(k, "rates"))
+        for n in rates:
+            if n not in names:
+                raise r.fail(_join(k, f"rates.{n}"), f"'{n}' is not a scheduling variable",
+                             f"use one of {', '.join(names)}")
+        kw["rates"] = tuple((n, r.number(rates, _join(k, "rates"), n, positive=True))
+                            for n in rates)
+    for key in ("gain", "witness"):
+        if key in t:
+            if not isinstance(t[key], bool):
+                raise r.fail(_join(k, key), f"expected true or false, got {_tname(t[key])}",
+                             "write true or false")
+            kw[key] = t[key]
+    for key, lo in (("dense", 1), ("samples", 0), ("max_rounds", 1), ("cuts", 1), ("curve", 0)):
+        if key in t:
+            kw[key] = r.integer(t, k, key, 0, minimum=lo)
+    if "tolerance" in t:
+        kw["tolerance"] = r.number(t, k, "tolerance", positive=True)
+    if "solver" in t:
+        from .analysis.lmi import SOLVERS
+
+        kw["solver"] = r.choice(t, k, "solver", "clarabel", SOLVERS)
+    out = CertificateSettings(**kw)
+    try:
+        out.validate(names)
+    except InputError as exc:
+        raise r.fail(k, str(exc), "see docs/design-file.md") from None
+    return out
 
 
 # --------------------------------------------------------------------------- against a plant

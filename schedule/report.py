@@ -16,7 +16,9 @@ Figures, in our own visual style (:data:`STYLE`):
   diagonal line from the lower to the upper corner of the envelope;
 - ``table_ratio.png`` (with a table check, ``schedule check --table``): norm /
   gamma of the table as it runs against that of the family's interpolant at the
-  same points, and the table's input disk margins against the interpolant's.
+  same points, and the table's input disk margins against the interpolant's;
+- ``gain_vs_rate.png``: the certified induced-L2 gain bound gamma(nu) against
+  the scheduling rate (when the rate certificate was computed).
 
 With a table check (:mod:`schedule.analysis.table_check`) the summary page gains a
 "Shipped table" section: family and table side by side at the same points, and what
@@ -111,7 +113,7 @@ class _AggFigures:
 def _report_member(name: str) -> bool:
     """A file name that an earlier report may have left in the folder (replaced, not kept)."""
     return name in ("summary.md", "summary.html", "gamma_opt.png", "margins.png",
-                    "controller_sv.png", "table_ratio.png") or (
+                    "controller_sv.png", "table_ratio.png", "gain_vs_rate.png") or (
         name.startswith("ratio_") and name.endswith(".png"))
 
 
@@ -385,6 +387,39 @@ def _controller_sv_plot(plt, result: CheckResult, controller, family, out: Path)
     return path
 
 
+def _gain_rate_plot(plt, result: CheckResult, out: Path) -> Path | None:
+    """gamma(nu): the certified gain bound against the rate, one panel per variable."""
+    rc = getattr(result, "rate_certificate", None)
+    curves = {} if rc is None else {n: c for n, c in rc.gain_curve.items() if len(c)}
+    if not curves:
+        return None
+    fig, axes = plt.subplots(1, len(curves), figsize=(5.2 * len(curves), 3.8), squeeze=False)
+    units = dict(zip(rc.names, rc.units, strict=True))
+    for ax, (name, curve) in zip(axes[0], curves.items(), strict=True):
+        r = np.array([a for a, _ in curve], float)
+        g = np.array([b for _, b in curve], float)
+        ax.plot(r, g, marker="o", color=INK, label="certified bound gamma(nu)")
+        ax.axhline(rc.frozen_gain, color=DESIGN, linestyle="--", linewidth=1.0,
+                   label="largest frozen H-infinity norm")
+        w = rc.witness
+        if w is not None and np.isfinite(w.observed_gain.get(name, np.nan)) and r.size:
+            ax.plot([r[-1]], [w.observed_gain[name]], marker="v", color=ACCENT, linestyle="none",
+                    label="observed in simulation (witness)")
+        fin = g[np.isfinite(g)]
+        if fin.size and fin.max() > 20 * max(min(fin.min(), rc.frozen_gain), 1e-300):
+            ax.set_yscale("log")  # the bound grows steeply near the certified rate
+        unit = units.get(name, "")
+        unit = "" if unit in ("", "-") else unit
+        ax.set_xlabel(f"|d {name}/dt| [{unit}/s]" if unit else f"|d {name}/dt| [1/s]")
+        ax.set_ylabel("induced L2 gain")
+        ax.set_title(f"Gain bound while {name} moves")
+        ax.legend(loc="best")
+    path = out / "gain_vs_rate.png"
+    plt.save(fig, path)
+    plt.close(fig)
+    return path
+
+
 def _fmt(x, spec: str = ".4g") -> str:
     x = float(x)
     if np.isnan(x):
@@ -452,6 +487,8 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None,
                               result.rate.joint, strict=True):
             per = f" {units[n]}/s" if units.get(n) else " per s"
             L.append(f"| {n} | {_fmt(w)} | {_fmt(a)}{per} | {_fmt(b)}{per} |")
+    if getattr(result, "rate_certificate", None) is not None:
+        L += ["", "## Certified scheduling rates", ""] + result.rate_certificate.markdown_lines()
     L += ["", "## Proposed refinement", ""]
     if result.proposals is None or len(result.proposals) == 0:
         L.append("None: no in-between point fails.")
@@ -675,6 +712,9 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
             plt.save(fig, out / "table_ratio.png")
             plt.close(fig)
             figures.append(out / "table_ratio.png")
+        g = _gain_rate_plot(plt, result, out)
+        if g is not None:
+            figures.append(g)
     md = markdown_summary(result, [str(f) for f in figures], table_check)
     files: dict[str, str | bytes] = dict(plt.files)
     files["summary.md"] = md

@@ -14,7 +14,9 @@
   discrete norm and margins to the continuous routes);
 - :mod:`.table_check`: the exported table checked as it runs (the table's
   multilinear lookup at every in-between point, discrete or continuous), side by
-  side with the family's interpolant.
+  side with the family's interpolant;
+- :mod:`.family_rates`: the whole analysis for a controller family (its loop,
+  its point sets), called by ``schedule check --rate-certificate``.
 
 cvxpy and clarabel are imported only inside the functions that solve LMIs.
 """

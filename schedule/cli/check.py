@@ -48,6 +48,9 @@ def print_result(result, quiet: bool = False) -> None:
             u = f" {units[n]}/s" if units.get(n) else ""
             click.echo(f"  rate bound: |d {n}/dt| < {_fmt(a)}{u} alone, {_fmt(b)}{u} with all "
                        "variables moving (sufficient, conservative)")
+    if result.rate_certificate is not None:
+        for line in result.rate_certificate.text_lines():
+            click.echo(f"  {line}")
     gates = result.gates
     order = result.worst(len(result.passed))
     failing = [i for i in order if gates[i] and not result.passed[i]][:10]
@@ -143,15 +146,21 @@ def _num(x) -> float:
 @click.option("--strict-leave-one-out", "strict_loo", is_flag=True,
               help="Let failing leave-one-out predictions fail the check even when the "
                    "in-between points use the true plant (by default they are evidence only).")
+@click.option("--rate-certificate", "rate_certificate", is_flag=True,
+              help="Also certify scheduling rates and gain bounds with a parameter-dependent "
+                   "Lyapunov function (LMIs; configured by the design's [rate_certificate] "
+                   "table; takes minutes on a big family).")
 @click.option("--quiet", "-q", is_flag=True, help="Print only the verdict lines.")
 def check_command(family_file, samples, sampler, seed, points_file, model, design_file,
                   table_file, as_json, report_dir, jobs, cluster, no_gamma_opt, strict_loo,
-                  quiet):
+                  rate_certificate, quiet):
     """Check the scheduled controller of FAMILY_FILE at frozen in-between points.
 
     Stability, closed-loop norm against gamma, disk and classical margins, the
-    price of interpolation (gamma_opt) and a scheduling-rate bound. Exit code 0
-    when all checks pass, 1 when some fail, 2 for bad input.
+    price of interpolation (gamma_opt) and a scheduling-rate bound; with
+    --rate-certificate also certified rates and gain bounds. Exit code 0 when
+    all checks pass (and the design's target rates are certified), 1 when some
+    fail, 2 for bad input.
 
     The true plant at the in-between points comes from --model, or from the
     model named in the design file given with --design. A model named only in
@@ -187,7 +196,8 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
     settings = CheckSettings.from_spec(spec, samples=samples, sampler=sampler, seed=seed,
                                        points_file=points_file,
                                        gamma_opt=False if no_gamma_opt else None,
-                                       loo_gates=True if strict_loo else None)
+                                       loo_gates=True if strict_loo else None,
+                                       rate_certificate=True if rate_certificate else None)
     bar = ProgressBar(enabled=False if (quiet or as_json) else None)
     try:
         result = check_family(family, settings, spec=spec, jobs=jobs, cluster=cluster,
@@ -219,7 +229,9 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
             print_table_result(table_result, quiet)
         if report_dir is not None and not quiet:
             click.echo(f"  report: {report_dir}/summary.md")
-    if not result.all_passed or (table_result is not None and not table_result.all_passed):
+    rc = result.rate_certificate
+    if not result.all_passed or (table_result is not None and not table_result.all_passed) \
+            or (rc is not None and not rc.meets_targets):
         sys.exit(1)
 
 
