@@ -44,6 +44,7 @@ from .design_file import CheckSpec
 from .errors import InputError, ScheduleError
 from .margins import classical_margins, disk_margins
 from .norms import closed_loop_many, h_infinity_norms
+from .progress import stage_line
 from .types import Family, point_text
 
 __all__ = [
@@ -293,13 +294,14 @@ def _take(d: dict, idx) -> dict:
 def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None = None,
                  jobs: int = 1, cluster=None,
                  progress: Callable[[str, int, int], None] | None = None,
-                 sample_time: float = 0.0) -> dict:
+                 sample_time: float = 0.0, stage: str = "check") -> dict:
     """:func:`check_arrays` over many points in chunks, serially, on workers or on dask
     (chunk and task sizes: :func:`schedule.parallel.work_chunk`).
 
     With ``sample_time`` > 0 the loops are discrete (zero-order-hold plants, discrete
     controllers) and each chunk goes to
     :func:`schedule.analysis.discrete_loop.discrete_check_arrays` instead.
+    ``progress(stage, done, M)`` is told as chunks finish.
     """
     from .parallel import run_chunks, session, work_chunk
 
@@ -309,8 +311,12 @@ def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None 
     M = P["A"].shape[0]
     parts: dict[int, dict] = {}
     done = 0
+    if progress and cluster is None and jobs == 1:
+        return _serial_with_progress(P, K, gamma, s, sample_time, progress, stage)
     with session(cluster) as client:
         size = work_chunk(M, jobs, client, largest=int(s.chunk))
+        if progress:
+            progress(stage, 0, M)
         starts = list(range(0, M, size))
         chunks = [(_take(P, slice(a, a + size)), _take(K, slice(a, a + size)), float(gamma),
                    s.gamma_tolerance, s.classical, float(sample_time)) for a in starts]
@@ -318,10 +324,29 @@ def check_points(P: dict, K: dict, gamma: float, settings: CheckSettings | None 
             parts[i] = res
             done += len(res["norm"])
             if progress:
-                progress("check", done, M)
+                progress(stage, done, M)
     if not parts:
         return {}
     return {k: np.concatenate([parts[i][k] for i in range(len(chunks))]) for k in parts[0]}
+
+
+def _serial_with_progress(P: dict, K: dict, gamma: float, s: CheckSettings,
+                          sample_time: float, progress, stage: str) -> dict:
+    """:func:`check_points` in this process, in chunks timed to report progress about
+    once a second (:func:`schedule.progress.timed_slices`; every point is checked on its
+    own, so the chunks change a result by round-off at most, as the worker split does)."""
+    from .progress import timed_slices
+
+    M = P["A"].shape[0]
+    progress(stage, 0, M)
+    parts = []
+    for sl in timed_slices(M, largest=int(s.chunk)):
+        parts.append(_kernel_chunk(_take(P, sl), _take(K, sl), float(gamma), s.gamma_tolerance,
+                                   s.classical, float(sample_time)))
+        progress(stage, sl.stop, M)
+    if not parts:
+        return {}
+    return {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
 
 
 # ----------------------------------------------------------------------------- where
@@ -401,8 +426,12 @@ def check_points_for(family: Family, settings: CheckSettings, spec=None):
     return np.vstack(pts), np.array(kinds, dtype=object)
 
 
-def _true_plants(spec, points: np.ndarray, names: Sequence[str]):
-    """Generalized plants from the design's model at points: (stack | None, ok mask, reasons)."""
+def _true_plants(spec, points: np.ndarray, names: Sequence[str], progress=None,
+                 stage: str = "plants"):
+    """Generalized plants from the design's model at points: (stack | None, ok mask, reasons).
+
+    ``progress(stage, done, total)`` is told after every point (the bar draws a few
+    times a second)."""
     from .sources import evaluate_model, load_model
     from .weights import build_generalized_plant
 
@@ -411,7 +440,12 @@ def _true_plants(spec, points: np.ndarray, names: Sequence[str]):
     ok = np.zeros(len(points), dtype=bool)
     reasons = [""] * len(points)
     shapes = None
+    M = len(points)
+    if progress:
+        progress(stage, 0, M)
     for i, row in enumerate(points):
+        if progress and i:
+            progress(stage, i, M)
         point = dict(zip(names, row.tolist(), strict=True))
         lp, reason = evaluate_model(model, point)
         if lp is None:
@@ -427,6 +461,8 @@ def _true_plants(spec, points: np.ndarray, names: Sequence[str]):
         ok[i] = True
         for k in PLANT_KEYS:
             mats[k].append(gp[k])
+    if progress:
+        progress(stage, M, M)
     if shapes is None:
         return None, ok, reasons
     stack = {k: np.zeros((len(points),) + shapes[k]) for k in PLANT_KEYS}
@@ -636,7 +672,7 @@ def propose_points(result: CheckResult, family: Family) -> tuple[np.ndarray, dic
 GAMMA_OPT_CHUNK = 32  # check points per gamma_opt work chunk, whatever the worker count
 
 
-def _gamma_opt(P: dict, idx: np.ndarray, jobs: int, cluster) -> np.ndarray:
+def _gamma_opt(P: dict, idx: np.ndarray, jobs: int, cluster, progress=None) -> np.ndarray:
     from .family import gamma_chunk
     from .parallel import run_chunks
 
@@ -648,13 +684,20 @@ def _gamma_opt(P: dict, idx: np.ndarray, jobs: int, cluster) -> np.ndarray:
     size = GAMMA_OPT_CHUNK
     pieces = [idx[a:a + size] for a in range(0, idx.size, size)]
     chunks = [({k: P[k][c] for k in PLANT_KEYS}, 1e-3) for c in pieces]
+    done = 0
+    if progress:
+        progress("gamma_opt", 0, idx.size)
     for i, (g, _reasons) in run_chunks(gamma_chunk, chunks, jobs=jobs, cluster=cluster):
         out[pieces[i]] = g
+        done += pieces[i].size
+        if progress:
+            progress("gamma_opt", done, idx.size)
     return out
 
 
-def _rate(family, sc, spec, pts, P, K, names) -> object:
-    """Rate bound on the check points from central differences of the closed-loop A."""
+def _rate(family, sc, spec, pts, P, K, names, progress=None) -> object:
+    """Rate bound on the check points from central differences of the closed-loop A
+    (``progress`` counts the plants evaluated on either side of every point)."""
     from .rate import rate_bounds
 
     d = pts.shape[1]
@@ -662,6 +705,14 @@ def _rate(family, sc, spec, pts, P, K, names) -> object:
     hi = np.array([v.upper for v in family.variables])
     Acl = closed_loop_many(P, K)[0]
     dA = np.zeros((pts.shape[0], d) + Acl.shape[1:])
+    M = pts.shape[0]
+    count = [0]
+
+    def step_progress(_stage: str, done: int, _total: int) -> None:
+        if progress:
+            progress("rate bound", count[0] + done, (2 * d + 1) * M)
+
+    step_progress("", 0, 0)
     for j in range(d):
         h = 1e-4 * (hi[j] - lo[j])
         e = np.zeros(d)
@@ -669,34 +720,42 @@ def _rate(family, sc, spec, pts, P, K, names) -> object:
         up, dn = np.minimum(pts + e, hi), np.maximum(pts - e, lo)
         step = (up - dn)[:, j]
         dK = sc.derivative(pts, j)
-        Pu = _plants_at(family, sc, spec, up, names)[0]
-        Pd = _plants_at(family, sc, spec, dn, names)[0]
+        Pu = _plants_at(family, sc, spec, up, names, step_progress)[0]
+        count[0] += M
+        Pd = _plants_at(family, sc, spec, dn, names, step_progress)[0]
+        count[0] += M
         Ku = {k: K[k] + dK[k] * (up - pts)[:, j, None, None] for k in K}
         Kd = {k: K[k] + dK[k] * (dn - pts)[:, j, None, None] for k in K}
         dA[:, j] = (closed_loop_many(Pu, Ku)[0] - closed_loop_many(Pd, Kd)[0]) / step[:, None,
                                                                                      None]
-    return rate_bounds(Acl, dA, names)
+        step_progress("", 0, 0)
+    bound = rate_bounds(Acl, dA, names)
+    count[0] += M
+    step_progress("", 0, 0)
+    return bound
 
 
-def plants_at(family: Family, points, spec=None, controller=None):
+def plants_at(family: Family, points, spec=None, controller=None, progress=None):
     """Generalized plants at ``points`` (M, d): the design's model where ``spec`` has one
     (the true plant), else the family's interpolated plant.
 
     Returns ``(stack, source (M,) "model" | "interpolated", ok (M,), reasons)``; a point
-    where the model fails has ``ok`` False and its reason.
+    where the model fails has ``ok`` False and its reason. ``progress(stage, done,
+    total)`` is told as the model is evaluated.
     """
     from .interpolate import ScheduledController
 
     sc = controller or ScheduledController.from_family(family)
     pts = np.asarray(points, dtype=float).reshape(-1, len(family.variables))
-    return _plants_at(family, sc, spec, pts, family.variable_names)
+    return _plants_at(family, sc, spec, pts, family.variable_names, progress)
 
 
-def _plants_at(family, sc, spec, pts, names):
-    """Plants at points: (stack, source labels, ok mask, reasons)."""
+def _plants_at(family, sc, spec, pts, names, progress=None, stage: str = "plants"):
+    """Plants at points: (stack, source labels, ok mask, reasons); ``progress`` as in
+    :func:`_true_plants` (the model is evaluated point by point)."""
     M = pts.shape[0]
     if spec is not None and (spec.source.model is not None or spec.source.model_file is not None):
-        stack, ok, reasons = _true_plants(spec, pts, names)
+        stack, ok, reasons = _true_plants(spec, pts, names, progress, stage)
         if stack is None:
             raise InputError(f"the model failed at every check point ({reasons[0]}); fix the "
                              "model or check without it")
@@ -740,14 +799,16 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
     s.validate()
     sc = controller or ScheduledController.from_family(family)
     names = family.variable_names
+    stage_line(progress, "check points")
     pts, kinds = check_points_for(family, s, spec)
     if extra_points is not None and np.size(extra_points):
         ep = np.asarray(extra_points, dtype=float).reshape(-1, len(names))
         pts = np.vstack([pts, ep])
         kinds = np.concatenate([kinds, np.array(["previous"] * len(ep), dtype=object)])
-    P, src, ok, reasons = (_plants_at(family, sc, spec, pts, names) if len(pts) else
+    P, src, ok, reasons = (_plants_at(family, sc, spec, pts, names, progress) if len(pts) else
                            ({k: np.zeros((0,) + family.plant[k].shape[1:]) for k in PLANT_KEYS},
                             np.array([], dtype=object), np.zeros(0, bool), []))
+    stage_line(progress, "controllers")
     K = sc.evaluate(pts) if len(pts) else {k: np.zeros((0,) + family.controller[k].shape[1:])
                                             for k in ("A", "B", "C", "D")}
     all_pts, all_kinds, all_src, Ps, Ks = [pts[ok]], [kinds[ok]], [src[ok]], [
@@ -762,6 +823,7 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
         Ps.append({k: np.asarray(family.plant[k])[rows] for k in PLANT_KEYS})
         Ks.append({k: np.asarray(family.controller[k])[rows] for k in ("A", "B", "C", "D")})
     if s.loo and rows.size >= 2:
+        stage_line(progress, "leave-one-out")
         lrows, LK, good = _loo_controllers(sc, family)
         all_pts.append(np.asarray(family.points, float)[lrows[good]])
         all_kinds.append(np.array(["leave_one_out"] * int(good.sum()), dtype=object))
@@ -802,7 +864,7 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
     values["gamma_opt"] = np.full(pts_all.shape[0], np.nan)
     if s.gamma_opt:
         idx = np.flatnonzero(kinds_all != "grid")
-        values["gamma_opt"] = _gamma_opt(Pall, idx, jobs, cluster)
+        values["gamma_opt"] = _gamma_opt(Pall, idx, jobs, cluster, progress)
         if s.grid:
             grid_idx = np.flatnonzero(kinds_all == "grid")
             values["gamma_opt"][grid_idx] = np.asarray(family.gamma_opt, float)[rows]
@@ -825,7 +887,8 @@ def check_family(family: Family, settings: CheckSettings | None = None, spec=Non
             try:
                 subP = {k: Pall[k][sel] for k in PLANT_KEYS}
                 subK = {k: Kall[k][sel] for k in Kall}
-                result.rate = _rate(family, sc, spec, pts_all[sel], subP, subK, names)
+                result.rate = _rate(family, sc, spec, pts_all[sel], subP, subK, names,
+                                    progress)
             except ScheduleError as exc:
                 notes.append(f"rate bound not computed: {exc}")
     if s.rate_certificate:
@@ -838,12 +901,16 @@ def _rate_certificate(family, spec, sc, result, progress):
     """The hook into :mod:`schedule.analysis` (certified rates; None with a note on failure)."""
     from .analysis.family_rates import certify_family
 
-    count = [0]
+    phase, solves = ["rate certificate"], [0]
 
-    def say(_message: str) -> None:
-        count[0] += 1
+    def say(message: str) -> None:
+        # phases start "rate certificate: ..."; the lines between report finished solves
+        if message.startswith("rate certificate"):
+            phase[0], solves[0] = message, 0
+        else:
+            solves[0] += 1
         if progress:
-            progress("rates", count[0], count[0] + 1)
+            progress(phase[0], solves[0], 0)
 
     try:
         return certify_family(family, spec, controller=sc, frozen_bound=result.rate,

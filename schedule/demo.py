@@ -36,6 +36,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .progress import stage_line
 
 CAUTION = ("Results are design aids: validate in simulation and hardware tests and follow the "
            "applicable codes and licensed practice.")
@@ -168,13 +169,15 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
         raise InputError(f"the demo's table fails its own check ({checked.stopped}); worst "
                          f"point {checked.worst_point()}")
     table = checked.table
-    report = write_report(result, family, out / REPORT_DIR, table_check=checked.check)
+    report = write_report(result, family, out / REPORT_DIR, table_check=checked.check,
+                          progress=progress)
     files["report"] = Path(report["markdown"])
     try:
         tables.mkdir(exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot create folder {tables}: {exc.strerror}; choose another "
                          "--out") from None
+    stage_line(progress, "write tables")
     paths, (fmu,) = write_tables(table, TABLE_FORMATS, tables)
     for p in paths:
         key = {".h": "c_header", ".c": "c_source"}.get(p.suffix, p.suffix.lstrip("."))
@@ -185,8 +188,10 @@ def run_demo(out_dir: str | os.PathLike = "schedule-demo", jobs: int = 2,
 
     model = load_nonlinear_model(spec)
     controller = TableController(table)
-    sim = simulate(model, controller, crane_trajectory(sample_time=controller.sample_time))
+    sim = simulate(model, controller, crane_trajectory(sample_time=controller.sample_time),
+                   progress=progress)
     sim_files = {"simulation.csv": result_csv(sim)}
+    stage_line(progress, "plots")
     sim_files.update(result_plots(sim, title="Crane under the scheduled table (hoisting while "
                                              "travelling, then a gust)"))
     write_dir_atomic(out / SIMULATION_DIR, sim_files, "simulation folder")

@@ -956,26 +956,17 @@ def _run_design(spec, out: Path | None, jobs: int, cluster: Any, resume: bool,
 
 def _fit_interpolant(run: DesignRun, spec, jobs: int = 1, cluster: Any = None,
                      limit: int = 200, progress: Progress | None = None) -> None:
-    from .interpolate import candidate_pairs, evidence_notes, fit_for_family
+    from .interpolate import evidence_notes, fit_for_family
 
     form, kind = spec.interpolation.form, spec.interpolation.kind
-    count = [0, max(1, len(candidate_pairs(run.family, form, kind)))]
-
-    def step(_label: str) -> None:
-        if progress:
-            progress("interpolant", count[0], count[1])
-        count[0] += 1
-
     try:
-        interpolant, evidence = fit_for_family(run.family, form, kind, progress=step,
+        interpolant, evidence = fit_for_family(run.family, form, kind, progress=progress,
                                                costly_kinds_max_points=limit, jobs=jobs,
                                                cluster=cluster)
     except ScheduleError as exc:
         run.interpolant_error = _one_line(exc)
         run.family.extra["interpolant_error"] = run.interpolant_error
         return
-    if progress:
-        progress("interpolant", count[1], count[1])
     run.family.interpolant = interpolant
     for k, v in (evidence or {}).items():
         run.family.extra[str(k)] = v
@@ -1260,7 +1251,8 @@ def _choice_estimate(spec, n_ok: float, per_point: dict, src: _Source, limit: in
 
 # ----------------------------------------------------------------------------- refinement
 def _gamma_of(plants: Sequence, jobs: int, cluster: Any, rtol: float,
-              chunk_size: int = CHUNK_SIZE) -> tuple[np.ndarray, list[str]]:
+              chunk_size: int = CHUNK_SIZE, progress: Progress | None = None
+              ) -> tuple[np.ndarray, list[str]]:
     """gamma_opt and reasons for a list of plants (None entries are skipped)."""
     M = len(plants)
     gam, reasons = np.full(M, np.nan), [""] * M
@@ -1268,21 +1260,32 @@ def _gamma_of(plants: Sequence, jobs: int, cluster: Any, rtol: float,
     chunks = [c[valid[c]] for c in _chunks(M, chunk_size)]
     chunks = [c for c in chunks if c.size]
     tasks = [(_stack_plants(plants, c), rtol) for c in chunks]
+    done, total = 0, sum(c.size for c in chunks)
+    if progress:
+        progress("gamma", 0, total)
     for t, (g, r) in run_chunks(gamma_chunk, tasks, jobs=jobs, cluster=cluster):
         gam[chunks[t]] = g
         for i, text in zip(chunks[t], r, strict=False):
             reasons[i] = text
+        done += chunks[t].size
+        if progress:
+            progress("gamma", done, total)
     return gam, reasons
 
 
 def _controllers_of(plants: Sequence, idx: np.ndarray, gamma: float, jobs: int, cluster: Any,
-                    chunk_size: int = CHUNK_SIZE) -> dict[int, tuple]:
+                    chunk_size: int = CHUNK_SIZE, progress: Progress | None = None
+                    ) -> dict[int, tuple]:
     chunks = [c for c in (idx[s:s + chunk_size] for s in range(0, len(idx), chunk_size))
               if c.size]
     tasks = [(_stack_plants(plants, c), gamma) for c in chunks]
     out: dict[int, tuple] = {}
+    if progress:
+        progress("controllers", 0, len(idx))
     for t, (ctrl, pieces, reasons) in run_chunks(controller_chunk, tasks, jobs=jobs,
                                                  cluster=cluster):
+        if progress:
+            progress("controllers", len(out) + len(chunks[t]), len(idx))
         for j, (i, reason) in enumerate(zip(chunks[t], reasons, strict=True)):
             if reason:
                 out[int(i)] = (None, None, reason)
@@ -1293,7 +1296,8 @@ def _controllers_of(plants: Sequence, idx: np.ndarray, gamma: float, jobs: int, 
 
 
 def extend_family(family: Family, spec, new_points, jobs: int = 1,
-                  cluster: Any = None, rtol: float = 1e-4, breakpoints=None) -> Family:
+                  cluster: Any = None, rtol: float = 1e-4, breakpoints=None,
+                  progress: Progress | None = None) -> Family:
     """Synthesize controllers at ``new_points`` and append them to ``family``.
 
     The common gamma is kept unless a new point's optimum needs a larger one:
@@ -1310,7 +1314,8 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
     rectangular: every point, old and new, must be a node of that grid (the
     caller adds whole grid lines), and the result carries these breakpoints and
     the grid indices of its points. Without it the grid structure is dropped (the
-    set becomes scattered).
+    set becomes scattered). ``progress(stage, done, total)`` is told as the model is
+    evaluated ("plants") and as gamma_opt and the controllers are computed.
 
     Raises
     ------
@@ -1352,14 +1357,18 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
         breakpoints = bps
     model = load_model(spec)
     linear, lreasons = [], []
-    for row in new:
+    for i, row in enumerate(new):
+        if progress:
+            progress("plants", i, len(new))
         point = dict(zip(family.variable_names, row.tolist(), strict=True))
         lp, reason = evaluate_model(model, point)
         linear.append(lp)
         lreasons.append(reason or "")
+    if progress:
+        progress("plants", len(new), len(new))
     new_plants, new_reasons, _ = _generalized(spec, new, linear, lreasons)
     M, N = len(new), len(family.points)
-    new_opt, greasons = _gamma_of(new_plants, jobs, cluster, rtol)
+    new_opt, greasons = _gamma_of(new_plants, jobs, cluster, rtol, progress=progress)
     new_ok = np.isfinite(new_opt) & np.array([p is not None for p in new_plants])
     for i in range(M):
         if new_plants[i] is not None and not new_ok[i]:
@@ -1382,7 +1391,7 @@ def extend_family(family: Family, spec, new_points, jobs: int = 1,
         list(new_plants)
     ok = np.concatenate([old_ok, new_ok])
     todo = np.flatnonzero(ok) if raised else N + np.flatnonzero(new_ok)
-    results = _controllers_of(plants, todo, gamma, jobs, cluster)
+    results = _controllers_of(plants, todo, gamma, jobs, cluster, progress=progress)
     reasons = list(family.reasons) + new_reasons
     gamma_opt = np.concatenate([family.gamma_opt, np.where(new_ok, new_opt, np.nan)])
 

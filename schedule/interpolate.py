@@ -784,7 +784,7 @@ class Choice:
 
 
 def choose_interpolant(family: Family, spec_form: str = "auto", spec_kind: str = "auto",
-                       progress: Callable[[str], None] | None = None,
+                       progress: Callable[[str, int, int], None] | None = None,
                        costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
                        cluster=None) -> tuple[ScheduledController, list[LooResult]]:
     """Run leave-one-out for the candidate pairs and fit the best one on all points.
@@ -799,7 +799,8 @@ def choose_interpolant(family: Family, spec_form: str = "auto", spec_kind: str =
     :data:`COMPLETE_EVIDENCE_LOOPS` stable predictions every norm is computed. With
     ``spec_kind`` "auto" the kinds of :func:`costly_kinds` are left out when the family
     has more than ``costly_kinds_max_points`` ok points (:func:`choose` says so in its
-    notes).
+    notes). ``progress(stage, done, total)`` is told as each candidate is evaluated
+    (stage "interpolant") and as each contender's norms are computed ("loo norms").
 
     Returns the fitted controller and the evidence table.
 
@@ -814,7 +815,7 @@ def choose_interpolant(family: Family, spec_form: str = "auto", spec_kind: str =
 
 
 def choose(family: Family, spec_form: str = "auto", spec_kind: str = "auto",
-           progress: Callable[[str], None] | None = None,
+           progress: Callable[[str, int, int], None] | None = None,
            costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
            cluster=None) -> Choice:
     """:func:`choose_interpolant` with the notes for the summary (a :class:`Choice`)."""
@@ -901,9 +902,9 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
                          "the points; raise [interpolation] costly_kinds_max_points to try "
                          "them)")
     cands = [_Candidate(f, k) for f, k in pairs]
-    for cand in cands:
+    for i, cand in enumerate(cands):
         if progress is not None:
-            progress(f"{cand.form}/{cand.kind}")
+            progress("interpolant", i, len(cands))
         try:
             part = fits.get(cand.form, cand.kind)
             plant = fits.get("plant", cand.kind) if cand.form == "observer" else None
@@ -915,6 +916,8 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
             _evaluate_candidate(family, cand, rows, jobs, cluster)
         except (ScheduleError, np.linalg.LinAlgError) as exc:
             cand.failure = _one_line(exc)
+    if progress is not None:
+        progress("interpolant", len(cands), len(cands))
     usable = [c for c in cands if not c.failure]
     if not usable and rows.size >= 2:
         reasons = "; ".join(f"{c.form}/{c.kind}: {c.failure}" for c in cands)
@@ -930,7 +933,9 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
                         key=lambda c: np.nanmedian(c.rel_error)
                         if np.isfinite(c.rel_error).any() else np.inf)
     best = np.inf
-    for c in contenders:
+    for i, c in enumerate(contenders):
+        if progress is not None:
+            progress("loo norms", i, len(contenders))
         try:  # the stored controller needs the plant interpolant too
             fits.get("plant", c.kind)
         except ScheduleError as exc:
@@ -942,6 +947,8 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
         if c.status == "complete":
             peak = c.norm[c.stable]
             best = min(best, float(np.max(peak)) / family.gamma if peak.size else np.inf)
+    if progress is not None and contenders:
+        progress("loo norms", len(contenders), len(contenders))
     evidence = [_result(c, family, rows) for c in cands]
     top = best_candidate(evidence)
     if top is None:
@@ -1015,7 +1022,7 @@ def evidence_notes(extra: dict) -> list[str]:
 
 
 def fit_for_family(family: Family, form: str = "auto", kind: str = "auto",
-                   progress: Callable[[str], None] | None = None,
+                   progress: Callable[[str, int, int], None] | None = None,
                    costly_kinds_max_points: int = COSTLY_KINDS_MAX_POINTS, jobs: int = 1,
                    cluster=None) -> tuple[dict, dict]:
     """For the design stage: choose and fit the interpolant, return what the file stores.

@@ -35,6 +35,7 @@ import numpy as np
 
 from .check import CheckResult, CheckSettings, check_family
 from .errors import InputError
+from .progress import prefixed
 from .types import Family
 
 __all__ = ["RefineOutcome", "Comparison", "compare_checks", "grid_lines", "refine_family"]
@@ -177,7 +178,7 @@ class RefineOutcome:
         return self.comparison is not None and self.comparison.worse
 
 
-def _refit(family: Family, spec, like: Family | None = None) -> Family:
+def _refit(family: Family, spec, like: Family | None = None, progress=None) -> Family:
     """Fit the interpolant of the extended family: the form and kind of ``like``'s (the
     input family's) when it fits, else the design's choice."""
     from .interpolants import GRID_KINDS
@@ -189,7 +190,7 @@ def _refit(family: Family, spec, like: Family | None = None) -> Family:
         form, kind = str(attrs["form"]), str(attrs["kind"])
     if kind in GRID_KINDS and family.breakpoints is None:
         kind = "auto"  # the refined set is scattered; let leave-one-out choose
-    interpolant, evidence = fit_for_family(family, form, kind)
+    interpolant, evidence = fit_for_family(family, form, kind, progress=progress)
     family.interpolant = interpolant
     family.extra = {**family.extra, **evidence}
     return family
@@ -272,6 +273,9 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
     settings : check settings (default: the design's [check] table).
     jobs, cluster : parallel synthesis and checks.
     max_rounds : safety stop on the number of rounds.
+    progress : callback ``(stage, done, total)``; the stages of round r read
+        "round r: ..." (check, synthesis of the new points, refit), the final
+        comparison's "input: ...".
 
     Returns
     -------
@@ -298,9 +302,10 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
     added_bps: dict[str, list[float]] = {}
     spent = 0
     checked = False
-    for _ in range(max_rounds):
+    for r in range(max_rounds):
+        say = prefixed(progress, f"round {r}:")
         result = check_family(out.family, s, spec=spec, jobs=jobs, cluster=cluster,
-                              extra_points=previous, progress=progress)
+                              extra_points=previous, progress=say)
         out.rounds.append(result)
         checked = True
         if previous is None:
@@ -332,7 +337,8 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
                 break
             take, new_bps, bps_added = props[:room], None, {}
         out.family = _refit(extend_family(out.family, spec, take, jobs=jobs, cluster=cluster,
-                                          breakpoints=new_bps), spec, like=family)
+                                          breakpoints=new_bps, progress=say),
+                            spec, like=family, progress=say)
         checked = False
         added.append(take)
         for n, v in bps_added.items():
@@ -346,7 +352,8 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
         out.stopped = f"stopped after {max_rounds} rounds"
     if not checked:  # the last extension has not been checked yet
         out.rounds.append(check_family(out.family, s, spec=spec, jobs=jobs, cluster=cluster,
-                                       extra_points=previous, progress=progress))
+                                       extra_points=previous,
+                                       progress=prefixed(progress, "final:")))
     out.added = np.vstack(added) if added else np.zeros((0, len(family.variables)))
     out.added_breakpoints = added_bps
     baseline = out.rounds[0]
@@ -357,7 +364,7 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
         baseline = check_family(family, replace(s, samples=0, centres=False, midpoints=False,
                                                 points_file=None),
                                 spec=spec, jobs=jobs, cluster=cluster, extra_points=where,
-                                progress=progress)
+                                progress=prefixed(progress, "input:"))
     out.baseline = baseline
     out.comparison = compare_checks(baseline, out.rounds[-1])
     return out

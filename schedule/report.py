@@ -661,13 +661,14 @@ def _bold(text: str) -> str:
 
 
 def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
-                 controller=None, table_check=None) -> dict[str, Path]:
+                 controller=None, table_check=None, progress=None) -> dict[str, Path]:
     """Write the plots and the summary page into ``out_dir`` (created if needed).
 
     ``controller`` (a ScheduledController) draws the controller-gain map; by
     default the family's stored interpolant is used when it has one.
     ``table_check`` (a :class:`schedule.analysis.table_check.TableCheck`) adds the
-    "Shipped table" section and ``table_ratio.png``.
+    "Shipped table" section and ``table_ratio.png``. ``progress(stage, done, total)``
+    is told as each plot is drawn (stage "report").
 
     Returns ``{"markdown": path, "html": path, "figures": [paths]}``.
 
@@ -693,6 +694,15 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
             controller = ScheduledController.from_family(family)
         except ScheduleError:
             controller = None  # the map of controller gains is then left out
+    steps = [0]
+    total = 3 * bool(len(result.passed)) + 3 + (table_check is not None)
+
+    def step() -> None:
+        if progress:
+            progress("report", steps[0], total)
+        steps[0] += 1
+
+    step()
     import matplotlib
 
     plt = _AggFigures()
@@ -700,24 +710,32 @@ def write_report(result: CheckResult, family, out_dir: str | os.PathLike,
     with matplotlib.rc_context(STYLE):
         if len(result.passed):
             figures += _ratio_plots(plt, result, out)
+            step()
             g = _gamma_opt_plot(plt, result, out)
             if g is not None:
                 figures.append(g)
+            step()
             figures.append(_margins_plot(plt, result, out))
+            step()
         c = _controller_sv_plot(plt, result, controller, family, out)
         if c is not None:
             figures.append(c)
+        step()
         if table_check is not None and len(table_check.passed):
             fig = _table_figure(plt, table_check)
             plt.save(fig, out / "table_ratio.png")
             plt.close(fig)
             figures.append(out / "table_ratio.png")
+        if table_check is not None:
+            step()
         g = _gain_rate_plot(plt, result, out)
         if g is not None:
             figures.append(g)
+        step()
     md = markdown_summary(result, [str(f) for f in figures], table_check)
     files: dict[str, str | bytes] = dict(plt.files)
     files["summary.md"] = md
     files["summary.html"] = _html(md)
     write_dir_atomic(out, files, "report folder", replaceable=_report_member)
+    step()
     return {"markdown": out / "summary.md", "html": out / "summary.html", "figures": figures}

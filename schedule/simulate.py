@@ -254,12 +254,16 @@ COMPARISON_RUNS = ("anti_windup", "plain")
 
 
 def anti_windup_comparison(model, table, trajectory: Trajectory, substeps: int = 4,
-                           x0=None, u0=None) -> dict[str, SimulationResult]:
+                           x0=None, u0=None, progress=None) -> dict[str, SimulationResult]:
     """Simulate ``trajectory`` twice under ``table`` with its actuator limits: with the
     observer fed the limited command (``"anti_windup"``) and with the linear state update
-    of a controller that does not know its drive saturates (``"plain"``)."""
+    of a controller that does not know its drive saturates (``"plain"``).
+    ``progress(stage, done, total)`` is told per sample (stage "step <run>")."""
+    from .progress import prefixed
+
     return {name: simulate(model, TableController(table, anti_windup=name == "anti_windup"),
-                           trajectory, x0=x0, u0=u0, substeps=substeps)
+                           trajectory, x0=x0, u0=u0, substeps=substeps,
+                           progress=prefixed(progress, f"step {name.replace('_', '-')}"))
             for name in COMPARISON_RUNS}
 
 
@@ -317,7 +321,7 @@ def _index(names, wanted, what):
 
 
 def simulate(model, controller: TableController, trajectory: Trajectory, x0=None, u0=None,
-             substeps: int = 4) -> SimulationResult:
+             substeps: int = 4, progress=None) -> SimulationResult:
     """Simulate ``model`` under the scheduled discrete ``controller`` along ``trajectory``.
 
     Parameters
@@ -330,6 +334,8 @@ def simulate(model, controller: TableController, trajectory: Trajectory, x0=None
     x0, u0 : initial state and trim inputs (default zeros); references default to the
         measured outputs at (x0, u0).
     substeps : Runge-Kutta steps per sample interval.
+    progress : optional callback ``(stage, done, total)``, told after every sample
+        (stage "simulate").
 
     Raises
     ------
@@ -403,6 +409,8 @@ def simulate(model, controller: TableController, trajectory: Trajectory, x0=None
     p_out = len(model.output_names)
     res = {"x": np.empty((K, n)), "u": np.empty((K, m)), "y": np.empty((K, p_out))}
     for k in range(K):
+        if progress is not None:
+            progress("simulate", k, K)
         f0 = 2 * substeps * k
         pt = point_at(f0)
         u_hold = inputs_at(f0, u_trim[u_idx])
@@ -426,6 +434,8 @@ def simulate(model, controller: TableController, trajectory: Trajectory, x0=None
             where = ", ".join(f"{v}={fine_pts[f0, j]:g}" for j, v in enumerate(names))
             raise NumericalError(f"simulation diverged at t = {t_samples[k + 1]:g} s ({where}); "
                                  "check the controller (schedule check) and the sample time")
+    if progress is not None:
+        progress("simulate", K, K)
     return SimulationResult(
         time=t_samples, points=trajectory.at(t_samples), variable_names=names,
         references=ref, measured=res["y"][:, y_idx], measured_names=tuple(table.measured_names),

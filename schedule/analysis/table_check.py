@@ -41,6 +41,7 @@ from dataclasses import asdict, dataclass, field, replace
 import numpy as np
 
 from ..errors import InputError, ScheduleError
+from ..progress import stage_line
 from ..types import Family, point_text
 
 __all__ = ["TableCheck", "check_table", "table_check_points", "table_matrices", "LOOPS"]
@@ -375,16 +376,16 @@ def _family_lookup(family: Family, table, notes: list):
     return cont
 
 
-def _plants(family: Family, pts: np.ndarray, spec, sc, cache: dict | None):
+def _plants(family: Family, pts: np.ndarray, spec, sc, cache: dict | None, progress=None):
     """:func:`schedule.check.plants_at`, reusing the points kept in ``cache``."""
     from ..check import plants_at
 
     if cache is None:
-        return plants_at(family, pts, spec, sc)
+        return plants_at(family, pts, spec, sc, progress)
     keys = [tuple(np.round(p, 12).tolist()) for p in pts]
     todo = [i for i, k in enumerate(keys) if k not in cache]
     if todo:
-        P, src, ok, why = plants_at(family, pts[todo], spec, sc)
+        P, src, ok, why = plants_at(family, pts[todo], spec, sc, progress)
         for j, i in enumerate(todo):
             cache[keys[i]] = ({k: v[j] for k, v in P.items()}, src[j], bool(ok[j]), why[j])
     rows = [cache[k] for k in keys]
@@ -439,6 +440,7 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     if np.isfinite(table.gamma) and abs(table.gamma - gamma) > digits * gamma:
         notes.append(f"the table records gamma {table.gamma:.6g}, the family {gamma:.6g}; the "
                      "check uses the family's")
+    stage_line(progress, "table points")
     pts, kinds = table_check_points(family, table, s, spec)
     stand_in = _stand_in_cells(table, pts)
     if stand_in.any():
@@ -454,7 +456,7 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     if not len(pts):
         raise InputError("there is nothing to check in the table: every point lies in a cell "
                          "with stand-in nodes; export denser breakpoints")
-    P, src, ok, why = _plants(family, pts, spec, sc, plant_cache)
+    P, src, ok, why = _plants(family, pts, spec, sc, plant_cache, progress)
     for i in np.flatnonzero(~ok):
         notes.append(f"check point ({point_text(family.variable_names, pts[i])}) skipped: "
                      f"{why[i]}")
@@ -464,18 +466,21 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
     pts, kinds, src = pts[ok], kinds[ok], src[ok]
     P = {k: v[ok] for k, v in P.items()}
     criterion = PassCriterion.from_settings(gamma, s)
+    stage_line(progress, "table lookup")
     Kt = table_matrices(table, pts)
     if table.discrete:
         from .discrete_loop import zoh_plants
 
         Pd = zoh_plants(P, table.sample_time)
         values = check_points(Pd, Kt, gamma, s, jobs=jobs, cluster=cluster, progress=progress,
-                              sample_time=table.sample_time)
+                              sample_time=table.sample_time, stage="table check")
     else:
-        values = check_points(P, Kt, gamma, s, jobs=jobs, cluster=cluster, progress=progress)
+        values = check_points(P, Kt, gamma, s, jobs=jobs, cluster=cluster, progress=progress,
+                              stage="table check")
     passed, reasons = criterion.judge(values)
     light = replace(s, classical=False)
     compared, compared_passed = {}, {}
+    stage_line(progress, "compare")
     Ki = sc.evaluate(pts)
     loops = [("interpolant", Ki, P, 0.0)]
     if table.discrete:
@@ -490,7 +495,8 @@ def check_table(family: Family, table, settings=None, spec=None, jobs: int = 1, 
         if cont is not None:
             loops.append(("table_continuous", table_matrices(cont, pts), P, 0.0))
     for label, K, plant, T in loops:
-        vals = check_points(plant, K, gamma, light, jobs=jobs, cluster=cluster, sample_time=T)
+        vals = check_points(plant, K, gamma, light, jobs=jobs, cluster=cluster, sample_time=T,
+                            progress=progress, stage=f"vs {label.replace('_', ' ')}")
         compared[label] = {k: vals[k] for k in _COMPARED}
         compared_passed[label] = criterion.judge(vals)[0]
     result = TableCheck(

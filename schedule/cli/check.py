@@ -198,8 +198,7 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
                                        gamma_opt=False if no_gamma_opt else None,
                                        loo_gates=True if strict_loo else None,
                                        rate_certificate=True if rate_certificate else None)
-    bar = ProgressBar(enabled=False if (quiet or as_json) else None)
-    try:
+    with ProgressBar(enabled=False if quiet else None) as bar:
         result = check_family(family, settings, spec=spec, jobs=jobs, cluster=cluster,
                               progress=bar)
         table_result = None
@@ -209,15 +208,13 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
             table_result = check_table(family, table, settings, spec=spec, jobs=jobs,
                                        cluster=cluster, progress=bar, source=str(table_file))
             _note_source(table_result, table, family_file)
-    finally:
-        bar.close()
-    result.notes[:0] = code_notes(family, spec, design_file)
-    if report_dir is not None:
-        from ..interpolate import ScheduledController
-        from ..report import write_report
+        result.notes[:0] = code_notes(family, spec, design_file)
+        if report_dir is not None:
+            from ..interpolate import ScheduledController
+            from ..report import write_report
 
-        write_report(result, family, report_dir, ScheduledController.from_family(family),
-                     table_check=table_result)
+            write_report(result, family, report_dir, ScheduledController.from_family(family),
+                         table_check=table_result, progress=bar)
     if as_json:
         out = result.to_dict()
         if table_result is not None:

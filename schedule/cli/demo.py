@@ -25,10 +25,11 @@ def demo_command(out, jobs, quiet, as_json):
     from ..demo import run_demo
     from ..progress import ProgressBar
 
-    bar = ProgressBar(enabled=False if (quiet or as_json) else None)
+    bar = ProgressBar(enabled=False if quiet else None)
 
     def stage(name: str) -> None:
-        if not (quiet or as_json):
+        if bar.enabled:
+            bar.close()
             click.echo(f"== {name}", err=True)
 
     try:

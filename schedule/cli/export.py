@@ -150,9 +150,10 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     model of the design file given with --design; otherwise the family's interpolated
     plant (a weaker check).
     """
-    from ..export import build_table, file_sha256, write_fmu, write_table
+    from ..export import file_sha256
     from ..export.c_source import check_prefix
     from ..export.fmu import model_identifier
+    from ..progress import ProgressBar
     from ..store import read_family
 
     if no_check and (model is not None or design_file is not None):
@@ -194,59 +195,14 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     build = {"breakpoints": breakpoints, "sample_time": sample_time, "method": method,
              "prewarp": prewarp, "source_sha256": file_sha256(family_file),
              "limits": settings["limits"]}
-    checked = None
-    if no_check:
-        table = build_table(family, **build)
-    else:
-        from ..check import CheckSettings
-        from ..export.checked import build_checked_table
-        from ..progress import ProgressBar
-
-        bar = ProgressBar(enabled=False if as_json else None)
-        try:
-            checked = build_checked_table(family, **build, settings=CheckSettings.from_spec(spec),
-                                          spec=spec, jobs=jobs, progress=bar)
-        except InputError as exc:
-            raise InputError(f"the table check could not run: {exc}; or export unchecked with "
-                             "--no-table-check") from None
-        finally:
-            bar.close()
+    with ProgressBar() as bar:
+        checked, table, written, notes = _build_and_write(
+            family, build, spec, no_check, jobs, bar, formats, out, prefix, no_binary)
+    if checked is not None:
         checked.check.notes[:0] = code_notes(family, spec, design_file)
-        table = checked.table
-        if not checked.passed:
-            _print_check(checked, as_json, failed=True)
-            sys.exit(1)
-    out = Path(out)
-    written = []
-    notes = []
-
-    def write(fmt: str, target: Path) -> list[Path]:
-        if fmt != "fmu":
-            return write_table(table, fmt, target, prefix=prefix)
-        outcome = write_fmu(target, table, binary=not no_binary)
-        if outcome.note:
-            notes.append(outcome.note)
-        else:
-            notes.append(f"FMU binary for {outcome.platform} built in "
-                         f"{outcome.build_seconds:.2f} s")
-        return [outcome.path]
-
-    if len(formats) == 1:
-        written += write(formats[0], out)
-    else:
-        if out.exists() and not out.is_dir():
-            raise InputError(f"--out {out} is a file; several formats need a folder")
-        if not out.exists():
-            if not out.parent.is_dir() and str(out.parent):
-                raise InputError(f"cannot write folder {out}: folder {out.parent} does not "
-                                 "exist; create it or choose another --out")
-            try:
-                os.mkdir(out)
-            except OSError as exc:
-                raise InputError(f"cannot create folder {out}: {exc.strerror}; choose another "
-                                 "--out") from None
-        for fmt in formats:
-            written += write(fmt, folder_target(out, fmt))
+    if table is None:
+        _print_check(checked, as_json, failed=True)
+        sys.exit(1)
     info = {"family": str(family_file), "formats": list(formats),
             "paths": [str(p) for p in written], "nodes": int(table.A.shape[0]),
             "shape": dict(zip([v.name for v in table.variables], table.shape, strict=True)),
@@ -290,6 +246,64 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
         click.echo("table check: skipped (--no-table-check)")
     for p in written:
         click.echo(f"wrote {p}")
+
+def _build_and_write(family, build, spec, no_check, jobs, bar, formats, out, prefix, no_binary):
+    """Build (and check) the table, then write it: ``(checked, table, written, notes)``;
+    ``table`` is None when the table fails its check (nothing written)."""
+    from ..export import build_table, write_fmu, write_table
+    from ..progress import stage_line
+
+    checked = None
+    if no_check:
+        stage_line(bar, "build table")
+        table = build_table(family, **build)
+    else:
+        from ..check import CheckSettings
+        from ..export.checked import build_checked_table
+
+        try:
+            checked = build_checked_table(family, **build, settings=CheckSettings.from_spec(spec),
+                                          spec=spec, jobs=jobs, progress=bar)
+        except InputError as exc:
+            raise InputError(f"the table check could not run: {exc}; or export unchecked with "
+                             "--no-table-check") from None
+        table = checked.table
+        if not checked.passed:
+            return checked, None, [], []
+    out = Path(out)
+    written = []
+    notes = []
+
+    def write(fmt: str, target: Path) -> list[Path]:
+        stage_line(bar, f"write {fmt}")
+        if fmt != "fmu":
+            return write_table(table, fmt, target, prefix=prefix)
+        outcome = write_fmu(target, table, binary=not no_binary)
+        if outcome.note:
+            notes.append(outcome.note)
+        else:
+            notes.append(f"FMU binary for {outcome.platform} built in "
+                         f"{outcome.build_seconds:.2f} s")
+        return [outcome.path]
+
+    if len(formats) == 1:
+        written += write(formats[0], out)
+    else:
+        if out.exists() and not out.is_dir():
+            raise InputError(f"--out {out} is a file; several formats need a folder")
+        if not out.exists():
+            if not out.parent.is_dir() and str(out.parent):
+                raise InputError(f"cannot write folder {out}: folder {out.parent} does not "
+                                 "exist; create it or choose another --out")
+            try:
+                os.mkdir(out)
+            except OSError as exc:
+                raise InputError(f"cannot create folder {out}: {exc.strerror}; choose another "
+                                 "--out") from None
+        for fmt in formats:
+            written += write(fmt, folder_target(out, fmt))
+    return checked, table, written, notes
+
 
 
 def _check_spec(family, model, design_file):

@@ -199,11 +199,10 @@ def inspect_command(family_file: str, as_json: bool, evidence: bool, jobs: int) 
     and closes the predicted controller with the true plant there (max |T|/gamma over
     the stable predictions; 'unstable' counts the others).
     """
-    def progress(label: str) -> None:
-        if not as_json:
-            click.echo(f"leave-one-out: {label}", err=True)
+    from ..progress import ProgressBar
 
-    info = inspect_family(family_file, evidence=evidence, progress=progress, jobs=jobs)
+    with ProgressBar() as bar:
+        info = inspect_family(family_file, evidence=evidence, progress=bar, jobs=jobs)
     if as_json:
         click.echo(json.dumps(info, indent=2))
     else:

@@ -51,6 +51,7 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
     """
     from ..check import CheckSettings, spec_for_family
     from ..paths import refuse_output_over_input
+    from ..progress import ProgressBar, stage_line
     from ..refine import refine_family
     from ..store import read_family, write_family
 
@@ -64,10 +65,13 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
             raise InputError(f"refinement needs the plant model at new points: {note}")
     settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False,
                                        loo_gates=True if strict_loo else None)
-    outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster)
-    written = not outcome.worse
-    if written:
-        write_family(out, outcome.family)
+    with ProgressBar(enabled=False if quiet else None) as bar:
+        outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster,
+                                progress=bar)
+        written = not outcome.worse
+        if written:
+            stage_line(bar, "write")
+            write_family(out, outcome.family)
     last = outcome.rounds[-1]
     names = last.variable_names
     if as_json:

@@ -7,6 +7,7 @@ import json
 import click
 
 from ..errors import InputError
+from ..progress import ProgressBar, stage_line
 from .common import design_option
 
 
@@ -144,7 +145,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
     from ..paths import input_file, refuse_output_over_input
-    from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
+    from ..simulate import crane_trajectory, read_trajectory
     from ..store import read_family
     from .export import export_settings
 
@@ -198,23 +199,13 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             measured, size, at = CRANE_STEP
             at = _parse_point(step_at, names) if step_at else dict(at)
         step = (measured, size, at)
-    result = simulate(model, controller, traj, substeps=substeps)
+    with ProgressBar() as bar:
+        result, files, summary = _run(model, controller, traj, substeps, step, table, bar,
+                                      family_file, entry)
+        stage_line(bar, "write")
+        paths = write_dir_atomic(out, files, "simulation folder")
     for note in result.notes:
         click.echo(f"warning: {note}", err=True)
-    summary = result.summary()
-    summary.update({"family": str(family_file), "model": entry,
-                    "sample_time": controller.sample_time, "method": controller.table.method,
-                    "limits": table.actuator_limits.to_metadata(table.control_names),
-                    "anti_windup": table.anti_windup})
-    files = {"simulation.csv": result_csv(result)}
-    if step is not None:
-        summary["step"], step_files = _step_comparison(model, table, step, substeps)
-        files.update(step_files)
-    files["summary.json"] = json.dumps(summary, indent=1) + "\n"
-    what = getattr(model, "description", "") or "the nonlinear model"
-    files.update(result_plots(result, title=f"Under the scheduled table (T = "
-                                            f"{controller.sample_time:g} s): {what}"))
-    paths = write_dir_atomic(out, files, "simulation folder")
     if as_json:
         summary["paths"] = [str(p) for p in paths]
         click.echo(json.dumps(summary, indent=1))
@@ -239,7 +230,29 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
         click.echo(f"wrote {p}")
 
 
-def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
+def _run(model, controller, traj, substeps, step, table, bar, family_file, entry):
+    """Simulate, run the step comparison, draw the plots: ``(result, files, summary)``."""
+    from ..simulate import result_csv, result_plots, simulate
+
+    result = simulate(model, controller, traj, substeps=substeps, progress=bar)
+    summary = result.summary()
+    summary.update({"family": str(family_file), "model": entry,
+                    "sample_time": controller.sample_time, "method": controller.table.method,
+                    "limits": table.actuator_limits.to_metadata(table.control_names),
+                    "anti_windup": table.anti_windup})
+    files = {"simulation.csv": result_csv(result)}
+    if step is not None:
+        summary["step"], step_files = _step_comparison(model, table, step, substeps, bar)
+        files.update(step_files)
+    files["summary.json"] = json.dumps(summary, indent=1) + "\n"
+    what = getattr(model, "description", "") or "the nonlinear model"
+    stage_line(bar, "plots")
+    files.update(result_plots(result, title=f"Under the scheduled table (T = "
+                                            f"{controller.sample_time:g} s): {what}"))
+    return result, files, summary
+
+
+def _step_comparison(model, table, step, substeps, progress=None) -> tuple[dict, dict]:
     """Run the step with and without anti-windup (and without limits); summary and files."""
     import csv
     import io
@@ -252,7 +265,7 @@ def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
     names = tuple(v.name for v in table.variables)
     traj = step_trajectory(names, at, measured, size, duration=STEP_DURATION,
                            sample_time=table.sample_time)
-    runs = anti_windup_comparison(model, table, traj, substeps=substeps)
+    runs = anti_windup_comparison(model, table, traj, substeps=substeps, progress=progress)
     info = {"output": measured, "size": size, "at": at, "duration": STEP_DURATION,
             "overshoot_percent": {}, "final_error": {}, "peak_command": {}}
     for name, res in runs.items():
@@ -274,6 +287,7 @@ def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
         row += [res.inputs[k, res.input_names.index(c)] for res in runs.values() for c in controls]
         w.writerow([repr(float(v)) for v in row])
     where = ", ".join(f"{k} = {v:g}" for k, v in at.items())
+    stage_line(progress, "step plot")
     png = comparison_plot(runs, measured, title=f"Step {size:g} in {measured} at {where} "
                                                 "(limited command)")
     return info, {"step.csv": buf.getvalue(), "step.png": png}

@@ -124,6 +124,8 @@ def build_checked_table(family: Family, breakpoints=None, sample_time: float = 0
         family's interpolated plant, a weaker check).
     jobs, cluster : parallel checks.
     max_rounds, max_nodes : where the insertion gives up.
+    progress : callback ``(stage, done, total)`` (the later rounds' stages read
+        "round r: ...").
     source : label of the table in messages.
 
     Returns
@@ -134,6 +136,7 @@ def build_checked_table(family: Family, breakpoints=None, sample_time: float = 0
     from ..analysis.table_check import check_table
     from ..check import CheckSettings
     from ..interpolate import ScheduledController
+    from ..progress import prefixed, stage_line
     from .table import build_table, parse_breakpoints
 
     names = family.variable_names
@@ -141,6 +144,7 @@ def build_checked_table(family: Family, breakpoints=None, sample_time: float = 0
         breakpoints = parse_breakpoints(breakpoints, family.variables)
     kw = {"sample_time": sample_time, "method": method, "prewarp": prewarp,
           "source_sha256": source_sha256, "limits": limits}
+    stage_line(progress, "build table")
     table = build_table(family, breakpoints=breakpoints, **kw)
     s = settings or CheckSettings.from_spec(spec)
     s = replace(s, gamma_opt=False, rate=False, loo=False)
@@ -149,7 +153,8 @@ def build_checked_table(family: Family, breakpoints=None, sample_time: float = 0
     added: dict[str, set] = {n: set() for n in names}
     cache: dict = {}  # plants at the points already checked, for the later rounds
     for round_no in range(max_rounds + 1):
-        tc = check_table(family, table, s, spec, jobs=jobs, cluster=cluster, progress=progress,
+        say = prefixed(progress, f"round {round_no}:") if round_no else progress
+        tc = check_table(family, table, s, spec, jobs=jobs, cluster=cluster, progress=say,
                          compare=False, controller=controller, source=source,
                          plant_cache=cache)
         out.table, out.check = table, tc
