@@ -1,0 +1,324 @@
+"""The progress bar's arithmetic (fake clock) and the stages every verb reports.
+
+The rate and ETA are checked against values derived by hand in the comments
+(items done / seconds since the stage's first report; ETA = items left / rate). The
+verbs run under ``SCHEDULE_PROGRESS=1`` (forced drawing without a terminal) on a
+three-point mass-spring family; their stderr is parsed into stage labels.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import re
+import sys
+
+import pytest
+from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+from click.testing import CliRunner
+
+from schedule.progress import (
+    ProgressBar,
+    format_rate,
+    format_seconds,
+    prefixed,
+    stage_line,
+    timed_slices,
+)
+
+
+class FakeClock:
+    """A clock the test moves by hand."""
+
+    def __init__(self, t: float = 100.0) -> None:
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def _bar(clock, **kw):
+    stream = io.StringIO()
+    return ProgressBar(enabled=True, stream=stream, clock=clock, tick=None, **kw), stream
+
+
+def _frames(text: str) -> list[str]:
+    """Every drawn frame of a stream (carriage returns and newlines split frames)."""
+    return [f.replace("\x1b[K", "").rstrip() for f in re.split(r"[\r\n]+", text) if f.strip()]
+
+
+# ----------------------------------------------------------------------------- arithmetic
+def test_rate_and_eta_from_the_first_report_of_the_stage():
+    clock = FakeClock()
+    bar, stream = _bar(clock)
+    bar("gamma", 0, 100)
+    clock.t += 5.0
+    bar("gamma", 25, 100)
+    # by hand: 25 items in 5 s -> 5 items/s; 75 left / 5 per s -> 15 s
+    assert bar.rate(25, clock.t) == pytest.approx(5.0)
+    assert bar.eta(25, 100, clock.t) == pytest.approx(15.0)
+    last = _frames(stream.getvalue())[-1]
+    assert "25/100" in last and "5.00/s" in last and "ETA 15 s" in last
+    clock.t += 15.0
+    bar("gamma", 100, 100)
+    # by hand: 100 items in 20 s -> 5 items/s; done, so the elapsed 20 s instead of an ETA
+    last = _frames(stream.getvalue())[-1]
+    assert "100/100" in last and "5.00/s" in last and "in 20 s" in last and "ETA" not in last
+
+
+def test_a_stage_that_jumps_to_done_shows_no_absurd_rate():
+    # the first report already says all 216 done (the caller did not announce the stage):
+    # nothing was seen progressing, so there is no rate, only the (zero) elapsed time
+    clock = FakeClock()
+    bar, stream = _bar(clock)
+    bar("check", 216, 216)
+    assert bar.rate(216, clock.t) is None
+    last = _frames(stream.getvalue())[-1]
+    assert "216/216" in last and "--" in last
+    assert not re.search(r"\d{4,}(\.\d+)?/s", last)  # no 216000000000.0/s
+
+
+def test_rate_counts_only_progress_seen_since_the_first_report():
+    # first report at 16 of 216 (time 0), next at 48 (0.5 s later): 32 items in 0.5 s
+    clock = FakeClock()
+    bar, _ = _bar(clock)
+    bar("check", 16, 216)
+    clock.t += 0.5
+    bar("check", 48, 216)
+    assert bar.rate(48, clock.t) == pytest.approx(64.0)
+    assert bar.eta(48, 216, clock.t) == pytest.approx((216 - 48) / 64.0)
+
+
+def test_slow_stages_read_seconds_each_and_durations_read_minutes():
+    # one item per 4 s: 0.25/s reads "4.0 s each"; 65 s reads 1:05 (m:ss), 3725 s 1:02:05
+    assert format_rate(0.25) == "4.0 s each"
+    assert format_rate(87.8) == "87.8/s" and format_rate(1234.4) == "1234/s"
+    assert format_rate(None) == "--"
+    assert format_seconds(4.24) == "4.2 s" and format_seconds(65) == "1:05"
+    assert format_seconds(3725) == "1:02:05"
+
+
+def test_stage_line_ends_with_its_elapsed_time():
+    clock = FakeClock()
+    bar, stream = _bar(clock)
+    stage_line(bar, "report")
+    clock.t += 2.5
+    bar.close()
+    frames = _frames(stream.getvalue())
+    assert frames[0].startswith("report") and "..." in frames[0]
+    assert frames[-1] == "report       done in 2.5 s"
+    assert stream.getvalue().endswith("\n")
+
+
+def test_redraws_are_throttled_but_the_last_step_is_drawn():
+    clock = FakeClock()
+    bar, stream = _bar(clock, min_interval=0.1)
+    bar("plants", 0, 1000)
+    for i in range(1, 1001):
+        clock.t += 0.001  # 1000 reports over 1 s: at most ~10 redraws besides first/last
+        bar("plants", i, 1000)
+    frames = _frames(stream.getvalue())
+    assert len(frames) <= 13
+    assert "1000/1000" in frames[-1]
+
+
+def test_a_new_stage_with_the_same_label_starts_a_new_line():
+    clock = FakeClock()
+    bar, stream = _bar(clock)
+    bar("check", 0, 10)
+    bar("check", 10, 10)
+    bar("check", 0, 5)  # another batch (another total): a new stage, a new line
+    assert stream.getvalue().count("\n") == 1
+    assert _frames(stream.getvalue())[-1].startswith("check") and "0/5" in \
+        _frames(stream.getvalue())[-1]
+
+
+def test_enabled_follows_terminal_environment_and_quiet(monkeypatch):
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    monkeypatch.delenv("SCHEDULE_PROGRESS", raising=False)
+    assert ProgressBar(stream=Tty()).enabled and not ProgressBar(stream=io.StringIO()).enabled
+    monkeypatch.setenv("SCHEDULE_PROGRESS", "1")
+    assert ProgressBar(stream=io.StringIO()).enabled
+    assert not ProgressBar(enabled=False, stream=Tty()).enabled  # --quiet wins
+    monkeypatch.setenv("SCHEDULE_PROGRESS", "0")
+    assert not ProgressBar(stream=Tty()).enabled
+    bar = ProgressBar(enabled=False, stream=io.StringIO())
+    bar("x", 1, 2)
+    bar.close()
+    assert bar.stream.getvalue() == ""
+
+
+def test_prefixed_labels():
+    seen = []
+    prefixed(lambda *a: seen.append(a), "round 1:")("check", 3, 9)
+    assert seen == [("round 1: check", 3, 9)] and prefixed(None, "x") is None
+
+
+def test_timed_slices_cover_the_range_and_size_from_the_measured_time():
+    # 0.01 s per item (the fake clock moves while the caller works): the first slice is
+    # 32 items; after it, 0.75 s / 0.01 s = 75 items per slice, capped by `largest`
+    clock = FakeClock()
+    sizes = []
+    for sl in timed_slices(400, first=32, seconds=0.75, clock=clock):
+        sizes.append(sl.stop - sl.start)
+        clock.t += 0.01 * (sl.stop - sl.start)
+    assert sum(sizes) == 400 and sizes[:3] == [32, 75, 75]
+    capped = [s.stop - s.start for s in timed_slices(100, first=10, largest=20,
+                                                     clock=FakeClock())]
+    assert sum(capped) == 100 and max(capped) <= 20
+
+
+def test_ticker_redraws_an_unfinished_stage(monkeypatch):
+    import threading
+
+    stream = io.StringIO()
+    bar = ProgressBar(enabled=True, stream=stream, tick=0.01)
+    drawn = threading.Event()
+    write = stream.write
+
+    def spy(text):
+        if text.count("witness") and "..." in text:
+            if stream.getvalue().count("witness") >= 1:
+                drawn.set()
+        return write(text)
+
+    monkeypatch.setattr(stream, "write", spy)
+    stage_line(bar, "witness")
+    assert drawn.wait(10.0)  # a redraw by the thread (a generous wait, not a time bound)
+    bar.close()
+    assert bar._ticker is None
+
+
+# ----------------------------------------------------------------------------- the verbs
+MODEL = '''
+import numpy as np
+from schedule.types import LinearPlant
+
+def plant_at(point):
+    k = 1.0 + 9.0 * point["stiffness"]
+    A = np.array([[0.0, 1.0], [-k, -0.2]])
+    B = np.array([[0.0, 0.0], [1.0, 1.0]])
+    return LinearPlant(A, B, np.array([[1.0, 0.0]]), np.zeros((1, 2)), ("x", "v"),
+                       ("force", "push"), ("pos",))
+'''
+
+NONLINEAR = '''
+import numpy as np
+from schedule.linearize import NonlinearModel
+
+def make():
+    def f(x, u, p):
+        k = 1.0 + 9.0 * p["stiffness"]
+        return np.array([x[1], -k * x[0] - 0.2 * x[1] + u[0] + u[1]])
+    return NonlinearModel(state_names=("x", "v"), input_names=("force", "push"),
+                          output_names=("pos",), dynamics=f,
+                          outputs=lambda x, u, p: np.array([x[0]]),
+                          variable_names=("stiffness",))
+'''
+
+DESIGN = ('title = "spring"\n'
+          + toml_variables(("stiffness", "-", 0.0, 1.0))
+          + """[source]
+model_file = "model.py"
+function = "plant_at"
+[grid]
+stiffness = [0.0, 0.5, 1.0]
+"""
+          + toml_channels(["force"], ["pos"], ["push"], ["pos"])
+          + toml_weights(performance=[("pos", 2.0)], effort=[("force", 5.0)],
+                         noise=[("pos", 0.05)], disturbance=[("push", 1.0)])
+          + SCHEDULED_MATRICES
+          + "[check]\nsamples = 4\ngain_margin_db = 0.0\nphase_margin_deg = 0.0\n")
+
+
+def _runner():
+    try:
+        return CliRunner(mix_stderr=False)  # click 8.1
+    except TypeError:
+        return CliRunner()  # click >= 8.2 keeps stderr apart
+
+
+def _stages(stderr: str) -> dict[str, str]:
+    """Stage label -> its last frame, from the forced progress output."""
+    out = {}
+    for frame in _frames(stderr):
+        m = re.match(r"^(.+?)\s+(\[|\.\.\.|done in)", frame)
+        if m:
+            out[m.group(1).strip()] = frame
+    return out
+
+
+def _full(frame: str) -> bool:
+    """A bar drawn full (done == total) or a stage line finished."""
+    m = re.search(r"\] (\d+)/(\d+)", frame)
+    return bool(m and m.group(1) == m.group(2)) or "done in" in frame
+
+
+@pytest.fixture(scope="module")
+def spring(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("progress")
+    (tmp / "model.py").write_text(MODEL)
+    (tmp / "spring_nl.py").write_text(NONLINEAR)
+    (tmp / "design.toml").write_text(DESIGN)
+    (tmp / "traj.csv").write_text("time,stiffness,ref:pos\n0,0,0\n0.5,0.5,1\n1,1,1\n")
+    return tmp
+
+
+def _run(args, monkeypatch, tmp):
+    from schedule.cli.main import main
+
+    monkeypatch.setenv("SCHEDULE_PROGRESS", "1")
+    monkeypatch.chdir(tmp)
+    res = _runner().invoke(main, args)
+    assert res.exit_code in (0, 1), (res.output, res.stderr)
+    return res
+
+
+def test_every_verb_reports_every_stage(spring, monkeypatch):
+    monkeypatch.syspath_prepend(str(spring))
+    monkeypatch.delitem(sys.modules, "spring_nl", raising=False)
+    expected = {
+        ("design", "design.toml", "--out", "fam.h5"):
+            {"plants", "gamma", "controllers", "interpolant", "write"},
+        ("design", "design.toml", "--out", "bare.h5", "--no-fit"):
+            {"plants", "gamma", "controllers", "write"},
+        ("check", "fam.h5", "--design", "design.toml", "--report", "rep"):
+            {"check points", "plants", "controllers", "leave-one-out", "check", "gamma_opt",
+             "rate bound", "report"},
+        ("export", "fam.h5", "--design", "design.toml", "-f", "json", "--sample-time",
+         "0.05", "--out", "t.json"):
+            {"build table", "table points", "plants", "table lookup", "table check",
+             "write json"},
+        ("check", "fam.h5", "--design", "design.toml", "--table", "t.json", "-q"): set(),
+        ("check", "fam.h5", "--design", "design.toml", "--table", "t.json"):
+            {"check", "table points", "table lookup", "table check", "compare",
+             "vs interpolant", "vs interpolant discrete"},
+        ("refine", "fam.h5", "--design", "design.toml", "--out", "ref.h5", "--budget", "2"):
+            {"round 0: check points", "round 0: plants", "round 0: check", "write"},
+        ("simulate", "fam.h5", "--model", "spring_nl:make", "--trajectory", "traj.csv",
+         "--sample-time", "0.05", "--out", "sim"):
+            {"simulate", "plots", "write"},
+        ("inspect", "bare.h5", "--evidence"): {"interpolant", "loo norms"},
+    }
+    for args, stages in expected.items():
+        res = _run(list(args), monkeypatch, spring)
+        seen = _stages(res.stderr)
+        assert stages <= set(seen), (args, sorted(seen))
+        if not stages:  # --quiet draws nothing
+            assert seen == {}, args
+        for label, frame in seen.items():
+            assert _full(frame), (args, label, frame)  # every stage ends drawn complete
+        assert "\r" not in res.stdout and "ETA" not in res.stdout, args
+
+
+def test_json_stdout_stays_pure_json_with_progress_forced(spring, monkeypatch):
+    for args in (["design", "design.toml", "--out", "fam2.h5", "--json"],
+                 ["check", "fam2.h5", "--design", "design.toml", "--json"],
+                 ["export", "fam2.h5", "--design", "design.toml", "-f", "json",
+                  "--sample-time", "0.05", "--out", "t2.json", "--json"]):
+        res = _run(args, monkeypatch, spring)
+        json.loads(res.stdout)  # nothing but the JSON document
+        assert _stages(res.stderr), args  # the progress went to stderr
