@@ -196,14 +196,18 @@ class ProgressBar:
         self.stream.flush()
         self._open = False
 
-    def close(self) -> None:
-        """End the line of the bar (if one was drawn) and stop the redraw thread."""
+    def close(self, erase: bool = False) -> None:
+        """End the line of the bar (if one was drawn) and stop the redraw thread;
+        ``erase`` clears an unfinished line instead (an error message follows)."""
         if self._ticker is not None:
             self._stop.set()
             self._ticker.join()
             self._ticker = None
         with self._lock:
-            if self.enabled:
+            if self.enabled and erase and self._open and self._tty():
+                self.stream.write("\r\x1b[K")
+                self.stream.flush()
+            elif self.enabled:
                 self._finish(self.clock())
             self._stage = None
             self._open = False

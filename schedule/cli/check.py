@@ -12,7 +12,7 @@ import click
 
 from ..design_file import MAX_CHECK_SAMPLES, CheckSpec
 from ..errors import InputError
-from .common import code_notes, design_inputs, design_option
+from .common import code_notes, design_inputs, design_option, progress_bar
 
 _DEFAULTS = CheckSpec()  # the one list of check defaults
 
@@ -173,11 +173,11 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
     """
     from ..check import CheckSettings, check_family, spec_for_family
     from ..paths import refuse_output_over_input
-    from ..progress import ProgressBar
     from ..store import read_family
 
     refuse_output_over_input([], [family_file, points_file, design_file, table_file],
                              folders=[report_dir])
+    bar = progress_bar(quiet, "read inputs")
     family = read_family(family_file)
     table = None
     if table_file is not None:
@@ -198,7 +198,7 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
                                        gamma_opt=False if no_gamma_opt else None,
                                        loo_gates=True if strict_loo else None,
                                        rate_certificate=True if rate_certificate else None)
-    with ProgressBar(enabled=False if quiet else None) as bar:
+    with bar:
         result = check_family(family, settings, spec=spec, jobs=jobs, cluster=cluster,
                               progress=bar)
         table_result = None

@@ -8,15 +8,33 @@ import a model given with ``--model`` or named in a design file given with
 
 from __future__ import annotations
 
+import sys
+
 import click
 
-__all__ = ["design_option", "design_inputs", "code_notes"]
+__all__ = ["design_option", "design_inputs", "code_notes", "progress_bar"]
 
 design_option = click.option(
     "--design", "design_file", type=click.Path(dir_okay=False), default=None,
     help="Design file whose model entries (source.model / model_file / nonlinear_model) may "
          "be imported: normally the file the family was built from. The design stored inside "
          "a family file is data and never chooses code to run.")
+
+
+def progress_bar(quiet: bool = False, first: str | None = None):
+    """The verb's :class:`schedule.progress.ProgressBar` (stderr), closed when the command
+    ends, also on an error before its message is printed; ``first`` opens a stage line at
+    once (reading the inputs and importing the model come before any counted stage)."""
+    from ..progress import ProgressBar, stage_line
+
+    bar = ProgressBar(enabled=False if quiet else None)
+    ctx = click.get_current_context(silent=True)
+    if ctx is not None:
+        # closed while an error propagates: clear the line for the error's message
+        ctx.call_on_close(lambda: bar.close(erase=isinstance(sys.exc_info()[1], Exception)))
+    if first:
+        stage_line(bar, first)
+    return bar
 
 
 def design_inputs(spec) -> list:

@@ -127,10 +127,10 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
         raise InputError(f"design file {spec} does not exist; check the path") from None
     refuse_output_over_input([out, partial_path(out)], design_inputs(design))
     prestart(jobs, cluster)  # a bad --cluster fails here, before any work
-    estimate = None if resume else _estimate(design, jobs, cluster, not no_fit, yes, as_json,
-                                             quiet)
     bar = ProgressBar(enabled=False if quiet else None, stream=sys.stderr)
     try:
+        estimate = None if resume else _estimate(design, jobs, cluster, not no_fit, yes,
+                                                 as_json, quiet, bar)
         run = run_design(design, out, jobs=jobs, cluster=cluster, resume=resume, progress=bar,
                          fit=not no_fit, chunk_size=chunk_size)
     finally:
@@ -147,13 +147,18 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
 ESTIMATE_MIN_POINTS = 2 * CHUNK_SIZE  # smaller runs start at once (see the docstring)
 
 
-def _estimate(design, jobs: int, cluster, fit: bool, yes: bool, as_json: bool, quiet: bool):
+def _estimate(design, jobs: int, cluster, fit: bool, yes: bool, as_json: bool, quiet: bool,
+              bar=None):
     """The estimate of a large run; asks (or refuses) when it is above the thresholds."""
     from ..family import envelope_size, estimate_design
+    from ..progress import stage_line
 
     if envelope_size(design) < ESTIMATE_MIN_POINTS:
         return None
+    stage_line(bar, "estimate")
     est = estimate_design(design, jobs=jobs, cluster=cluster, fit=fit)
+    if bar is not None:
+        bar.close()  # before a question or a refusal
     why = est.needs_confirmation()
     if not why or yes:
         return est

@@ -17,7 +17,7 @@ import click
 
 from ..errors import InputError
 from ..table_files import DEFAULT_PREFIX, FORMATS, folder_target, format_of_suffix, listing
-from .common import code_notes, design_inputs, design_option
+from .common import code_notes, design_inputs, design_option, progress_bar
 
 
 def export_settings(family) -> dict:
@@ -153,12 +153,12 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     from ..export import file_sha256
     from ..export.c_source import check_prefix
     from ..export.fmu import model_identifier
-    from ..progress import ProgressBar
     from ..store import read_family
 
     if no_check and (model is not None or design_file is not None):
         raise InputError("--model and --design choose the plant of the table check; drop them "
                          "or drop --no-table-check")
+    bar = progress_bar(False, "read inputs")
     family = read_family(family_file)
     settings = export_settings(family)
     if not formats:
@@ -195,7 +195,7 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     build = {"breakpoints": breakpoints, "sample_time": sample_time, "method": method,
              "prewarp": prewarp, "source_sha256": file_sha256(family_file),
              "limits": settings["limits"]}
-    with ProgressBar() as bar:
+    with bar:
         checked, table, written, notes = _build_and_write(
             family, build, spec, no_check, jobs, bar, formats, out, prefix, no_binary)
     if checked is not None:

@@ -11,7 +11,7 @@ import numpy as np
 from ..design_file import MAX_CHECK_SAMPLES
 from ..errors import InputError
 from ..sources import ignored_code_note
-from .common import design_inputs, design_option
+from .common import design_inputs, design_option, progress_bar
 
 
 @click.command("refine")
@@ -51,11 +51,12 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
     """
     from ..check import CheckSettings, spec_for_family
     from ..paths import refuse_output_over_input
-    from ..progress import ProgressBar, stage_line
+    from ..progress import stage_line
     from ..refine import refine_family
     from ..store import read_family, write_family
 
     refuse_output_over_input([out], [family_file, design_file])
+    bar = progress_bar(quiet, "read inputs")
     family = read_family(family_file)
     spec = spec_for_family(family, model=model, design=design_file)
     refuse_output_over_input([out], design_inputs(spec))
@@ -65,7 +66,7 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
             raise InputError(f"refinement needs the plant model at new points: {note}")
     settings = CheckSettings.from_spec(spec, samples=samples, gamma_opt=False,
                                        loo_gates=True if strict_loo else None)
-    with ProgressBar(enabled=False if quiet else None) as bar:
+    with bar:
         outcome = refine_family(family, spec, budget, settings, jobs=jobs, cluster=cluster,
                                 progress=bar)
         written = not outcome.worse

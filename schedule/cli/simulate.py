@@ -7,8 +7,8 @@ import json
 import click
 
 from ..errors import InputError
-from ..progress import ProgressBar, stage_line
-from .common import design_option
+from ..progress import stage_line
+from .common import design_option, progress_bar
 
 
 def _model_entry(family) -> str | None:
@@ -154,6 +154,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     for path, what in ((trajectory, "trajectory"), (table_file, "table file")):
         if path is not None:
             input_file(path, what)  # a folder, a device or a pipe is named as such
+    bar = progress_bar(False, "read inputs")
     family = read_family(family_file)
     if table_file is not None and (sample_time is not None or method is not None):
         given = "--sample-time" if sample_time is not None else "--method"
@@ -199,7 +200,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             measured, size, at = CRANE_STEP
             at = _parse_point(step_at, names) if step_at else dict(at)
         step = (measured, size, at)
-    with ProgressBar() as bar:
+    with bar:
         result, files, summary = _run(model, controller, traj, substeps, step, table, bar,
                                       family_file, entry)
         stage_line(bar, "write")
