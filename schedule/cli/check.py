@@ -171,13 +171,13 @@ def check_command(family_file, samples, sampler, seed, points_file, model, desig
     table's multilinear lookup and, for a discrete table, the plant discretized by
     zero-order hold at the table's sample time (exit code 1 when either fails).
     """
+    bar = progress_bar(quiet, "read inputs")  # before the imports, which take a moment
     from ..check import CheckSettings, check_family, spec_for_family
     from ..paths import refuse_output_over_input
     from ..store import read_family
 
     refuse_output_over_input([], [family_file, points_file, design_file, table_file],
                              folders=[report_dir])
-    bar = progress_bar(quiet, "read inputs")
     family = read_family(family_file)
     table = None
     if table_file is not None:

@@ -150,6 +150,7 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     model of the design file given with --design; otherwise the family's interpolated
     plant (a weaker check).
     """
+    bar = progress_bar(False, "read inputs")  # before the imports, which take a moment
     from ..export import file_sha256
     from ..export.c_source import check_prefix
     from ..export.fmu import model_identifier
@@ -158,7 +159,6 @@ def export_command(family_file, formats, out, sample_time, method, prewarp, brea
     if no_check and (model is not None or design_file is not None):
         raise InputError("--model and --design choose the plant of the table check; drop them "
                          "or drop --no-table-check")
-    bar = progress_bar(False, "read inputs")
     family = read_family(family_file)
     settings = export_settings(family)
     if not formats:

@@ -49,6 +49,7 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
     passes every check, 1 when checks still fail (budget spent or nothing left
     to add) or the refined family would be worse, 2 for bad input.
     """
+    bar = progress_bar(quiet, "read inputs")  # before the imports, which take a moment
     from ..check import CheckSettings, spec_for_family
     from ..paths import refuse_output_over_input
     from ..progress import stage_line
@@ -56,7 +57,6 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
     from ..store import read_family, write_family
 
     refuse_output_over_input([out], [family_file, design_file])
-    bar = progress_bar(quiet, "read inputs")
     family = read_family(family_file)
     spec = spec_for_family(family, model=model, design=design_file)
     refuse_output_over_input([out], design_inputs(spec))

@@ -142,6 +142,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     The model comes from --model or from the design file given with --design; one
     named only inside the family file is not imported.
     """
+    bar = progress_bar(False, "read inputs")  # before the imports, which take a moment
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
     from ..paths import input_file, refuse_output_over_input
@@ -154,7 +155,6 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     for path, what in ((trajectory, "trajectory"), (table_file, "table file")):
         if path is not None:
             input_file(path, what)  # a folder, a device or a pipe is named as such
-    bar = progress_bar(False, "read inputs")
     family = read_family(family_file)
     if table_file is not None and (sample_time is not None or method is not None):
         given = "--sample-time" if sample_time is not None else "--method"
