@@ -282,26 +282,27 @@ def test_every_verb_reports_every_stage(spring, monkeypatch):
     monkeypatch.delitem(sys.modules, "spring_nl", raising=False)
     expected = {
         ("design", "design.toml", "--out", "fam.h5"):
-            {"plants", "gamma", "controllers", "interpolant", "write"},
+            {"read design", "plants", "gamma", "controllers", "interpolant", "write"},
         ("design", "design.toml", "--out", "bare.h5", "--no-fit"):
-            {"plants", "gamma", "controllers", "write"},
+            {"read design", "plants", "gamma", "controllers", "write"},
         ("check", "fam.h5", "--design", "design.toml", "--report", "rep"):
-            {"check points", "plants", "controllers", "leave-one-out", "check", "gamma_opt",
-             "rate bound", "report"},
+            {"read inputs", "check points", "plants", "controllers", "leave-one-out", "check",
+             "gamma_opt", "rate bound", "report"},
         ("export", "fam.h5", "--design", "design.toml", "-f", "json", "--sample-time",
          "0.05", "--out", "t.json"):
-            {"build table", "table points", "plants", "table lookup", "table check",
-             "write json"},
+            {"read inputs", "build table", "table points", "plants", "table lookup",
+             "table check", "write json"},
         ("check", "fam.h5", "--design", "design.toml", "--table", "t.json", "-q"): set(),
         ("check", "fam.h5", "--design", "design.toml", "--table", "t.json"):
             {"check", "table points", "table lookup", "table check", "compare",
              "vs interpolant", "vs interpolant discrete"},
         ("refine", "fam.h5", "--design", "design.toml", "--out", "ref.h5", "--budget", "2"):
-            {"round 0: check points", "round 0: plants", "round 0: check", "write"},
+            {"read inputs", "round 0: check points", "round 0: plants", "round 0: check",
+             "write"},
         ("simulate", "fam.h5", "--model", "spring_nl:make", "--trajectory", "traj.csv",
          "--sample-time", "0.05", "--out", "sim"):
-            {"simulate", "plots", "write"},
-        ("inspect", "bare.h5", "--evidence"): {"interpolant", "loo norms"},
+            {"read inputs", "simulate", "plots", "write"},
+        ("inspect", "bare.h5", "--evidence"): {"read family", "interpolant", "loo norms"},
     }
     for args, stages in expected.items():
         res = _run(list(args), monkeypatch, spring)

@@ -11,7 +11,7 @@ import numpy as np
 from ..errors import InputError
 from ..family import CHUNK_SIZE, CONFIRM_MEMORY_FRACTION, CONFIRM_SECONDS
 from ..types import point_text
-from .common import design_inputs
+from .common import design_inputs, progress_bar
 
 
 def _summary(run, out: str) -> dict:
@@ -114,11 +114,11 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
     time and memory are estimated from a small timed sample; above the limits of
     --yes the run starts only with --yes (or after a yes at the terminal).
     """
+    bar = progress_bar(quiet, "read design")  # before the imports, which take a moment
     from ..design_file import load_design
     from ..family import partial_path, run_design
     from ..parallel import prestart
     from ..paths import refuse_output_over_input
-    from ..progress import ProgressBar
 
     refuse_output_over_input([out, partial_path(out)], [spec])
     try:
@@ -127,7 +127,6 @@ def design_command(spec: str, out: str, jobs: int, cluster: str | None, resume: 
         raise InputError(f"design file {spec} does not exist; check the path") from None
     refuse_output_over_input([out, partial_path(out)], design_inputs(design))
     prestart(jobs, cluster)  # a bad --cluster fails here, before any work
-    bar = ProgressBar(enabled=False if quiet else None, stream=sys.stderr)
     try:
         estimate = None if resume else _estimate(design, jobs, cluster, not no_fit, yes,
                                                  as_json, quiet, bar)

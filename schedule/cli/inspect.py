@@ -199,9 +199,9 @@ def inspect_command(family_file: str, as_json: bool, evidence: bool, jobs: int) 
     and closes the predicted controller with the true plant there (max |T|/gamma over
     the stable predictions; 'unstable' counts the others).
     """
-    from ..progress import ProgressBar
+    from .common import progress_bar
 
-    with ProgressBar() as bar:
+    with progress_bar(False, "read family") as bar:
         info = inspect_family(family_file, evidence=evidence, progress=bar, jobs=jobs)
     if as_json:
         click.echo(json.dumps(info, indent=2))
