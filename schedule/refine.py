@@ -274,8 +274,8 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
     jobs, cluster : parallel synthesis and checks.
     max_rounds : safety stop on the number of rounds.
     progress : callback ``(stage, done, total)``; the stages of round r read
-        "round r: ..." (check, synthesis of the new points, refit), the final
-        comparison's "input: ...".
+        "round r: ..." (its check), "round r: new ..." (the points it adds: plants,
+        gamma, controllers) and "round r: refit ..."; the final comparison's "input: ...".
 
     Returns
     -------
@@ -337,8 +337,9 @@ def refine_family(family: Family, spec, budget: int, settings: CheckSettings | N
                 break
             take, new_bps, bps_added = props[:room], None, {}
         out.family = _refit(extend_family(out.family, spec, take, jobs=jobs, cluster=cluster,
-                                          breakpoints=new_bps, progress=say),
-                            spec, like=family, progress=say)
+                                          breakpoints=new_bps,
+                                          progress=prefixed(progress, f"round {r}: new")),
+                            spec, like=family, progress=prefixed(progress, f"round {r}: refit"))
         checked = False
         added.append(take)
         for n, v in bps_added.items():

@@ -323,3 +323,66 @@ def test_json_stdout_stays_pure_json_with_progress_forced(spring, monkeypatch):
         res = _run(args, monkeypatch, spring)
         json.loads(res.stdout)  # nothing but the JSON document
         assert _stages(res.stderr), args  # the progress went to stderr
+
+
+def _recorder():
+    calls = []
+
+    def progress(stage, done, total):
+        calls.append((stage, int(done), int(total)))
+
+    return calls, progress
+
+
+def _counted_stages_complete(calls):
+    """Every counted stage (a run of one label and total) starts at 0 or more, never goes
+    back, and ends at its total; returns the labels seen."""
+    runs, last = [], None
+    for stage, done, total in calls:
+        if last is None or (stage, total) != last[:2] or done < last[2]:
+            runs.append([])
+        runs[-1].append((stage, done, total))
+        last = (stage, total, done)
+    for run in runs:
+        stage, _, total = run[0]
+        if total > 0:
+            dones = [d for _, d, _ in run]
+            assert dones == sorted(dones), (stage, dones)
+            assert dones[-1] == total, (stage, dones)
+    return {s for s, _, _ in calls}
+
+
+def test_refine_rounds_report_synthesis_refit_and_the_comparison(tmp_path):
+    # the oscillator of tests/test_check.py on a 2 x 2 corner grid fails between its
+    # points, so refinement adds points: round 1 synthesizes them and refits
+    from test_check import _design
+
+    from schedule.check import CheckSettings
+    from schedule.refine import refine_family
+
+    spec, fam = _design(tmp_path, [0.0, 1.0])
+    settings = CheckSettings.from_spec(spec, samples=8, gamma_opt=False, rate=False,
+                                       classical=False)
+    calls, progress = _recorder()
+    out = refine_family(fam, spec, budget=4, settings=settings, progress=progress)
+    assert len(out.added) > 0
+    seen = _counted_stages_complete(calls)
+    assert {"round 0: check", "round 0: plants", "round 0: new plants", "round 0: new gamma",
+            "round 0: new controllers", "round 0: refit interpolant", "round 1: check",
+            "input: check"} <= seen, seen
+
+
+def test_check_family_stages_are_complete_and_in_order(tmp_path):
+    from test_check import _design
+
+    from schedule.check import CheckSettings, check_family
+
+    spec, fam = _design(tmp_path, [0.0, 0.5, 1.0])
+    calls, progress = _recorder()
+    check_family(fam, CheckSettings.from_spec(spec, samples=8), spec=spec, progress=progress)
+    seen = _counted_stages_complete(calls)
+    order = [s for s in ("check points", "plants", "controllers", "check", "gamma_opt",
+                         "rate bound") if s in seen]
+    assert len(order) == 6, seen
+    first = {s: next(i for i, c in enumerate(calls) if c[0] == s) for s in order}
+    assert sorted(order, key=first.get) == order
