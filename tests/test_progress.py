@@ -171,25 +171,40 @@ def test_timed_slices_cover_the_range_and_size_from_the_measured_time():
     assert sum(capped) == 100 and max(capped) <= 20
 
 
-def test_ticker_redraws_an_unfinished_stage(monkeypatch):
-    import threading
+def test_the_redraw_thread_redraws_only_an_unfinished_stage():
+    class Ticks:
+        """The thread's stop event: ``n`` ticks, then stop (no real waiting)."""
 
-    stream = io.StringIO()
-    bar = ProgressBar(enabled=True, stream=stream, tick=0.01)
-    drawn = threading.Event()
-    write = stream.write
+        def __init__(self, n: int) -> None:
+            self.n = n
 
-    def spy(text):
-        if text.count("witness") and "..." in text:
-            if stream.getvalue().count("witness") >= 1:
-                drawn.set()
-        return write(text)
+        def wait(self, _seconds) -> bool:
+            self.n -= 1
+            return self.n < 0
 
-    monkeypatch.setattr(stream, "write", spy)
+    clock = FakeClock()
+    bar, stream = _bar(clock)
+    bar.tick = 1.0
     stage_line(bar, "witness")
-    assert drawn.wait(10.0)  # a redraw by the thread (a generous wait, not a time bound)
+    clock.t += 3.0
+    bar._stop = Ticks(1)
+    bar._tick_loop()  # one tick: the stage line shows its 3 s
+    assert _frames(stream.getvalue())[-1] == "witness      ... 3.0 s"
+    bar("check", 5, 5)  # a finished bar is left as it is
+    drawn = stream.getvalue()
+    clock.t += 1.0
+    bar._stop = Ticks(2)
+    bar._tick_loop()
+    assert stream.getvalue() == drawn
+
+
+def test_close_stops_the_redraw_thread():
+    bar = ProgressBar(enabled=True, stream=io.StringIO(), tick=0.01)
+    stage_line(bar, "witness")
+    thread = bar._ticker
+    assert thread is not None and thread.daemon
     bar.close()
-    assert bar._ticker is None
+    assert bar._ticker is None and not thread.is_alive()
 
 
 # ----------------------------------------------------------------------------- the verbs
