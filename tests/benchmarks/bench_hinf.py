@@ -1,6 +1,6 @@
 """Benchmark of the H-infinity gamma-iteration (prints ratios; not a test).
 
-Run: python tests/benchmarks/bench_hinf.py [--quick]
+Run: python tests/benchmarks/bench_hinf.py [--quick] [--certify]
 
 For state orders 4, 8, 16, 32 it measures, side by side in one run:
 - ours: optimal_gamma + central_controller per operating point (ordered-Schur Riccati);
@@ -9,20 +9,32 @@ For state orders 4, 8, 16, 32 it measures, side by side in one run:
 - care: the same bisection with each Riccati equation solved by
   scipy.linalg.solve_continuous_are (indefinite R, cross term S), plus the same checks;
 and, at order 8, synthesize_many points per second against the per-point loop.
+
+With ``--certify`` it measures the cost of certifying each controller
+(:func:`schedule.hinf.certify_controller`, the closed-loop level test), side by side in
+one run with one BLAS thread: synthesis (optimal_gamma + central_controller at 1.05
+gamma_opt, and synthesize_many at a common gamma) with and without the certification,
+and the certification alone now against main at the start of the speed work
+(tests/benchmarks/_earlier.py).
 Timings are noisy on a shared 2-core machine; each figure is the best of a few repeats.
 """
 
 from __future__ import annotations
 
-import sys
-import time
+import os
 
-import numpy as np
-import scipy.linalg as sla
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")  # one BLAS thread: the comparison is per core
 
-from schedule import hinf, riccati
-from schedule.plant import GeneralizedPlant
-from schedule.riccati import hamiltonian
+import sys  # noqa: E402 (one BLAS thread first)
+import time  # noqa: E402 (one BLAS thread first)
+
+import numpy as np  # noqa: E402 (one BLAS thread first)
+import scipy.linalg as sla  # noqa: E402 (one BLAS thread first)
+
+from schedule import hinf, riccati  # noqa: E402 (one BLAS thread first)
+from schedule.plant import GeneralizedPlant  # noqa: E402 (one BLAS thread first)
+from schedule.riccati import hamiltonian  # noqa: E402 (one BLAS thread first)
 
 
 def make_plants(n: int, count: int, seed: int = 0) -> list[GeneralizedPlant]:
@@ -203,5 +215,94 @@ def main() -> None:
     print(f"synthesize_many controllers at a common gamma: {100 / t_ctrl:.0f} points/s")
 
 
+class NoCertification:
+    """Within the block, controllers are not certified (the synthesis alone)."""
+
+    def __enter__(self):
+        self.saved = hinf.certify_controller, hinf._certify_many
+        hinf.certify_controller = lambda plant, controller, gamma: None
+        hinf._certify_many = lambda plants, controllers, gamma: [""] * len(plants)
+        return self
+
+    def __exit__(self, *exc):
+        hinf.certify_controller, hinf._certify_many = self.saved
+
+
+def certification() -> None:
+    """Synthesis with against without the certification, and the certification alone now
+    against main at the start of the speed work, side by side in one run."""
+    import importlib
+
+    import _earlier
+
+    from schedule.errors import NumericalError
+
+    def synthesis(plants):
+        """ours(), counting the controllers that fail their certification (large gamma_opt
+        and a strongly unstable A: issue 16 item 4) instead of stopping."""
+        missed = 0
+        for p in plants:
+            g = hinf.optimal_gamma(p)
+            try:
+                hinf.central_controller(p, 1.05 * g)
+            except NumericalError:
+                missed += 1
+        return missed
+
+    _earlier.load(_earlier.START, "schedule_start")
+    start = importlib.import_module("schedule_start.hinf")
+    start_plant = importlib.import_module("schedule_start.plant")
+    print("synthesis = optimal_gamma + central_controller(1.05 gamma_opt) per point; "
+          "best of 5, alternating")
+    print(f"{'order':>5} {'with ms/pt':>11} {'without':>8} {'with/without':>13} "
+          f"{'certify ms':>11} {'(without+certify)/without':>26} {'start ms':>9} "
+          f"{'start/now':>10}")
+    for n in (4, 8, 16, 32):
+        count = {4: 20, 8: 20, 16: 10, 32: 4}[n]
+        plants = make_plants(n, count)
+        t_with = t_without = np.inf
+        for _ in range(5):
+            t_with = min(t_with, best_of(lambda pl=plants: synthesis(pl), 1, plants))
+            with NoCertification():
+                t_without = min(t_without, best_of(lambda pl=plants: synthesis(pl), 1, plants))
+        missed = synthesis(plants)
+        jobs = []
+        for p in plants:
+            g = 1.05 * hinf.optimal_gamma(p)
+            with NoCertification():
+                K = hinf.central_controller(p, g)
+            q = start_plant.GeneralizedPlant(**{k: getattr(p, k) for k in hinf.PLANT_KEYS})
+            jobs.append((p, q, K, g))
+        t_now = t_start = np.inf
+        for _ in range(5):
+            t = time.perf_counter()
+            for p, _q, K, g in jobs:
+                hinf._certify_many([p], [K], g)
+            t_now = min(t_now, time.perf_counter() - t)
+            t = time.perf_counter()
+            for _p, q, K, g in jobs:
+                start._certify_many([q], [K], g)
+            t_start = min(t_start, time.perf_counter() - t)
+        print(f"{n:5d} {1e3 * t_with / count:11.2f} {1e3 * t_without / count:8.2f} "
+              f"{t_with / t_without:13.2f} {1e3 * t_now / count:11.3f} "
+              f"{(t_without + t_now) / t_without:26.2f} "
+              f"{1e3 * t_start / count:9.3f} {t_start / t_now:10.2f}"
+              + (f"  ({missed} of {count} controllers miss their bound)" if missed else ""))
+    n = 8
+    plants = make_plants(n, 100, seed=5)
+    g = 1.05 * np.nanmax([r[0] for r in hinf.synthesize_many(plants)])
+    gopt = [r[0] for r in hinf.synthesize_many(plants)]
+    t_with = t_without = np.inf
+    for _ in range(3):
+        t_with = min(t_with, best_of(
+            lambda: hinf.synthesize_many(plants, gamma=g, gamma_opt=gopt), 1, plants))
+        with NoCertification():
+            t_without = min(t_without, best_of(
+                lambda: hinf.synthesize_many(plants, gamma=g, gamma_opt=gopt), 1, plants))
+    print(f"synthesize_many controllers at a common gamma, order {n}, 100 points: with "
+          f"{1e3 * t_with / 100:.2f} ms/pt, without {1e3 * t_without / 100:.2f} ms/pt, "
+          f"with/without {t_with / t_without:.2f}")
+
+
 if __name__ == "__main__":
-    main()
+    certification() if "--certify" in sys.argv else main()
