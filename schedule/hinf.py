@@ -1058,9 +1058,14 @@ def _certify_many(plants, controllers, gamma: float) -> list[str]:
         groups.setdefault((p.A.shape, p.B1.shape, p.C1.shape, np.shape(K.A)), []).append(i)
     limit = gamma * (1.0 + CONTROLLER_RTOL)
     for idx in groups.values():
-        P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
-        Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float) for i in idx])
-              for k in "ABCD"}
+        if len(idx) == 1:  # one plant (central_controller): views, no copies
+            P = {k: getattr(plants[idx[0]], k)[None] for k in PLANT_KEYS}
+            Kd = {k: np.asarray(getattr(controllers[idx[0]], k), dtype=float)[None]
+                  for k in "ABCD"}
+        else:
+            P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
+            Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float)
+                               for i in idx]) for k in "ABCD"}
         try:
             loops = closed_loop_many(P, Kd)
         except ScheduleError:  # an ill-posed loop in the group: one plant at a time
