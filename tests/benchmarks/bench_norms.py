@@ -73,13 +73,13 @@ def sweep_solve(A, B, C, D, w):
     return best
 
 
-def median_time(fn, repeat, *args):
+def median_time(fn, repeat, *args, clock=time.perf_counter):
     times = []
     out = None
     for _ in range(repeat):
-        t = time.perf_counter()
+        t = clock()
         out = fn(*args)
-        times.append(time.perf_counter() - t)
+        times.append(clock() - t)
     return float(np.median(times)), out
 
 
@@ -131,7 +131,8 @@ def per_call() -> None:
     rng = np.random.default_rng(2024)
     fns = (("plain", plain_two_step), ("before", old.h_infinity_norm),
            ("start", start.h_infinity_norm), ("now", h_infinity_norm))
-    print("ms per call (median of 9, mean over 8 models); ratios > 1: plain is slower")
+    print("CPU ms per call (process time: the machine is shared; median of 9, mean over 8 "
+          "models, two alternating rounds); ratios > 1: plain is slower")
     print(f"{'n':>3} {'damping':>10} {'plain':>7} {'before':>7} {'start':>7} {'now':>7} "
           f"{'plain/start':>12} {'plain/now':>10} {'start/now':>10}")
     for n in (4, 8, 12, 16, 32):
@@ -141,7 +142,7 @@ def per_call() -> None:
             for mdl in models:
                 for _ in range(2):  # alternate the variants twice: load drifts
                     for name, fn in fns:
-                        t, _ = median_time(fn, 9, *mdl)
+                        t, _ = median_time(fn, 9, *mdl, clock=time.process_time)
                         ts[name] += t
             ms = {k: 1e3 * v / 16 for k, v in ts.items()}
             print(f"{n:>3} {label:>10} {ms['plain']:7.3f} {ms['before']:7.3f} {ms['start']:7.3f} "
