@@ -1,6 +1,8 @@
 """``schedule inspect family.h5 [--json] [--evidence]``: summary, interpolant, leave-one-out.
 
-Inspecting reads the file and computes nothing long: the leave-one-out table is
+Inspecting reads the file and computes nothing long: what sets gamma_opt at each
+point comes from the stored generalized plants (one quick existence test per point,
+:func:`schedule.hinf.gamma_opt_limits`; no model code runs); the leave-one-out table is
 shown when the family file holds it (``schedule design`` stores it); for a
 family written with ``--no-fit`` it is computed only on request (``--evidence``).
 """
@@ -49,6 +51,79 @@ def _design_of(family):
         return None
 
 
+def _same(lo: float, hi: float) -> bool:
+    return hi <= lo * (1 + 1e-4)
+
+
+def _range(lo: float, hi: float) -> str:
+    return f"{lo:.5g}" if _same(lo, hi) else f"{lo:.5g} .. {hi:.5g}"
+
+
+def gamma_opt_limit_groups(family) -> dict:
+    """What sets gamma_opt at the family's ok points, grouped (JSON-ready).
+
+    Every ok point's stored generalized plant is tested just below its gamma_opt
+    (:func:`schedule.hinf.gamma_opt_limits`); points with the same cause (and, for the
+    D11 bound, the same z and w channels) form one group. Groups are ordered by their
+    largest gamma_opt, so the first holds the point that sets the common gamma.
+    """
+    from ..hinf import LIMIT_CAUSES, LIMIT_RTOL, gamma_opt_limits
+    from ..plant import PLANT_KEYS, GeneralizedPlant
+
+    ok = np.flatnonzero(family.ok & np.isfinite(np.asarray(family.gamma_opt, dtype=float)))
+    opt = np.asarray(family.gamma_opt, dtype=float)
+    plants = [GeneralizedPlant(**{k: family.plant[k][i] for k in PLANT_KEYS}) for i in ok]
+    limits = gamma_opt_limits(plants, opt[ok])
+    zn, wn = family.performance_names, family.exogenous_names
+    groups: dict[tuple, list[int]] = {}
+    for k, lim in enumerate(limits):
+        key = (lim.cause, lim.z, lim.w, lim.block) if lim.cause == "d11" else (lim.cause,)
+        groups.setdefault(key, []).append(k)
+    out = []
+    for key, members in groups.items():
+        idx = ok[members]
+        g = opt[idx]
+        top = int(idx[int(np.argmax(g))])
+        item = {"cause": key[0], "description": LIMIT_CAUSES[key[0]], "points": len(idx),
+                "of": int(len(ok)), "gamma_opt_min": float(g.min()),
+                "gamma_opt_max": float(g.max()), "index_of_max": top,
+                "point_of_max": _point(family.variable_names, family.points[top]),
+                "indices": [int(i) for i in idx]}
+        if key[0] == "d11":
+            lims = [limits[k] for k in members]
+            norms = np.array([lim.bound for lim in lims])
+            first = lims[0]
+            item.update({
+                "z": zn[first.z] if 0 <= first.z < len(zn) else f"z{first.z}",
+                "w": wn[first.w] if 0 <= first.w < len(wn) else f"w{first.w}",
+                "z_share_min": min(lim.z_share for lim in lims),
+                "w_share_min": min(lim.w_share for lim in lims),
+                "block": first.block, "block_norm_min": float(norms.min()),
+                "block_norm_max": float(norms.max())})
+        out.append(item)
+    out.sort(key=lambda it: -it["gamma_opt_max"])
+    return {"tolerance": LIMIT_RTOL, "groups": out}
+
+
+def _limit_lines(limits: dict) -> list[str]:
+    lines = []
+    for it in limits["groups"]:
+        where = (f"at all {it['points']} points" if it["points"] == it["of"]
+                 else f"at {it['points']} of {it['of']} points")
+        text = (f"gamma_opt {_range(it['gamma_opt_min'], it['gamma_opt_max'])} {where} is "
+                f"set by {it['description']}")
+        if it["cause"] == "d11":
+            z, w = f"z '{it['z']}'", f"w '{it['w']}'"
+            if it["z_share_min"] < 0.95:
+                z += f" (mostly; {it['z_share_min']:.0%} of the direction)"
+            if it["w_share_min"] < 0.95:
+                w += f" (mostly; {it['w_share_min']:.0%} of the direction)"
+            text += (f": {z} / {w} (||D11 block|| = "
+                     f"{_range(it['block_norm_min'], it['block_norm_max'])})")
+        lines.append(text)
+    return lines
+
+
 def inspect_family(path: str, evidence: bool = False, progress=None, jobs: int = 1) -> dict:
     """The information `schedule inspect` prints, as a JSON-ready dict.
 
@@ -86,6 +161,10 @@ def inspect_family(path: str, evidence: bool = False, progress=None, jobs: int =
                                  "point": _point(names, f.points[lo])}
         info["gamma_opt_max"] = {"value": float(opt[hi]), "index": hi,
                                  "point": _point(names, f.points[hi])}
+        try:
+            info["gamma_opt_limits"] = gamma_opt_limit_groups(f)
+        except ScheduleError as exc:
+            info["gamma_opt_limits"] = {"error": str(exc), "groups": []}
     info["interpolant"] = None
     if f.interpolant:
         try:
@@ -140,6 +219,11 @@ def _print(info: dict) -> None:
         lo, hi = info["gamma_opt_min"], info["gamma_opt_max"]
         echo(f"gamma_opt     {lo['value']:.5g} at {_text(lo['point'])} .. "
              f"{hi['value']:.5g} at {_text(hi['point'])}")
+        limits = info.get("gamma_opt_limits") or {}
+        if limits.get("error"):
+            echo(f"limit         not determined: {limits['error']}")
+        for line in _limit_lines(limits) if limits.get("groups") else []:
+            echo(f"limit         {line}")
     echo(f"common gamma  {info['gamma']:.5g}")
     for item in info["failures"]:
         echo(f"failed        [{item['index']}] {_text(item['point'])}: {item['reason']}")
