@@ -118,6 +118,7 @@ __all__ = [
     "synthesize_many",
     "GammaLimit",
     "gamma_opt_limits",
+    "limit_channels",
     "LIMIT_CAUSES",
 ]
 
@@ -1710,3 +1711,47 @@ def gamma_opt_limits(plants, gamma_opt, rtol: float = LIMIT_RTOL) -> list[GammaL
             elif rho[k] >= 1.0 - COUPLING_RTOL:
                 out[i] = GammaLimit("coupling")
     return out
+
+
+def limit_channels(plant: GeneralizedPlant, gamma_opt: float, rtol: float = LIMIT_RTOL,
+                   factor: float = 0.5) -> tuple[list[int], list[int]]:
+    """The performance outputs z_i and exogenous inputs w_j that set ``gamma_opt``.
+
+    A channel sets it when scaling that channel alone by ``factor`` (< 1) makes gamma
+    achievable at ``gamma_opt (1 - rtol)`` (full existence test of :func:`feasibility`).
+    Scaling one row of (C1, D11, D12) or one column of (B1, D11, D21) down can only
+    lower the closed-loop norm of every controller (``||S T|| <= ||T||`` for
+    ``S = diag(1, .., factor, .., 1)``), so gamma_opt never rises; it falls below
+    ``gamma_opt (1 - rtol)`` only when that channel takes part in the limiting
+    condition (for example a sensor noise passed at low frequency into a heavily
+    weighted error). Costs ``nz + nw`` existence tests.
+
+    Returns
+    -------
+    (z indices, w indices), each in channel order; empty when no single channel does.
+    """
+    g = float(gamma_opt) * (1.0 - rtol)
+    zs, ws = [], []
+    for i in range(plant.nz):
+        s = np.ones(plant.nz)
+        s[i] = factor
+        q = GeneralizedPlant(plant.A, plant.B1, plant.B2, plant.C1 * s[:, None], plant.C2,
+                             plant.D11 * s[:, None], plant.D12 * s[:, None], plant.D21,
+                             plant.D22)
+        try:
+            if not feasibility(q, g):
+                zs.append(i)
+        except ScheduleError:
+            continue
+    for j in range(plant.nw):
+        s = np.ones(plant.nw)
+        s[j] = factor
+        q = GeneralizedPlant(plant.A, plant.B1 * s[None, :], plant.B2, plant.C1, plant.C2,
+                             plant.D11 * s[None, :], plant.D12, plant.D21 * s[None, :],
+                             plant.D22)
+        try:
+            if not feasibility(q, g):
+                ws.append(j)
+        except ScheduleError:
+            continue
+    return zs, ws

@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from _files import run_cli
 
-from schedule.hinf import gamma_opt_limits, optimal_gamma
+from schedule.hinf import gamma_opt_limits, limit_channels, optimal_gamma
 from schedule.plant import GeneralizedPlant
 
 
@@ -114,6 +114,23 @@ def test_state_feedback_and_output_injection_bounds():
     assert np.isnan(lp.bound) and lp.z == -1
 
 
+def test_channels_whose_halving_lowers_gamma_opt():
+    # state_feedback_plant: gamma_opt = b1 / b2 with b1 the disturbance's entry and b2
+    # the control's, the control weighted by 1 in z_eff. Halving w multiplies b1 by 1/2;
+    # halving z_eff (z_eff = u / 2) is the control entering with 2 b2 at unit cost: both
+    # halve gamma_opt. Halving z_x (c1 -> c1 / 2) leaves b1 / b2 unchanged (docstring:
+    # the bound does not depend on c1).
+    p = state_feedback_plant()
+    assert limit_channels(p, optimal_gamma(p)) == ([1], [0])
+    # the dual problem: the roles of z and w swap
+    q = dual(p)
+    assert limit_channels(q, optimal_gamma(q)) == ([0], [1])
+    # d11_row_plant: gamma_opt = |d| = |D11(z_pos, w_noise)|; halving z_pos or w_noise
+    # halves it, halving z_eff or w_load leaves it (K = 0 stays optimal).
+    r = d11_row_plant(0.9)
+    assert limit_channels(r, optimal_gamma(r)) == ([0], [1])
+
+
 def test_limit_is_invariant_to_units_and_state_coordinates():
     # gamma_opt and its cause do not depend on units (gamma scales with z/w units) or
     # state coordinates (Zhou, Doyle and Glover 1996: the problem is coordinate-free).
@@ -204,3 +221,11 @@ def test_inspect_splits_points_by_what_sets_them(tmp_path):
     assert sorted(by["d11"]["indices"]) == [0, 1, 2]
     assert (by["d11"]["z"], by["d11"]["w"]) == ("e:gap", "d:bump")
     assert sorted(by["state_feedback"]["indices"]) == [3, 4]
+    # at the state-feedback points the bound b1 / 1.5 involves only the control's cost
+    # and the gust (test_channels_whose_halving_lowers_gamma_opt); the D11 channel
+    # (0.1) stays below it when either is halved
+    assert (by["state_feedback"]["z_channels"], by["state_feedback"]["w_channels"]) == \
+        (["u:drive"], ["d:gust"])
+    code, out, exc = run_cli("inspect", path)
+    assert "set by the state-feedback sub-problem (X Riccati bound): z 'u:drive' / " \
+        "w 'd:gust'" in out

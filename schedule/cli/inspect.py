@@ -64,10 +64,13 @@ def gamma_opt_limit_groups(family) -> dict:
 
     Every ok point's stored generalized plant is tested just below its gamma_opt
     (:func:`schedule.hinf.gamma_opt_limits`); points with the same cause (and, for the
-    D11 bound, the same z and w channels) form one group. Groups are ordered by their
-    largest gamma_opt, so the first holds the point that sets the common gamma.
+    D11 bound, the same z and w channels of the D11 block) form one group. For the
+    other causes the channels are those whose halving alone lowers gamma_opt at the
+    group's largest gamma_opt (:func:`schedule.hinf.limit_channels`). Groups are
+    ordered by their largest gamma_opt, so the first holds the point that sets the
+    common gamma.
     """
-    from ..hinf import LIMIT_CAUSES, LIMIT_RTOL, gamma_opt_limits
+    from ..hinf import LIMIT_CAUSES, LIMIT_RTOL, gamma_opt_limits, limit_channels
     from ..plant import PLANT_KEYS, GeneralizedPlant
 
     ok = np.flatnonzero(family.ok & np.isfinite(np.asarray(family.gamma_opt, dtype=float)))
@@ -89,6 +92,12 @@ def gamma_opt_limit_groups(family) -> dict:
                 "gamma_opt_max": float(g.max()), "index_of_max": top,
                 "point_of_max": _point(family.variable_names, family.points[top]),
                 "indices": [int(i) for i in idx]}
+        if key[0] in ("state_feedback", "output_injection", "sub_problems", "coupling"):
+            # the channels, at the group's largest gamma_opt (a few existence tests)
+            zs, ws = limit_channels(plants[members[int(np.argmax(g))]], float(g.max()))
+            item["z_channels"] = [zn[i] if i < len(zn) else f"z{i}" for i in zs]
+            item["w_channels"] = [wn[j] if j < len(wn) else f"w{j}" for j in ws]
+            item["all_channels"] = len(zs) == len(zn) and len(ws) == len(wn)
         if key[0] == "d11":
             lims = [limits[k] for k in members]
             norms = np.array([lim.bound for lim in lims])
@@ -120,6 +129,17 @@ def _limit_lines(limits: dict) -> list[str]:
                 w += f" (mostly; {it['w_share_min']:.0%} of the direction)"
             text += (f": {z} / {w} (||D11 block|| = "
                      f"{_range(it['block_norm_min'], it['block_norm_max'])})")
+        elif "z_channels" in it:
+            zs, ws = it["z_channels"], it["w_channels"]
+            if it["all_channels"]:
+                text += "; every z and w channel takes part (halving any one lowers it)"
+            elif zs or ws:
+                names = " / ".join(part for part in (
+                    ("z " + ", ".join(f"'{n}'" for n in zs)) if zs else "",
+                    ("w " + ", ".join(f"'{n}'" for n in ws)) if ws else "") if part)
+                text += f": {names} (halving any one of these alone lowers it)"
+            else:
+                text += "; no single channel (halving any one alone leaves it)"
         lines.append(text)
     return lines
 
@@ -275,10 +295,16 @@ def _print(info: dict) -> None:
 @click.option("--jobs", "-j", default=1, show_default=True, type=click.IntRange(min=1),
               help="Worker processes for --evidence.")
 def inspect_command(family_file: str, as_json: bool, evidence: bool, jobs: int) -> None:
-    """Summarize FAMILY_FILE: points, gamma, failures, interpolant, leave-one-out table.
+    """Summarize FAMILY_FILE: points, gamma and what sets it, interpolant, leave-one-out.
 
-    Reads the file only; nothing long is computed unless --evidence asks for the
-    leave-one-out table of a family that has none. That table predicts every design
+    The 'limit' lines say what sets gamma_opt: the D11 bound (with the z and w channels
+    of the D11 block), the state-feedback or output-injection sub-problem, or the
+    coupling condition rho(XY) < gamma^2, and which channels take part (halving one
+    alone lowers gamma_opt).
+
+    Reads the file (and tests the stored plants near gamma_opt); nothing long is
+    computed unless --evidence asks for the leave-one-out table of a family that has
+    none. That table predicts every design
     point from the others with each candidate interpolant (closed forms, no refits)
     and closes the predicted controller with the true plant there (max |T|/gamma over
     the stable predictions; 'unstable' counts the others).
