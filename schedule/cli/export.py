@@ -136,7 +136,7 @@ def _refuse_overwrite(family_file, formats, out, breakpoints, others=()) -> None
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def export_command(family_file, formats, out, sample_time, method, prewarp, breakpoints,
                    prefix, no_binary, no_check, model, design_file, jobs, as_json):
-    """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md).
+    """Export the scheduled controller table of FAMILY_FILE (docs/tables.md in the source).
 
     Actuator limits ([[limits]] of the design file) and the anti-windup gain go into
     every format.
