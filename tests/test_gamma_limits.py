@@ -229,3 +229,24 @@ def test_inspect_splits_points_by_what_sets_them(tmp_path):
     code, out, exc = run_cli("inspect", path)
     assert "set by the state-feedback sub-problem (X Riccati bound): z 'u:drive' / " \
         "w 'd:gust'" in out
+
+
+def test_large_family_is_tested_on_an_even_subset(tmp_path):
+    # inspect stays fast on a big family: above max_points ok points only an evenly
+    # spaced subset is tested, always with the largest and the smallest gamma_opt, and
+    # the text says so. Here every plant's cause is known (docstrings above): the
+    # state-feedback plants have gamma_opt b1 / 1.5, the D11 plants d.
+    from schedule.cli.inspect import _limit_lines, gamma_opt_limit_groups
+
+    plants = [d11_row_plant(0.5 + 0.01 * k) for k in range(7)]
+    _, fam = _family_file(tmp_path, plants, ["e:position", "u:effort"],
+                          ["d:load", "n:noise_position"])
+    out = gamma_opt_limit_groups(fam, max_points=4)
+    assert (out["tested"], out["ok_points"]) == (4, 7)
+    (group,) = out["groups"]
+    assert group["cause"] == "d11" and {0, 6} <= set(group["indices"])
+    (line,) = _limit_lines(out)
+    assert "at all 4 tested points (of 7 ok points, evenly spaced)" in line
+    full = gamma_opt_limit_groups(fam)
+    assert (full["tested"], full["ok_points"]) == (7, 7)
+    assert "tested" not in _limit_lines(full)[0]

@@ -59,7 +59,10 @@ def _range(lo: float, hi: float) -> str:
     return f"{lo:.5g}" if _same(lo, hi) else f"{lo:.5g} .. {hi:.5g}"
 
 
-def gamma_opt_limit_groups(family) -> dict:
+LIMIT_MAX_POINTS = 1000  # above this many ok points, what sets gamma_opt is tested on a subset
+
+
+def gamma_opt_limit_groups(family, max_points: int = LIMIT_MAX_POINTS) -> dict:
     """What sets gamma_opt at the family's ok points, grouped (JSON-ready).
 
     Every ok point's stored generalized plant is tested just below its gamma_opt
@@ -68,13 +71,21 @@ def gamma_opt_limit_groups(family) -> dict:
     other causes the channels are those whose halving alone lowers gamma_opt at the
     group's largest gamma_opt (:func:`schedule.hinf.limit_channels`). Groups are
     ordered by their largest gamma_opt, so the first holds the point that sets the
-    common gamma.
+    common gamma. A family of more than ``max_points`` ok points is tested at
+    ``max_points`` of them, evenly spaced in point order, plus those of the largest and
+    the smallest gamma_opt (about 1 ms per point tested); ``tested`` and ``ok_points``
+    say so.
     """
     from ..hinf import LIMIT_CAUSES, LIMIT_RTOL, gamma_opt_limits, limit_channels
     from ..plant import PLANT_KEYS, GeneralizedPlant
 
-    ok = np.flatnonzero(family.ok & np.isfinite(np.asarray(family.gamma_opt, dtype=float)))
     opt = np.asarray(family.gamma_opt, dtype=float)
+    ok = np.flatnonzero(family.ok & np.isfinite(opt))
+    n_ok = int(ok.size)
+    if n_ok > max_points >= 2:
+        pick = np.round(np.linspace(0, n_ok - 1, max_points)).astype(int)
+        ends = [int(np.argmax(opt[ok])), int(np.argmin(opt[ok]))]
+        ok = ok[np.unique(np.concatenate([pick, ends]))]
     plants = [GeneralizedPlant(**{k: family.plant[k][i] for k in PLANT_KEYS}) for i in ok]
     limits = gamma_opt_limits(plants, opt[ok])
     zn, wn = family.performance_names, family.exogenous_names
@@ -111,14 +122,18 @@ def gamma_opt_limit_groups(family) -> dict:
                 "block_norm_max": float(norms.max())})
         out.append(item)
     out.sort(key=lambda it: -it["gamma_opt_max"])
-    return {"tolerance": LIMIT_RTOL, "groups": out}
+    return {"tolerance": LIMIT_RTOL, "tested": int(ok.size), "ok_points": n_ok, "groups": out}
 
 
 def _limit_lines(limits: dict) -> list[str]:
     lines = []
+    sampled = limits.get("tested", 0) < limits.get("ok_points", 0)
     for it in limits["groups"]:
-        where = (f"at all {it['points']} points" if it["points"] == it["of"]
-                 else f"at {it['points']} of {it['of']} points")
+        tested = " tested" if sampled else ""
+        where = (f"at all {it['points']}{tested} points" if it["points"] == it["of"]
+                 else f"at {it['points']} of {it['of']}{tested} points")
+        if sampled:
+            where += f" (of {limits['ok_points']} ok points, evenly spaced)"
         text = (f"gamma_opt {_range(it['gamma_opt_min'], it['gamma_opt_max'])} {where} is "
                 f"set by {it['description']}")
         if it["cause"] == "d11":
