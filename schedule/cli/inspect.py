@@ -198,7 +198,7 @@ def inspect_family(path: str, evidence: bool = False, progress=None, jobs: int =
                                  "point": _point(names, f.points[hi])}
         try:
             info["gamma_opt_limits"] = gamma_opt_limit_groups(f)
-        except ScheduleError as exc:
+        except (ScheduleError, ValueError, np.linalg.LinAlgError) as exc:
             info["gamma_opt_limits"] = {"error": str(exc), "groups": []}
     info["interpolant"] = None
     if f.interpolant:
