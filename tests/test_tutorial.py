@@ -61,7 +61,7 @@ def tutorial_commands() -> list[str]:
 
 def test_tutorial_lists_files_and_the_whole_path():
     files = tutorial_files()
-    assert {"arm.py", "arm.toml", "main.c"} <= set(files)
+    assert {"arm.py", "arm.toml", "main.c", "motor.py", "motor.toml", "motor_main.c"} <= set(files)
     verbs = [shlex.split(c)[1] for c in tutorial_commands() if c.startswith("schedule ")]
     for verb in ("design", "inspect", "check", "export"):
         assert verb in verbs, f"the tutorial must run `schedule {verb}`"
@@ -110,6 +110,12 @@ def test_tutorial_runs_end_to_end(tmp_path, monkeypatch):
     # the tutorial ends with a passing check of the refined family
     assert checks and checks[-1] == 0
 
+    for name in ("motor-tables/table.csv", "motor-tables/table.json", "motor-tables/table.fmu",
+                 "motor-tables/c/motor_table.c", "motor_demo"):
+        assert (tmp_path / name).is_file(), f"{name} was not produced"
+    motor = _numbers(outputs["./motor_demo"])
+    # angle below its reference -> positive voltage, rising (sign check, as for the arm)
+    assert len(motor) == 5 and 0 < motor[0] < motor[-1]
     for name in ("arm-family.h5", "arm-refined.h5", "arm-table.json",
                  "arm_c/arm_table.h", "arm_c/arm_table.c", "arm_demo",
                  "report/summary.md", "report/summary.html"):
@@ -154,6 +160,19 @@ def _check_prose(outputs: dict) -> None:
     assert f"at 2 ms the worst is {100 * (worst - 1):.1f} % above gamma" in \
         " ".join(text.split())
     assert "true plant" in export and "interpolated plant" not in export
+    # section 8: the floor 0.001 / 0.01 = 0.1 (noise level over the low-frequency error,
+    # the tutorial's own arithmetic), set by the output-injection sub-problem
+    motor = _output_of(outputs, "schedule design motor.toml")
+    lo = float(re.search(r"gamma_opt min\s+([\d.]+)", motor).group(1))
+    hi = float(re.search(r"gamma_opt max\s+([\d.]+)", motor).group(1))
+    assert 0.1 <= lo <= hi <= 0.1 * (1 + 1e-3)
+    limit = [ln for ln in _output_of(outputs, "schedule inspect motor").splitlines()
+             if ln.startswith("limit")]
+    assert len(limit) == 1 and "at all 7 points is set by the output-injection" in limit[0]
+    assert "z 'e:angle' / w 'n:angle'" in limit[0]
+    check = _output_of(outputs, "schedule check motor-family.h5")
+    (rate,) = [ln for ln in check.splitlines() if "rate bound" in ln]
+    assert check.startswith("PASS") and "alone" not in rate
 
 
 def test_tutorial_model_matches_hand_jacobian(tmp_path, monkeypatch):
