@@ -95,6 +95,24 @@ def _parse_point(text: str, names) -> dict[str, float]:
     return out
 
 
+def _parse_values(text: str | None, names, option: str) -> list[float] | None:
+    """``name=value,...`` over ``names`` (missing names 0) as a list, None when not given."""
+    if text is None:
+        return None
+    out = dict.fromkeys(names, 0.0)
+    for tok in (t.strip() for t in text.split(",") if t.strip()):
+        key, sep, value = tok.partition("=")
+        key = key.strip()
+        if not sep or key not in out:
+            raise InputError(f"{option} {text!r}: write name=value,... with names from "
+                             f"{', '.join(names)}")
+        try:
+            out[key] = float(value)
+        except ValueError:
+            raise InputError(f"{option} {text!r}: {value!r} is not a number") from None
+    return list(out.values())
+
+
 def _looks_like_crane(model) -> bool:
     return (tuple(getattr(model, "variable_names", ())) == ("rope_length", "payload_mass")
             and "trolley_position" in model.output_names and "wind_speed" in model.input_names)
@@ -127,11 +145,19 @@ def _looks_like_crane(model) -> bool:
 @click.option("--step-at", "step_at", default=None,
               help="Scheduling point of the step, name=value,... Default: the trajectory's "
                    "start (crane: rope_length=30,payload_mass=40000).")
+@click.option("--initial-state", "initial_state", default=None, metavar="NAME=VALUE,...",
+              help="Start state of the model (its state names; others 0). Default: all 0. "
+                   "Give the operating point when the model's origin is not one (e.g. tank "
+                   "levels).")
+@click.option("--trim-input", "trim_input", default=None, metavar="NAME=VALUE,...",
+              help="Trim values of the model inputs that the controller's output is added "
+                   "to, and of the exogenous inputs the trajectory does not give (others "
+                   "0). Default: all 0.")
 @click.option("--no-step", is_flag=True, help="Skip the anti-windup step comparison.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def simulate_command(family_file, out, trajectory, table_file, sample_time, method,
-                     model_entry, design_file, substeps, step_text, step_at, no_step,
-                     as_json):
+                     model_entry, design_file, substeps, step_text, step_at, initial_state,
+                     trim_input, no_step, as_json):
     """Simulate the nonlinear model of FAMILY_FILE under its scheduled discrete controller.
 
     The controller sees each measured output minus its reference (the position error
@@ -198,9 +224,16 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             measured, size, at = CRANE_STEP
             at = _parse_point(step_at, names) if step_at else dict(at)
         step = (measured, size, at)
-    result = simulate(model, controller, traj, substeps=substeps)
+    x0 = _parse_values(initial_state, model.state_names, "--initial-state")
+    u0 = _parse_values(trim_input, model.input_names, "--trim-input")
+    result = simulate(model, controller, traj, x0=x0, u0=u0, substeps=substeps)
     for note in result.notes:
         click.echo(f"warning: {note}", err=True)
+    if x0 is None and u0 is None and not _looks_like_crane(model) and _nothing_moved(result):
+        click.echo("warning: nothing moved: the model stayed at its start (every state 0, "
+                   "every input at its trim 0) for the whole run; if that is not an "
+                   "operating point of the design, give --initial-state and --trim-input",
+                   err=True)
     summary = result.summary()
     summary.update({"family": str(family_file), "model": entry,
                     "sample_time": controller.sample_time, "method": controller.table.method,
@@ -208,7 +241,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
                     "anti_windup": table.anti_windup})
     files = {"simulation.csv": result_csv(result)}
     if step is not None:
-        summary["step"], step_files = _step_comparison(model, table, step, substeps)
+        summary["step"], step_files = _step_comparison(model, table, step, substeps, x0, u0)
         files.update(step_files)
     files["summary.json"] = json.dumps(summary, indent=1) + "\n"
     what = getattr(model, "description", "") or "the nonlinear model"
@@ -239,7 +272,14 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
         click.echo(f"wrote {p}")
 
 
-def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
+def _nothing_moved(result) -> bool:
+    """True when every state of the run stayed exactly at zero."""
+    import numpy as np
+
+    return not np.any(np.asarray(result.states))
+
+
+def _step_comparison(model, table, step, substeps, x0=None, u0=None) -> tuple[dict, dict]:
     """Run the step with and without anti-windup (and without limits); summary and files."""
     import csv
     import io
@@ -252,7 +292,7 @@ def _step_comparison(model, table, step, substeps) -> tuple[dict, dict]:
     names = tuple(v.name for v in table.variables)
     traj = step_trajectory(names, at, measured, size, duration=STEP_DURATION,
                            sample_time=table.sample_time)
-    runs = anti_windup_comparison(model, table, traj, substeps=substeps)
+    runs = anti_windup_comparison(model, table, traj, substeps=substeps, x0=x0, u0=u0)
     info = {"output": measured, "size": size, "at": at, "duration": STEP_DURATION,
             "overshoot_percent": {}, "final_error": {}, "peak_command": {}}
     for name, res in runs.items():
