@@ -29,7 +29,7 @@ rewritten with the commands and their fresh output, and the pictures in
 
 ``tests/test_readme.py`` runs the same session with these functions and fails
 when a number shown in README.md differs from the fresh run's at the digits
-shown (the fields in ``TIMING_FIELDS`` excepted). Only the Python standard
+shown (the fields in ``TIMING_FIELDS`` excepted), or when its words differ. Only the Python standard
 library is used, so ``.ci/run`` can call ``--two-commands`` before anything is
 installed.
 """
@@ -234,6 +234,21 @@ def number_differences(shown: str, fresh: str) -> list[str]:
                 for (la, x), (_, y) in zip(a, b) if not same_at_digits_shown(x, y)]
     if len(a) != len(b):
         problems.append(f"README shows {len(a)} numbers, a fresh run prints {len(b)}")
+    return problems
+
+
+def word_differences(shown: str, fresh: str) -> list[str]:
+    """One line per line of ``shown`` whose words (numbers, timing fields and spacing
+    aside) differ from the ``fresh`` output's line."""
+    def words(text: str) -> list[str]:
+        return [" ".join(NUMBER.sub("#", ln).split())
+                for ln in without_timings(text).splitlines()]
+
+    a, b = words(shown), words(fresh)
+    problems = [f"line {i}: README shows {x!r}, a fresh run prints {y!r}"
+                for i, (x, y) in enumerate(zip(a, b), start=1) if x != y]
+    if len(a) != len(b):
+        problems.append(f"README shows {len(a)} lines, a fresh run prints {len(b)}")
     return problems
 
 
