@@ -176,7 +176,9 @@ class PassCriterion:
         """The criterion in one line (for the command line and the report)."""
         return (f"stable, certified closed-loop norm <= gamma (1 + {self.gamma_tolerance:g}) = "
                 f"{self.norm_limit:.6g}, input disk margins >= {self.gain_margin_db:g} dB / "
-                f"{self.phase_margin_deg:g} deg (common practice)")
+                f"{self.phase_margin_deg:g} deg" + (
+                    " (common practice)" if (self.gain_margin_db, self.phase_margin_deg)
+                    == (_DEFAULTS.gain_margin_db, _DEFAULTS.phase_margin_deg) else ""))
 
     def norm_passes(self, values: dict) -> np.ndarray:
         """(M,) stable and certified norm upper bound at most :attr:`norm_limit`."""

@@ -31,6 +31,7 @@ import numpy as np
 
 from .errors import InputError
 from .names import name_problem
+from .table_files import FORMATS as EXPORT_FORMATS
 from .types import LinearPlant, SchedulingVariable
 
 if sys.version_info >= (3, 11):
@@ -52,7 +53,6 @@ INTERPOLATION_KINDS = ("auto", "multilinear", "spline", "delaunay", "polynomial"
                        "gaussian_process")
 SAMPLERS = ("sobol", "latin_hypercube")
 EXPORT_METHODS = ("tustin", "zoh")
-EXPORT_FORMATS = ("csv", "json", "hdf5", "c")
 
 # The weight groups: table name -> (key naming the channel, channel list it refers to)
 WEIGHT_GROUPS = {

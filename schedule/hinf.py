@@ -116,6 +116,10 @@ __all__ = [
     "assemble_controller",
     "feasibility",
     "synthesize_many",
+    "GammaLimit",
+    "gamma_opt_limits",
+    "limit_channels",
+    "LIMIT_CAUSES",
 ]
 
 PSD_RTOL = 1e-8  # min eig >= -PSD_RTOL max(1, ||X||) of the balanced X counts as X >= 0
@@ -1058,9 +1062,14 @@ def _certify_many(plants, controllers, gamma: float) -> list[str]:
         groups.setdefault((p.A.shape, p.B1.shape, p.C1.shape, np.shape(K.A)), []).append(i)
     limit = gamma * (1.0 + CONTROLLER_RTOL)
     for idx in groups.values():
-        P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
-        Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float) for i in idx])
-              for k in "ABCD"}
+        if len(idx) == 1:  # one plant (central_controller): views, no copies
+            P = {k: getattr(plants[idx[0]], k)[None] for k in PLANT_KEYS}
+            Kd = {k: np.asarray(getattr(controllers[idx[0]], k), dtype=float)[None]
+                  for k in "ABCD"}
+        else:
+            P = {k: np.stack([getattr(plants[i], k) for i in idx]) for k in PLANT_KEYS}
+            Kd = {k: np.stack([np.asarray(getattr(controllers[i], k), dtype=float)
+                               for i in idx]) for k in "ABCD"}
         try:
             loops = closed_loop_many(P, Kd)
         except ScheduleError:  # an ill-posed loop in the group: one plant at a time
@@ -1577,3 +1586,177 @@ def synthesize_many(
             K, why = made[i]
             results.append((float(gopt[i]), K, why))
     return results
+
+
+# ====================================================== what sets gamma_opt
+LIMIT_RTOL = 1e-3  # a condition sets gamma_opt when it fails at gamma_opt (1 - LIMIT_RTOL)
+
+LIMIT_CAUSES = {
+    "d11": "the D11 bound",
+    "state_feedback": "the state-feedback sub-problem (X Riccati bound)",
+    "output_injection": "the output-injection sub-problem (Y Riccati bound)",
+    "sub_problems": "both sub-problems (X and Y Riccati bounds)",
+    "coupling": "the coupling condition rho(XY) < gamma^2",
+    "none": "no bound within 0.1 % (gamma_opt is not tight here)",
+}
+
+
+@dataclass(frozen=True)
+class GammaLimit:
+    """What sets one plant's optimal gamma (see :func:`gamma_opt_limits`).
+
+    ``cause`` is a key of ``LIMIT_CAUSES``. For ``"d11"``: ``bound`` is the D11 bound
+    in the plant's units (the norm of the D11 block that sets it), ``z`` and ``w`` the
+    indices of the performance output and the exogenous input that carry the largest
+    share of that block's top singular vectors, ``z_share`` and ``w_share`` those shares
+    (squared components, 1 when one channel carries it all) and ``block`` ``"row"`` (the
+    z directions the controls cannot reach, all w) or ``"column"`` (the w directions the
+    measurements do not see, all z). Otherwise ``bound`` is nan and the indices -1.
+    """
+
+    cause: str
+    bound: float = float("nan")
+    z: int = -1
+    w: int = -1
+    z_share: float = float("nan")
+    w_share: float = float("nan")
+    block: str = ""
+
+
+def _d11_limit(P: Normalized) -> GammaLimit:
+    """The D11 block that sets the Parrott-type bound, mapped back to the plant's z and w.
+
+    ``z~ = Sz z`` and ``w = Sw' w~`` with ``Sz``, ``Sw`` orthogonal up to one scalar each
+    (:func:`normalize`), so a unit direction of z~ is the z direction ``Sz' e`` (up to
+    that scalar), and likewise ``Sw' e`` for w.
+    """
+    _, nw, nu, nz, ny = P.dims
+    r, c = nz - nu, nw - ny
+    best: tuple[float, np.ndarray, np.ndarray, str] | None = None
+    if r and nw:
+        U, s, Vt = np.linalg.svd(P.D11[:r, :])
+        best = (float(s[0]), P.Sz[:r].T @ U[:, 0], P.Sw.T @ Vt[0], "row")
+    if c and nz:
+        U, s, Vt = np.linalg.svd(P.D11[:, :c])
+        if best is None or s[0] > best[0]:
+            best = (float(s[0]), P.Sz.T @ U[:, 0], P.Sw[:c].T @ Vt[0], "column")
+    if best is None:
+        return GammaLimit("d11", 0.0)
+    value, zd, wd = best[0], best[1] ** 2, best[2] ** 2
+    zs, ws = zd / zd.sum(), wd / wd.sum()
+    iz, iw = int(np.argmax(zs)), int(np.argmax(ws))
+    return GammaLimit("d11", value * P.gamma_scale, iz, iw, float(zs[iz]), float(ws[iw]),
+                      best[3])
+
+
+def gamma_opt_limits(plants, gamma_opt, rtol: float = LIMIT_RTOL) -> list[GammaLimit]:
+    """Which condition sets each plant's optimal gamma.
+
+    gamma_opt is the smallest gamma at which all existence conditions of the
+    output-feedback problem hold (Glover and Doyle 1988; Doyle, Glover, Khargonekar and
+    Francis 1989): gamma above the Parrott-type D11 bound, a stabilizing X >= 0 (the
+    state-feedback, i.e. full-information, sub-problem), a stabilizing Y >= 0 (the
+    output-injection, i.e. full-control, sub-problem) and ``rho(XY) < gamma^2``. The
+    first three are lower bounds on gamma in their own right. Just below gamma_opt, at
+    ``gamma_opt (1 - rtol)``, at least one condition fails; the one that fails sets
+    gamma_opt (its own bound is within ``rtol`` of gamma_opt): the D11 bound when gamma
+    is not above it, else the X and/or Y Riccati, else the coupling condition. Where
+    none fails, gamma_opt is not tight to ``rtol`` (for example an infimum of zero).
+
+    The test is one batched quick existence test per plant (the one the gamma search
+    uses), so it costs a small fraction of the search; no model code runs.
+
+    Parameters
+    ----------
+    plants : GeneralizedPlant objects (any sizes).
+    gamma_opt : their optimal gammas in the plants' units (nan: skipped, cause "none").
+    rtol : relative distance below gamma_opt at which the conditions are tested; it
+        must exceed the relative accuracy of gamma_opt (1e-4 in ``schedule design``).
+
+    Returns
+    -------
+    list of :class:`GammaLimit`, one per plant.
+    """
+    plants = list(plants)
+    gopt = np.asarray(gamma_opt, dtype=float).reshape(-1)
+    if gopt.shape != (len(plants),):
+        raise InputError(f"{gopt.size} gamma_opt values for {len(plants)} plants; give one "
+                         "per plant")
+    if not (0 < rtol < 1):
+        raise InputError(f"rtol={rtol} must lie in (0, 1); give e.g. 1e-3")
+    out = [GammaLimit("none")] * len(plants)
+    groups: dict[tuple, list[tuple[int, Normalized]]] = {}
+    for i, p in enumerate(plants):
+        if not (np.isfinite(gopt[i]) and gopt[i] > 0):
+            continue
+        try:
+            P = normalize(p)
+        except ScheduleError:
+            continue
+        g = gopt[i] * (1.0 - rtol) / P.gamma_scale
+        if not g > P.d11_bound * (1 + 1e-12):
+            out[i] = _d11_limit(P)
+            continue
+        groups.setdefault(P.dims, []).append((i, P))
+    for members in groups.values():
+        idx = np.array([i for i, _ in members])
+        Ps = [P for _, P in members]
+        g = gopt[idx] * (1.0 - rtol) / np.array([P.gamma_scale for P in Ps])
+        every = np.arange(len(Ps))
+        ok_x, X, _, _ = _StackedSide([P.x_side for P in Ps]).solve(every, g)
+        ok_y, Y, _, _ = _StackedSide([P.y_side for P in Ps]).solve(every, g)
+        rho = np.abs(np.linalg.eigvals(X @ Y)).max(axis=1) / (g * g)
+        for k, i in enumerate(idx):
+            if not ok_x[k] and not ok_y[k]:
+                out[i] = GammaLimit("sub_problems")
+            elif not ok_x[k]:
+                out[i] = GammaLimit("state_feedback")
+            elif not ok_y[k]:
+                out[i] = GammaLimit("output_injection")
+            elif rho[k] >= 1.0 - COUPLING_RTOL:
+                out[i] = GammaLimit("coupling")
+    return out
+
+
+def limit_channels(plant: GeneralizedPlant, gamma_opt: float, rtol: float = LIMIT_RTOL,
+                   factor: float = 0.5) -> tuple[list[int], list[int]]:
+    """The performance outputs z_i and exogenous inputs w_j that set ``gamma_opt``.
+
+    A channel sets it when scaling that channel alone by ``factor`` (< 1) makes gamma
+    achievable at ``gamma_opt (1 - rtol)`` (full existence test of :func:`feasibility`).
+    Scaling one row of (C1, D11, D12) or one column of (B1, D11, D21) down can only
+    lower the closed-loop norm of every controller (``||S T|| <= ||T||`` for
+    ``S = diag(1, .., factor, .., 1)``), so gamma_opt never rises; it falls below
+    ``gamma_opt (1 - rtol)`` only when that channel takes part in the limiting
+    condition (for example a sensor noise passed at low frequency into a heavily
+    weighted error). Costs ``nz + nw`` existence tests.
+
+    Returns
+    -------
+    (z indices, w indices), each in channel order; empty when no single channel does.
+    """
+    g = float(gamma_opt) * (1.0 - rtol)
+    zs, ws = [], []
+    for i in range(plant.nz):
+        s = np.ones(plant.nz)
+        s[i] = factor
+        q = GeneralizedPlant(plant.A, plant.B1, plant.B2, plant.C1 * s[:, None], plant.C2,
+                             plant.D11 * s[:, None], plant.D12 * s[:, None], plant.D21,
+                             plant.D22)
+        try:
+            if not feasibility(q, g):
+                zs.append(i)
+        except ScheduleError:
+            continue
+    for j in range(plant.nw):
+        s = np.ones(plant.nw)
+        s[j] = factor
+        q = GeneralizedPlant(plant.A, plant.B1 * s[None, :], plant.B2, plant.C1, plant.C2,
+                             plant.D11 * s[None, :], plant.D12, plant.D21 * s[None, :],
+                             plant.D22)
+        try:
+            if not feasibility(q, g):
+                ws.append(j)
+        except ScheduleError:
+            continue
+    return zs, ws

@@ -627,7 +627,7 @@ def sigma_max(M: Any) -> np.ndarray:
         b2 = np.abs(G[..., 0, 1]) ** 2
         disc = np.sqrt(np.maximum((a - d) ** 2 + 4.0 * b2, 0.0))
         return np.sqrt(np.maximum(0.5 * (a + d + disc), 0.0))
-    return np.linalg.norm(M, ord=2, axis=(-2, -1))
+    return np.linalg.svd(M, compute_uv=False)[..., 0]
 
 
 def h_infinity_norm(A: Any, B: Any, C: Any, D: Any,
@@ -776,10 +776,13 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
 
     With a ``level`` only the question "is ``||G||_inf <= level``?" is answered, more
     cheaply: a model whose lower bound (step 3) exceeds the level is above it (``upper`` is
-    inf, ``norm`` that lower bound); for the others the Hamiltonian at the level itself is
-    tested first, and when none of its eigenvalues lies in the looser band and its
-    spectrum is symmetric (no crossing of the level) the model is certified below with
-    ``upper = level`` and ``norm`` a lower bound only; the rest get the full computation.
+    inf, ``norm`` that lower bound). This is decided first: in an ill-conditioned model
+    the computed spectrum of the level's Hamiltonian can lie far from the axis although
+    the level is crossed (a closed loop 9e-5 above the level had no eigenvalue within 0.5
+    |lambda| of the axis). For the others the Hamiltonian at the level itself is tested
+    next, and when none of its eigenvalues lies in the looser band and its spectrum is
+    symmetric (no crossing of the level) the model is certified below with ``upper =
+    level`` and ``norm`` a lower bound only; the rest get the full computation.
 
     Parameters
     ----------
@@ -924,7 +927,11 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     def sigma_at(sel, w):
         """sigma_max(G_sel(j w)) by direct stacked complex solves (a true value; nan, from
         an overflow, counts as inf)."""
-        G = C[sel] @ np.linalg.solve(1j * w[:, None, None] * eye - A[sel], Bc[sel]) + D[sel]
+        if M == 1:  # one model: broadcast its matrices instead of copying them per point
+            G = C[0] @ np.linalg.solve(1j * w[:, None, None] * eye - A[0],
+                                       np.broadcast_to(Bc[0], (w.size, n, m))) + D[0]
+        else:
+            G = C[sel] @ np.linalg.solve(1j * w[:, None, None] * eye - A[sel], Bc[sel]) + D[sel]
         s = sigma_max(G)
         s[s != s] = np.inf
         return s
@@ -938,13 +945,19 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
 
     def spectrum(act, gamma):
         """Eigenvalues of the Hamiltonians H(gamma) of the models act, and ||H||_1."""
-        X = np.linalg.solve(gamma[:, None, None] ** 2 * eye_m - DtD[act], DtC_Bt[act])
+        if act.size == M:  # every model: no copies
+            a, b, dtd, rhs, ctc = A, B, DtD, DtC_Bt, CtC
+        else:
+            a, b, dtd, rhs, ctc = A[act], B[act], DtD[act], DtC_Bt[act], CtC[act]
+        X = np.linalg.solve(gamma[:, None, None] ** 2 * eye_m - dtd, rhs)
         H = np.empty((act.size, 2 * n, 2 * n))
-        Ah = A[act] + B[act] @ X[:, :, :n]
-        H[:, :n, :n] = Ah
-        H[:, :n, n:] = B[act] @ X[:, :, n:]
-        H[:, n:, :n] = -(CtC[act] + DtC_Bt[act, :, :n].transpose(0, 2, 1) @ X[:, :, :n])
-        H[:, n:, n:] = -Ah.transpose(0, 2, 1)
+        Ah = np.add(a, b @ X[:, :, :n], out=H[:, :n, :n])
+        np.matmul(b, X[:, :, n:], out=H[:, :n, n:])
+        low = H[:, n:, :n]
+        np.matmul(rhs[:, :, :n].transpose(0, 2, 1), X[:, :, :n], out=low)
+        low += ctc
+        np.negative(low, out=low)
+        np.negative(Ah.transpose(0, 2, 1), out=H[:, n:, n:])
         return np.linalg.eigvals(H), np.abs(H).sum(axis=1).max(axis=1)[:, None]
 
     lb = sd.copy()  # sigma_max at infinity: a lower bound of every norm
@@ -957,17 +970,6 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         lv = lv if idx is None else lv[idx]
         if et is not None:
             lv = np.ldexp(lv, -(et if idx is None else et[idx]))
-        test_lv = np.flatnonzero(lv > sd)
-        if test_lv.size:
-            # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
-            # symmetric spectrum -> no crossing of the level, so the norm is below it
-            ev, hn = spectrum(test_lv, lv[test_lv])
-            mod, are = np.abs(ev), np.abs(ev.real)
-            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-            dist[:, diag, diag] = np.inf
-            clear = ((are > NEAR_AXIS_RTOL * mod + AXIS_ATOL * hn)
-                     & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
-            below_level[test_lv[clear]] = settled[test_lv[clear]] = True
     rest = np.flatnonzero(~settled)
     # 3. lower bound: sigma_max at 0, at |Im lam| of the complex poles and |lam| of the
     # real ones (the best three of them after a modal screening for large orders), and
@@ -1002,12 +1004,24 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         s = sigma_at(np.full(extra.size, i), extra)
         j = int(np.argmax(s))
         lb[i], pk[i] = float(s[j]), float(extra[j])
-    converged = settled | (lb == 0.0)
+    converged = lb == 0.0
     doubt = np.zeros(M, dtype=bool)
     why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
-    if level is not None:  # an attained value above the level: certainly above
-        above = ~converged & (lb > lv)
-        settled |= above
+    if level is not None:
+        # an attained value above the level: certainly above (decided first: the level's
+        # own Hamiltonian can look clear of the axis in an ill-conditioned model)
+        settled |= ~converged & (lb > lv)
+        test_lv = np.flatnonzero(~settled & ~converged & (lv > sd))
+        if test_lv.size:
+            # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
+            # symmetric spectrum -> no crossing of the level, so the norm is below it
+            ev, hn = spectrum(test_lv, lv[test_lv])
+            mod, are = np.abs(ev), np.abs(ev.real)
+            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+            dist[:, diag, diag] = np.inf
+            clear = ((are > NEAR_AXIS_RTOL * mod + AXIS_ATOL * hn)
+                     & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
+            below_level[test_lv[clear]] = settled[test_lv[clear]] = True
     def best_of(rows, test):
         """The largest sigma_max over the finite test frequencies of each row (models
         ``rows``): (value, frequency), -inf where a row has none."""
@@ -1086,11 +1100,11 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         sub_status[i] = (f"level-set iteration did not converge in {_MAX_ITER} steps (lower "
                          f"bound {shown(i, lb[i]):.6g})")
     for i in np.flatnonzero(doubt):
-        level = shown(i, (1 + 2 * rtol) * lb[i])
+        at = shown(i, (1 + 2 * rtol) * lb[i])
         sub_status[i] = (
-            f"an odd number of imaginary-axis crossings of the Hamiltonian at level {level:.6g} "
+            f"an odd number of imaginary-axis crossings of the Hamiltonian at level {at:.6g} "
             "(a crossing lost to rounding): the upper bound is not certified" if why[i] == 1
-            else f"the Hamiltonian at level {level:.6g} has eigenvalues without their mirror "
+            else f"the Hamiltonian at level {at:.6g} has eigenvalues without their mirror "
                  "image -conj(lambda) (rounding in an ill-conditioned model): its crossings "
                  "cannot be counted, the upper bound is not certified")
     # models settled above the level: a lower bound above it, nothing certified from above

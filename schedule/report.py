@@ -46,6 +46,7 @@ import numpy as np
 from .atomic import write_dir_atomic
 from .check import CheckResult
 from .errors import InputError
+from .types import rate_unit
 
 __all__ = ["STYLE", "CAUTION", "write_report", "markdown_summary"]
 
@@ -485,7 +486,7 @@ def markdown_summary(result: CheckResult, figures: list[str] | None = None,
         units = dict(zip(result.variable_names, result.units, strict=False))
         for n, w, a, b in zip(result.rate.names, result.rate.worst, result.rate.single,
                               result.rate.joint, strict=True):
-            per = f" {units[n]}/s" if units.get(n) else " per s"
+            per = rate_unit(units.get(n, ""))
             L.append(f"| {n} | {_fmt(w)} | {_fmt(a)}{per} | {_fmt(b)}{per} |")
     if getattr(result, "rate_certificate", None) is not None:
         L += ["", "## Certified scheduling rates", ""] + result.rate_certificate.markdown_lines()

@@ -17,6 +17,15 @@ def point_text(names, values=None) -> str:
     return ", ".join(f"{n}={float(x):g}" for n, x in zip(names, values))
 
 
+def rate_unit(unit: str) -> str:
+    """The unit of a rate of change of a quantity in ``unit``: ``" m/s"``, ``" (1/s)/s"``
+    for a unit with a slash, ``" per s"`` for none (with the leading space)."""
+    unit = str(unit or "").strip()
+    if unit in ("", "-"):
+        return " per s"
+    return f" ({unit})/s" if "/" in unit else f" {unit}/s"
+
+
 @dataclass(frozen=True)
 class SchedulingVariable:
     """One scheduling variable: a name, a unit and closed bounds ``lower <= p <= upper``."""

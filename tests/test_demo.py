@@ -21,6 +21,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 import pytest
+from _readme_tool import load_readme_tool
 from click.testing import CliRunner
 
 from schedule.cli.main import main
@@ -39,21 +40,18 @@ def _design_margin() -> float:
 
 
 @pytest.fixture(scope="module")
-def demo_run(tmp_path_factory):
-    out = tmp_path_factory.mktemp("demo") / "schedule-demo"
-    res = CliRunner().invoke(main, ["demo", "--out", str(out)])
-    assert res.exit_code == 0, res.output
-    return out, res.output
+def demo_run(readme_demo):
+    """`schedule demo` as the README runs it, in an empty folder (shared, see conftest.py)."""
+    return readme_demo.out, readme_demo.stdout
 
 
 def test_readme_gives_the_demo_and_test_commands():
     text = README.read_text()
     first = text.split("\n\n")[1] if text.startswith("#") else text.split("\n\n")[0]
     assert "H-infinity" in first and "operating" in first  # the job paragraph comes first
-    assert "schedule demo" in text
-    ci = (README.parent / ".ci" / "run").read_text()
-    test_line = [ln for ln in ci.splitlines() if "pytest" in ln][0].strip()
-    assert test_line in text, "README must give exactly the test command .ci/run runs"
+    demo, test = load_readme_tool().two_commands(text)  # what .ci/run runs, verbatim
+    assert demo.endswith("&& schedule demo") and test.endswith("&& python -m pytest -q")
+    assert "--two-commands" in (README.parent / ".ci" / "run").read_text()
     assert "design aids" in text and "licensed practice" in text
 
 
@@ -115,7 +113,7 @@ def test_demo_folder_holds_the_tour_inputs_and_prints_the_tour(demo_run):
     with h5py.File(out / "crane-family.h5", "r") as f:  # designed from the copy
         assert Path(f.attrs["design_base_dir"]) == out.resolve()
     commands = [ln.strip() for ln in output.split("\nnext, ", 1)[1].splitlines()[1:]]
-    assert commands[0] == f"cd {out}"
+    assert commands[0] == "cd schedule-demo"  # the README runs it in the folder it starts in
     readme = README.read_text()
     for command in commands[1:]:
         assert command.startswith("schedule ") and f"$ {command}\n" in readme, command

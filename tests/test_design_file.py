@@ -233,6 +233,19 @@ def test_allowed_sets(table, needle):
     assert needle in error_of(VALID + "\n" + table)
 
 
+def test_export_formats_are_the_exporters_formats():
+    # The design file accepts every format `schedule export --format` writes (one list:
+    # schedule.table_files.FORMATS); found on a new user's tour: "fmu" was refused here
+    # while the command line took it.
+    from schedule.table_files import FORMATS
+
+    spec = parse(VALID + '\n[export]\nsample_time = 0.01\nformats = ["csv", "fmu"]\n')
+    assert spec.export.formats == ("csv", "fmu")
+    for fmt in ("csv", "json", "hdf5", "c", "fmu"):
+        assert fmt in FORMATS
+        parse(VALID + f'\n[export]\nsample_time = 0.01\nformats = ["{fmt}"]\n')
+
+
 def test_weights_match_channels():
     unknown = VALID.replace('output = "y"\npeak_sensitivity', 'output = "z"\npeak_sensitivity')
     msg = error_of(unknown)

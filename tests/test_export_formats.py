@@ -319,3 +319,75 @@ def test_c_header_compiles_in_user_program(tmp_path):
     ref = TableController(tab).step([0.1, -0.2], [12.0, 8000.0])
     assert name == "meas0"
     np.testing.assert_allclose(float(u_c), ref[0], rtol=1e-12)
+
+
+@pytest.mark.parametrize("breakpoints", [((3.0, 10.0, 30.0),), ((3.0, 10.0, 30.0), (2e3, 2e4))])
+def test_interpolate_matrices_mapping_matches_reference_interpolation(breakpoints):
+    # Issue 13 item 9: interpolate_matrices takes {name: value} as TableController.step
+    # does. Reference outside the runtime: numpy.interp (1 variable) and scipy's
+    # RegularGridInterpolator(method="linear") (2 variables) on the table's own node
+    # values, with the point clamped into the box first (the table clamps).
+    from scipy.interpolate import RegularGridInterpolator
+
+    from schedule.export import interpolate_matrices
+
+    tab = _table(breakpoints=breakpoints)
+    names = [v.name for v in tab.variables]
+    rng = np.random.default_rng(3)
+    for _ in range(12):
+        raw = [rng.uniform(b[0] - 0.3 * (b[-1] - b[0]), b[-1] * 1.3) for b in breakpoints]
+        by_name = interpolate_matrices(tab, dict(zip(names, raw, strict=True)))
+        by_order = interpolate_matrices(tab, raw)
+        clamped = [min(max(x, b[0]), b[-1]) for x, b in zip(raw, breakpoints, strict=True)]
+        for k in "ABCD":
+            np.testing.assert_array_equal(by_name[k], by_order[k])
+            T = getattr(tab, k)
+            grid = T.reshape(tuple(len(b) for b in breakpoints) + T.shape[1:])
+            if len(breakpoints) == 1:
+                flat = grid.reshape(len(breakpoints[0]), -1)
+                ref = np.array([np.interp(raw[0], breakpoints[0], col) for col in flat.T])
+                ref = ref.reshape(T.shape[1:])
+            else:
+                ref = RegularGridInterpolator(breakpoints, grid, method="linear")(clamped)[0]
+            np.testing.assert_allclose(by_name[k], ref, rtol=1e-12, atol=1e-13)
+    with pytest.raises(InputError, match="lacks"):
+        interpolate_matrices(tab, {})
+
+
+@pytest.mark.skipif(CC is None, reason="no C compiler")
+def test_c_lookup_with_null_matrices_in_a_user_program(tmp_path):
+    # Issue 13 item 9: the header documents that every matrix argument of lookup "may be
+    # NULL"; a user's program passing NULL literals compiles with -std=c99 -Wall -Wextra
+    # -Werror -pedantic, runs without a crash and fills the one matrix it asked for with
+    # the values the Python runtime gives (docs/tables.md: agreement to 1e-12 relative).
+    from schedule.export import interpolate_matrices
+
+    tab = _table(with_plant=True, limits={"act0": (-0.2, 0.2, 1.0)})
+    out = tmp_path / "c"
+    write_table(tab, "c", out, prefix="arm")
+    (tmp_path / "main.c").write_text(
+        '#include <stdio.h>\n#include "arm_table.h"\n'
+        "int main(void) {\n"
+        "    const double p[ARM_N_VARIABLES] = {12.0, 8000.0};\n"
+        "    double A[ARM_N_STATES * ARM_N_STATES];\n"
+        "    double D[ARM_N_OUTPUTS * ARM_N_INPUTS];\n"
+        "    int i;\n"
+        "    arm_lookup(p, NULL, NULL, NULL, NULL);\n"
+        "    arm_lookup_gain(p, NULL);\n"
+        "    arm_lookup(p, A, NULL, NULL, NULL);\n"
+        "    arm_lookup(p, NULL, NULL, NULL, D);\n"
+        '    for (i = 0; i < ARM_N_STATES * ARM_N_STATES; ++i) printf("%.17g\\n", A[i]);\n'
+        '    for (i = 0; i < ARM_N_OUTPUTS * ARM_N_INPUTS; ++i) printf("%.17g\\n", D[i]);\n'
+        "    return 0;\n}\n")
+    exe = tmp_path / "prog"
+    res = subprocess.run([CC, "-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic", "-I",
+                          str(out), "-o", str(exe), str(tmp_path / "main.c"),
+                          str(out / "arm_table.c")], capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    run = subprocess.run([str(exe)], capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    values = np.array([float(v) for v in run.stdout.split()])
+    ref = interpolate_matrices(tab, {"rope_length": 12.0, "payload_mass": 8000.0})
+    n = tab.n_states * tab.n_states
+    np.testing.assert_allclose(values[:n], ref["A"].ravel(), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(values[n:], ref["D"].ravel(), rtol=1e-12, atol=1e-14)

@@ -600,6 +600,60 @@ def test_level_test_on_lightly_damped_systems(zeta):
         assert cert.below(ref * 1.001)[0]
 
 
+@pytest.mark.parametrize("zeta", [1e-2, 1e-4, 1e-6])
+def test_level_question_on_lightly_damped_systems(zeta):
+    """``h_infinity_norms(..., level=...)`` answers "is the norm at most the level?" (the
+    controller certification asks only this). Reference: dense sweep + Hamiltonian
+    confirmation written here (``reference_norm``). Levels below the norm must be "above",
+    levels a little above it "below"; the attained value is a lower bound and the upper
+    bound at most the level where certified. One batch mixes models decided at the level's
+    own Hamiltonian, models that need the full iteration and an unstable model."""
+    rng = np.random.default_rng(11 + int(-np.log10(zeta)))
+    models, refs = [], []
+    for _ in range(3):
+        (A, B, C, D), wd = lightly_damped(rng, 6, zeta)
+        models.append((A, B, C, D))
+        refs.append(reference_norm(A, B, C, D, wd, zeta))
+    refs = np.array(refs)
+    for factor in (0.5, 1 / 1.02, 1 / 1.001, 1.001, 1.02, 3.0):
+        level = refs * factor
+        A, B, C, D = (np.stack([mdl[k] for mdl in models]) for k in range(4))
+        cert = h_infinity_norms(A, B, C, D, level=level)
+        assert list(cert.below(level)) == [factor > 1] * len(models)
+        # an attained value: below the reference up to the reference's own accuracy
+        assert np.all(cert.norm <= refs * (1 + 1e-7 + 10 * np.finfo(float).eps / zeta))
+        assert np.all(cert.upper >= refs / (1 + 1e-7))  # a true upper bound
+        if factor > 1:
+            assert np.all(cert.upper <= level)
+        # the same question with an unstable model in the batch: that one is "above"
+        Au = np.concatenate([A, -A[:1]])
+        Bu, Cu, Du = (np.concatenate([X, X[:1]]) for X in (B, C, D))
+        lv = np.concatenate([level, [level[0]]])
+        cu = h_infinity_norms(Au, Bu, Cu, Du, level=lv)
+        assert list(cu.below(lv)) == [factor > 1] * len(models) + [False]
+        assert np.isinf(cu.norm[-1]) and "unstable" in cu.status[-1]
+
+
+def test_norm_in_doubt_is_reported_not_crashed(monkeypatch):
+    """A Hamiltonian spectrum without its mirror symmetry (simulated here by shifting every
+    eigenvalue of the 2n x 2n Hamiltonian to the right by 30 % of its modulus: the spectrum
+    of a real Hamiltonian matrix is symmetric about the imaginary axis, Zhou, Doyle and
+    Glover 1996, ch. 13, from memory) cannot be counted: the norm is not certified, and
+    h_infinity_norm says so in one NumericalError (not a crash)."""
+    A, B, C, D = second_order(0.05)
+    eigvals = np.linalg.eigvals
+
+    def broken(M):
+        lam = eigvals(M)
+        return lam + 0.3 * np.abs(lam) if M.shape[-1] == 4 else lam
+
+    monkeypatch.setattr(np.linalg, "eigvals", broken)
+    with pytest.raises(NumericalError, match="not certified"):
+        h_infinity_norm(A, B, C, D)
+    cert = h_infinity_norms(A[None], B[None], C[None], D[None])
+    assert np.isinf(cert.upper[0]) and "mirror image" in cert.status[0]
+
+
 def test_entries_near_the_floating_point_limit():
     """Entries near 1e300 (issue 12: an overflow traceback). G(s) = b c / (s - a) has norm
     |b c / a| at w = 0 (analytic); the scaling by powers of 2 is exact, so the results are

@@ -61,7 +61,7 @@ def tutorial_commands() -> list[str]:
 
 def test_tutorial_lists_files_and_the_whole_path():
     files = tutorial_files()
-    assert {"arm.py", "arm.toml", "main.c"} <= set(files)
+    assert {"arm.py", "arm.toml", "main.c", "motor.py", "motor.toml", "motor_main.c"} <= set(files)
     verbs = [shlex.split(c)[1] for c in tutorial_commands() if c.startswith("schedule ")]
     for verb in ("design", "inspect", "check", "export"):
         assert verb in verbs, f"the tutorial must run `schedule {verb}`"
@@ -110,6 +110,12 @@ def test_tutorial_runs_end_to_end(tmp_path, monkeypatch):
     # the tutorial ends with a passing check of the refined family
     assert checks and checks[-1] == 0
 
+    for name in ("motor-tables/table.csv", "motor-tables/table.json", "motor-tables/table.fmu",
+                 "motor-tables/c/motor_table.c", "motor_demo"):
+        assert (tmp_path / name).is_file(), f"{name} was not produced"
+    motor = _numbers(outputs["./motor_demo"])
+    # angle below its reference -> positive voltage, rising (sign check, as for the arm)
+    assert len(motor) == 5 and 0 < motor[0] < motor[-1]
     for name in ("arm-family.h5", "arm-refined.h5", "arm-table.json",
                  "arm_c/arm_table.h", "arm_c/arm_table.c", "arm_demo",
                  "report/summary.md", "report/summary.html"):
@@ -117,12 +123,56 @@ def test_tutorial_runs_end_to_end(tmp_path, monkeypatch):
     assert list((tmp_path / "report").glob("*.png"))
     assert not list(tmp_path.glob("*.tmp")) and not list(tmp_path.glob("*.partial.h5"))
 
+    _check_prose(outputs)
     c_out = _numbers(outputs["./arm_demo"])
     py_out = _numbers(outputs["python3 api.py"])
     assert len(c_out) == 5 and all(math.isfinite(v) for v in c_out)
     np.testing.assert_allclose(c_out, py_out, rtol=1e-8, atol=1e-12)
     # link below its reference -> positive voltage (raise the arm), growing (sign check)
     assert c_out[0] > 0 and c_out[-1] > c_out[0]
+
+
+def _output_of(outputs: dict, start: str) -> str:
+    return next(out for command, out in outputs.items() if command.startswith(start))
+
+
+def _check_prose(outputs: dict) -> None:
+    """The tutorial's prose quotes results of its own commands; they must stay true (at
+    the digits it shows), like the README's shown outputs."""
+    text = TUTORIAL.read_text()
+    design = _output_of(outputs, "schedule design")
+    lo = float(re.search(r"gamma_opt min\s+([\d.]+)", design).group(1))
+    hi = float(re.search(r"gamma_opt max\s+([\d.]+)", design).group(1))
+    common = float(re.search(r"common gamma\s+([\d.]+)", design).group(1))
+    assert f"about {lo:.2f} to {hi:.2f} here" in text
+    assert f"(about {common:.2f})" in text
+    inspect = _output_of(outputs, "schedule inspect")
+    limit = [ln for ln in inspect.splitlines() if ln.startswith("limit")]
+    assert len(limit) == 1 and "at all 18 points is set by the state-feedback" in limit[0]
+    assert "z 'e:link_angle', 'u:voltage' / w 'd:load_torque'" in limit[0]
+    assert "the state-feedback sub-problem (the X Riccati bound) at all 18" in text
+    refine = _output_of(outputs, "schedule refine")
+    assert "new breakpoints of payload: 0.2, 0.45" in refine
+    assert "new breakpoints of angle: 0.6" in refine
+    assert "added 14 point(s)" in refine and "8 x 4 breakpoints" in refine
+    export = _output_of(outputs, "schedule export arm-refined.h5 --design arm.toml --format c")
+    worst = float(re.search(r"worst norm/gamma ([\d.]+)", export).group(1))
+    assert f"at 2 ms the worst is {100 * (worst - 1):.1f} % above gamma" in \
+        " ".join(text.split())
+    assert "true plant" in export and "interpolated plant" not in export
+    # section 8: the floor 0.001 / 0.01 = 0.1 (noise level over the low-frequency error,
+    # the tutorial's own arithmetic), set by the output-injection sub-problem
+    motor = _output_of(outputs, "schedule design motor.toml")
+    lo = float(re.search(r"gamma_opt min\s+([\d.]+)", motor).group(1))
+    hi = float(re.search(r"gamma_opt max\s+([\d.]+)", motor).group(1))
+    assert 0.1 <= lo <= hi <= 0.1 * (1 + 1e-3)
+    limit = [ln for ln in _output_of(outputs, "schedule inspect motor").splitlines()
+             if ln.startswith("limit")]
+    assert len(limit) == 1 and "at all 7 points is set by the output-injection" in limit[0]
+    assert "z 'e:angle' / w 'n:angle'" in limit[0]
+    check = _output_of(outputs, "schedule check motor-family.h5")
+    (rate,) = [ln for ln in check.splitlines() if "rate bound" in ln]
+    assert check.startswith("PASS") and "alone" not in rate
 
 
 def test_tutorial_model_matches_hand_jacobian(tmp_path, monkeypatch):

@@ -42,10 +42,16 @@ def print_result(result, quiet: bool = False) -> None:
     if quiet:
         return
     if result.rate is not None:
+        from ..types import rate_unit
+
         units = dict(zip(result.variable_names, result.units, strict=True))
         for n, a, b in zip(result.rate.names, result.rate.single, result.rate.joint,
                            strict=True):
-            u = f" {units[n]}/s" if units.get(n) else ""
+            u = rate_unit(units.get(n, "")) if units.get(n) else ""
+            if len(result.rate.names) == 1:  # one variable: alone and joint are the same
+                click.echo(f"  rate bound: |d {n}/dt| < {_fmt(a)}{u} (sufficient, "
+                           "conservative)")
+                continue
             click.echo(f"  rate bound: |d {n}/dt| < {_fmt(a)}{u} alone, {_fmt(b)}{u} with all "
                        "variables moving (sufficient, conservative)")
     if result.rate_certificate is not None:
@@ -65,9 +71,18 @@ def print_result(result, quiet: bool = False) -> None:
         tag = "" if gates[i] else ", evidence only"
         click.echo(f"    ({pt}) [{result.kind[i]}, {result.plant_source[i]} plant{tag}] "
                    f"{what}")
-    if result.proposals is not None and len(result.proposals):
-        click.echo(f"  {len(result.proposals)} new design point(s) proposed; "
-                   "`schedule refine` adds them")
+    import numpy as np
+
+    own = int(np.sum((np.asarray(result.kind) == "grid") & ~np.asarray(result.passed)
+                     & np.asarray(gates)))
+    proposed = 0 if result.proposals is None else len(result.proposals)
+    if own:
+        click.echo(f"  {own} design point(s) fail with their own controller: new points "
+                   "cannot fix that (" + (f"the {proposed} proposed are for the in-between "
+                                          "failures" if proposed else "none proposed")
+                   + "); retune the weights (or the [check] requirements) and design again")
+    elif proposed:
+        click.echo(f"  {proposed} new design point(s) proposed; `schedule refine` adds them")
     for n in result.notes:
         click.echo(f"  note: {n}")
 
@@ -140,7 +155,8 @@ def _num(x) -> float:
               help="Write plots and a summary page (Markdown and HTML) into this folder.")
 @click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
               help="Worker processes for the batched checks and gamma_opt.")
-@click.option("--cluster", default=None, help="dask scheduler address (overrides --jobs).")
+@click.option("--cluster", default=None, metavar="ADDRESS",
+              help="dask scheduler address (overrides --jobs).")
 @click.option("--no-gamma-opt", is_flag=True,
               help="Skip the optimal gamma at each check point (faster).")
 @click.option("--strict-leave-one-out", "strict_loo", is_flag=True,

@@ -136,7 +136,7 @@ def _refuse_overwrite(family_file, formats, out, breakpoints, others=()) -> None
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def export_command(family_file, formats, out, sample_time, method, prewarp, breakpoints,
                    prefix, no_binary, no_check, model, design_file, jobs, as_json):
-    """Export the scheduled controller table of FAMILY_FILE (see docs/tables.md).
+    """Export the scheduled controller table of FAMILY_FILE (docs/tables.md in the source).
 
     Actuator limits ([[limits]] of the design file) and the anti-windup gain go into
     every format.
@@ -265,8 +265,8 @@ def _build_and_write(family, build, spec, no_check, jobs, bar, formats, out, pre
             checked = build_checked_table(family, **build, settings=CheckSettings.from_spec(spec),
                                           spec=spec, jobs=jobs, progress=bar)
         except InputError as exc:
-            raise InputError(f"the table check could not run: {exc}; or export unchecked with "
-                             "--no-table-check") from None
+            raise InputError(f"the table check could not run: {exc}; or write the table "
+                             "unchecked with --no-table-check") from None
         table = checked.table
         if not checked.passed:
             return checked, None, [], []
@@ -352,7 +352,8 @@ def _print_check(checked, as_json: bool, failed: bool) -> None:
     if failed:
         click.echo(f"  stopped: {checked.stopped}")
         click.echo(f"  worst point: {checked.worst_point()}")
-        click.echo("FAIL: nothing written (export unchecked with --no-table-check)")
+        click.echo("FAIL: nothing written (to write this table unchecked, add "
+                   "--no-table-check)")
 
 
 def _n(x, spec: str = ".4g") -> str:

@@ -79,9 +79,11 @@ def main() -> None:
     """Build a gain-scheduled H-infinity controller over an operating envelope.
 
     Typical run: `schedule design SPEC.toml --out family.h5`, then
-    `schedule check family.h5 --report report/`, then
-    `schedule export family.h5 --format c --out table/`.
-    `schedule demo` runs all of it on the bundled crane envelope.
+    `schedule check family.h5 --design SPEC.toml --report report/`, then
+    `schedule export family.h5 --design SPEC.toml --format c --out table/`
+    (--design lets check and export use the model SPEC.toml names: a family
+    file is data and never chooses code to run). `schedule demo` runs all of it
+    on the bundled crane envelope.
 
     Results are design aids: validate in simulation and hardware tests and
     follow the applicable codes and licensed practice.

@@ -27,7 +27,8 @@ from .common import design_inputs, design_option, progress_bar
 @design_option
 @click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
               help="Worker processes.")
-@click.option("--cluster", default=None, help="dask scheduler address (overrides --jobs).")
+@click.option("--cluster", default=None, metavar="ADDRESS",
+              help="dask scheduler address (overrides --jobs).")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 @click.option("--strict-leave-one-out", "strict_loo", is_flag=True,
               help="Let failing leave-one-out predictions fail the check even when the "
@@ -105,9 +106,12 @@ def refine_command(family_file, out, budget, samples, model, design_file, jobs, 
             click.echo("comparison with the input family:")
             for line in outcome.comparison.lines(names):
                 click.echo(line)
-        if written:
-            click.echo(f"{'PASS' if outcome.passed else 'FAIL'}: refined family written to "
-                       f"{out}")
+        if written and outcome.passed:
+            click.echo(f"PASS: refined family written to {out}")
+        elif written:
+            click.echo(f"FAIL: checks still fail ({outcome.stopped}); the refined family, no "
+                       f"worse than its input, is written to {out}: refine it again or raise "
+                       "--budget")
         else:
             click.echo(f"FAIL: the refined family is worse than {family_file}; nothing "
                        "written")

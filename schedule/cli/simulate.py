@@ -96,6 +96,24 @@ def _parse_point(text: str, names) -> dict[str, float]:
     return out
 
 
+def _parse_values(text: str | None, names, option: str) -> list[float] | None:
+    """``name=value,...`` over ``names`` (missing names 0) as a list, None when not given."""
+    if text is None:
+        return None
+    out = dict.fromkeys(names, 0.0)
+    for tok in (t.strip() for t in text.split(",") if t.strip()):
+        key, sep, value = tok.partition("=")
+        key = key.strip()
+        if not sep or key not in out:
+            raise InputError(f"{option} {text!r}: write name=value,... with names from "
+                             f"{', '.join(names)}")
+        try:
+            out[key] = float(value)
+        except ValueError:
+            raise InputError(f"{option} {text!r}: {value!r} is not a number") from None
+    return list(out.values())
+
+
 def _looks_like_crane(model) -> bool:
     return (tuple(getattr(model, "variable_names", ())) == ("rope_length", "payload_mass")
             and "trolley_position" in model.output_names and "wind_speed" in model.input_names)
@@ -128,11 +146,19 @@ def _looks_like_crane(model) -> bool:
 @click.option("--step-at", "step_at", default=None,
               help="Scheduling point of the step, name=value,... Default: the trajectory's "
                    "start (crane: rope_length=30,payload_mass=40000).")
+@click.option("--initial-state", "initial_state", default=None, metavar="NAME=VALUE,...",
+              help="Start state of the model (its state names; others 0). Default: all 0. "
+                   "Give the operating point when the model's origin is not one (e.g. tank "
+                   "levels).")
+@click.option("--trim-input", "trim_input", default=None, metavar="NAME=VALUE,...",
+              help="Trim values of the model inputs that the controller's output is added "
+                   "to, and of the exogenous inputs the trajectory does not give (others "
+                   "0). Default: all 0.")
 @click.option("--no-step", is_flag=True, help="Skip the anti-windup step comparison.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary.")
 def simulate_command(family_file, out, trajectory, table_file, sample_time, method,
-                     model_entry, design_file, substeps, step_text, step_at, no_step,
-                     as_json):
+                     model_entry, design_file, substeps, step_text, step_at, initial_state,
+                     trim_input, no_step, as_json):
     """Simulate the nonlinear model of FAMILY_FILE under its scheduled discrete controller.
 
     The controller sees each measured output minus its reference (the position error
@@ -146,7 +172,7 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
     from ..atomic import write_dir_atomic
     from ..export import TableController, build_table, file_sha256
     from ..paths import input_file, refuse_output_over_input
-    from ..simulate import crane_trajectory, read_trajectory
+    from ..simulate import crane_trajectory, read_trajectory, result_csv, result_plots, simulate
     from ..store import read_family
     from .export import export_settings
 
@@ -200,13 +226,36 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
             measured, size, at = CRANE_STEP
             at = _parse_point(step_at, names) if step_at else dict(at)
         step = (measured, size, at)
+    x0 = _parse_values(initial_state, model.state_names, "--initial-state")
+    u0 = _parse_values(trim_input, model.input_names, "--trim-input")
     with bar:
-        result, files, summary = _run(model, controller, traj, substeps, step, table, bar,
-                                      family_file, entry)
+        result = simulate(model, controller, traj, x0=x0, u0=u0, substeps=substeps,
+                          progress=bar)
+        summary = result.summary()
+        summary.update({"family": str(family_file), "model": entry,
+                        "sample_time": controller.sample_time,
+                        "method": controller.table.method,
+                        "limits": table.actuator_limits.to_metadata(table.control_names),
+                        "anti_windup": table.anti_windup})
+        files = {"simulation.csv": result_csv(result)}
+        if step is not None:
+            summary["step"], step_files = _step_comparison(model, table, step, substeps, x0,
+                                                           u0, bar)
+            files.update(step_files)
+        files["summary.json"] = json.dumps(summary, indent=1) + "\n"
+        what = getattr(model, "description", "") or "the nonlinear model"
+        stage_line(bar, "plots")
+        files.update(result_plots(result, title=f"Under the scheduled table (T = "
+                                                f"{controller.sample_time:g} s): {what}"))
         stage_line(bar, "write")
         paths = write_dir_atomic(out, files, "simulation folder")
     for note in result.notes:
         click.echo(f"warning: {note}", err=True)
+    if x0 is None and u0 is None and not _looks_like_crane(model) and _nothing_moved(result):
+        click.echo("warning: nothing moved: the model stayed at its start (every state 0, "
+                   "every input at its trim 0) for the whole run; if that is not an "
+                   "operating point of the design, give --initial-state and --trim-input",
+                   err=True)
     if as_json:
         summary["paths"] = [str(p) for p in paths]
         click.echo(json.dumps(summary, indent=1))
@@ -231,29 +280,15 @@ def simulate_command(family_file, out, trajectory, table_file, sample_time, meth
         click.echo(f"wrote {p}")
 
 
-def _run(model, controller, traj, substeps, step, table, bar, family_file, entry):
-    """Simulate, run the step comparison, draw the plots: ``(result, files, summary)``."""
-    from ..simulate import result_csv, result_plots, simulate
+def _nothing_moved(result) -> bool:
+    """True when every state of the run stayed exactly at zero."""
+    import numpy as np
 
-    result = simulate(model, controller, traj, substeps=substeps, progress=bar)
-    summary = result.summary()
-    summary.update({"family": str(family_file), "model": entry,
-                    "sample_time": controller.sample_time, "method": controller.table.method,
-                    "limits": table.actuator_limits.to_metadata(table.control_names),
-                    "anti_windup": table.anti_windup})
-    files = {"simulation.csv": result_csv(result)}
-    if step is not None:
-        summary["step"], step_files = _step_comparison(model, table, step, substeps, bar)
-        files.update(step_files)
-    files["summary.json"] = json.dumps(summary, indent=1) + "\n"
-    what = getattr(model, "description", "") or "the nonlinear model"
-    stage_line(bar, "plots")
-    files.update(result_plots(result, title=f"Under the scheduled table (T = "
-                                            f"{controller.sample_time:g} s): {what}"))
-    return result, files, summary
+    return not np.any(np.asarray(result.states))
 
 
-def _step_comparison(model, table, step, substeps, progress=None) -> tuple[dict, dict]:
+def _step_comparison(model, table, step, substeps, x0=None, u0=None,
+                     progress=None) -> tuple[dict, dict]:
     """Run the step with and without anti-windup (and without limits); summary and files."""
     import csv
     import io
@@ -266,7 +301,8 @@ def _step_comparison(model, table, step, substeps, progress=None) -> tuple[dict,
     names = tuple(v.name for v in table.variables)
     traj = step_trajectory(names, at, measured, size, duration=STEP_DURATION,
                            sample_time=table.sample_time)
-    runs = anti_windup_comparison(model, table, traj, substeps=substeps, progress=progress)
+    runs = anti_windup_comparison(model, table, traj, substeps=substeps, x0=x0, u0=u0,
+                                  progress=progress)
     info = {"output": measured, "size": size, "at": at, "duration": STEP_DURATION,
             "overshoot_percent": {}, "final_error": {}, "peak_command": {}}
     for name, res in runs.items():

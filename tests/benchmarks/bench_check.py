@@ -72,7 +72,8 @@ mass = [0.5, 1.25, 2.0]
 """
             + toml_channels(["force"], ["pos1", "pos3"], ["push"], ["pos3"])
             + toml_weights(performance=[("pos3", performance_numbers(2.0, 0.173, 0.02))],
-                           effort=[("force", 0.05, 10.0, 2.0)],
+                           effort=[("force", {"limit": 20.0, "bandwidth": 5.0,
+                                             "high_frequency_limit": 0.5})],
                            noise=[("pos1", 0.01), ("pos3", 0.01)], disturbance=[("push", 1.0)])
             + SCHEDULED_MATRICES)
 

@@ -3,8 +3,9 @@
 Run ``python tests/benchmarks/bench_norms.py [--per-call]``. With ``--per-call`` it
 times, side by side in one run with one BLAS thread, ``h_infinity_norm`` against a plain
 two-step Hamiltonian loop written here (Bruinsma-Steinbuch lower bound, level sets,
-midpoints; none of the certificate's checks) and against the revision before the
-certified route (tests/benchmarks/_earlier.py), and prints the speed ratios.
+midpoints; none of the certificate's checks), against main at the start of the speed
+work and against the revision before the certified route (tests/benchmarks/_earlier.py),
+and prints the speed ratios (plain/now >= 1: the certified norm is at least on par).
 
 Without it: for each order (4, 8, 16, 32) and
 damping class (well damped, lightly damped) it times, side by side in one run,
@@ -72,13 +73,13 @@ def sweep_solve(A, B, C, D, w):
     return best
 
 
-def median_time(fn, repeat, *args):
+def median_time(fn, repeat, *args, clock=time.perf_counter):
     times = []
     out = None
     for _ in range(repeat):
-        t = time.perf_counter()
+        t = clock()
         out = fn(*args)
-        times.append(time.perf_counter() - t)
+        times.append(clock() - t)
     return float(np.median(times)), out
 
 
@@ -116,27 +117,37 @@ def plain_two_step(A, B, C, D, rtol=1e-8):
 
 
 def per_call() -> None:
-    """h_infinity_norm per call against a plain loop and the earlier revision."""
+    """h_infinity_norm per call against a plain loop, main at the start of the speed work
+    and the revision before the certified route, all side by side in one run."""
+    import importlib
+
     import _earlier
 
     _earlier.load()
-    import schedule_old.norms as old
+    _earlier.load(_earlier.START, "schedule_start")
+    old = importlib.import_module("schedule_old.norms")
+    start = importlib.import_module("schedule_start.norms")
 
     rng = np.random.default_rng(2024)
-    print(f"{'n':>3} {'damping':>10} {'plain ms':>9} {'before ms':>10} {'now ms':>8} "
-          f"{'plain/now':>10} {'plain/before':>13}")
-    for n in (4, 8, 16, 32):
+    fns = (("plain", plain_two_step), ("before", old.h_infinity_norm),
+           ("start", start.h_infinity_norm), ("now", h_infinity_norm))
+    print("CPU ms per call (process time: the machine is shared; median of 9, mean over 8 "
+          "models, two alternating rounds); ratios > 1: plain is slower")
+    print(f"{'n':>3} {'damping':>10} {'plain':>7} {'before':>7} {'start':>7} {'now':>7} "
+          f"{'plain/start':>12} {'plain/now':>10} {'start/now':>10}")
+    for n in (4, 8, 12, 16, 32):
         for label, damping in (("0.05-0.7", (0.05, 0.7)), ("1e-4-1e-2", (1e-4, 1e-2))):
             models = [random_model(rng, n, 2, 2, damping) for _ in range(8)]
-            ts = {"plain": 0.0, "before": 0.0, "now": 0.0}
+            ts = dict.fromkeys(dict(fns), 0.0)
             for mdl in models:
-                for name, fn in (("plain", plain_two_step), ("before", old.h_infinity_norm),
-                                 ("now", h_infinity_norm)):
-                    t, _ = median_time(fn, 9, *mdl)
-                    ts[name] += t
-            print(f"{n:>3} {label:>10} {1e3 * ts['plain'] / 8:9.3f} {1e3 * ts['before'] / 8:10.3f} "
-                  f"{1e3 * ts['now'] / 8:8.3f} {ts['plain'] / ts['now']:10.2f} "
-                  f"{ts['plain'] / ts['before']:13.2f}")
+                for _ in range(2):  # alternate the variants twice: load drifts
+                    for name, fn in fns:
+                        t, _ = median_time(fn, 9, *mdl, clock=time.process_time)
+                        ts[name] += t
+            ms = {k: 1e3 * v / 16 for k, v in ts.items()}
+            print(f"{n:>3} {label:>10} {ms['plain']:7.3f} {ms['before']:7.3f} {ms['start']:7.3f} "
+                  f"{ms['now']:7.3f} {ts['plain'] / ts['start']:12.2f} "
+                  f"{ts['plain'] / ts['now']:10.2f} {ts['start'] / ts['now']:10.2f}")
 
 
 def main() -> None:
