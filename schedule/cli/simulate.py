@@ -78,18 +78,25 @@ def _parse_step(text: str, measured) -> tuple[str, float]:
     return name, size
 
 
-def _parse_point(text: str, names) -> dict[str, float]:
-    out = {}
+def _parse_assignments(text: str, names, option: str) -> dict[str, float]:
+    """``name=value,...`` with names from ``names``, as a mapping of the names given."""
+    out: dict[str, float] = {}
     for tok in (t.strip() for t in (text or "").split(",") if t.strip()):
         key, sep, value = tok.partition("=")
         key = key.strip()
         if not sep or key not in names:
-            raise InputError(f"--step-at {text!r}: write name=value,... with names from "
+            raise InputError(f"{option} {text!r}: write name=value,... with names from "
                              f"{', '.join(names)}")
         try:
             out[key] = float(value)
         except ValueError:
-            raise InputError(f"--step-at {text!r}: {value!r} is not a number") from None
+            raise InputError(f"{option} {text!r}: {value!r} is not a number") from None
+    return out
+
+
+def _parse_point(text: str, names) -> dict[str, float]:
+    """``--step-at name=value,...``: every scheduling variable must be given."""
+    out = _parse_assignments(text, names, "--step-at")
     missing = [n for n in names if n not in out]
     if missing:
         raise InputError(f"--step-at {text!r} lacks {', '.join(missing)}; give every variable")
@@ -100,18 +107,8 @@ def _parse_values(text: str | None, names, option: str) -> list[float] | None:
     """``name=value,...`` over ``names`` (missing names 0) as a list, None when not given."""
     if text is None:
         return None
-    out = dict.fromkeys(names, 0.0)
-    for tok in (t.strip() for t in text.split(",") if t.strip()):
-        key, sep, value = tok.partition("=")
-        key = key.strip()
-        if not sep or key not in out:
-            raise InputError(f"{option} {text!r}: write name=value,... with names from "
-                             f"{', '.join(names)}")
-        try:
-            out[key] = float(value)
-        except ValueError:
-            raise InputError(f"{option} {text!r}: {value!r} is not a number") from None
-    return list(out.values())
+    given = _parse_assignments(text, names, option)
+    return [given.get(n, 0.0) for n in names]
 
 
 def _looks_like_crane(model) -> bool:
