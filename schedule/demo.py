@@ -37,6 +37,7 @@ import numpy as np
 
 from .errors import InputError
 from .progress import stage_line
+from .types import rate_unit
 
 CAUTION = ("Results are design aids: validate in simulation and hardware tests and follow the "
            "applicable codes and licensed practice.")
@@ -292,7 +293,8 @@ def _lines(s: dict) -> list[str]:
             f">= {_num(t['min_input_phase_margin_deg'])} deg")
     if s["rate_bound"]:
         lines.append("rate bound            " + ", ".join(
-            f"|d {k}/dt| < {v:.3g} {units.get(k, '')}/s" for k, v in s["rate_bound"].items()))
+            f"|d {k}/dt| < {v:.3g}{rate_unit(units.get(k, ''))}"
+            for k, v in s["rate_bound"].items()))
     lines += [
         f"family file           {s['files']['family']}",
         f"report                {s['files']['report']}",

@@ -409,9 +409,7 @@ def _gain_rate_plot(plt, result: CheckResult, out: Path) -> Path | None:
         fin = g[np.isfinite(g)]
         if fin.size and fin.max() > 20 * max(min(fin.min(), rc.frozen_gain), 1e-300):
             ax.set_yscale("log")  # the bound grows steeply near the certified rate
-        unit = units.get(name, "")
-        unit = "" if unit in ("", "-") else unit
-        ax.set_xlabel(f"|d {name}/dt| [{unit}/s]" if unit else f"|d {name}/dt| [1/s]")
+        ax.set_xlabel(f"|d {name}/dt| [{rate_unit(units.get(name, '')).strip()}]")
         ax.set_ylabel("induced L2 gain")
         ax.set_title(f"Gain bound while {name} moves")
         ax.legend(loc="best")
