@@ -412,7 +412,8 @@ class Certifier:
         # cut points (point index, vertex signs), kept apart for the stability and the gain
         # LMIs: the points where one is tight need not be those where the other is
         self.pools: dict[bool, list[tuple[int, tuple]]] = {False: [], True: []}
-        self.gain_margin = 1e-4 * max(float(np.max(self.gamma_frozen)), 1e-12)
+        # margin of the reduced gain LMI R = gamma x (Schur complement of L), see solve_lmi
+        self.gain_margin = 1e-4 * max(float(np.max(self.gamma_frozen)), 1e-12) ** 2
         self.solves = 0
         self.log: Callable[[str], None] = lambda msg: None
         self.solve_seconds = 0.0
