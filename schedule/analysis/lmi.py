@@ -266,12 +266,13 @@ class LmiSolution:
     level: float = float("nan")
 
 
-def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
+def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float, reduced: bool = True):
     """``min q'x  s.t.  b - M x in PSD x ... x PSD (x SOC)`` for the imposed LMIs.
 
     x = [svec(P_1); ...; svec(P_K); g or t]. Gain: one cone per point i,
     ``svec(-R(p_i, rates_i) - margin I)`` with R the reduced gain LMI of
-    :func:`solve_lmi` (order n + nw), minimize g = gamma^2. Stability: cones
+    :func:`solve_lmi` (order n + nw), minimize g = gamma^2 (``reduced=False``: the full
+    ``svec(-L(p_i, rates_i) - margin I)``, minimize gamma). Stability: cones
     ``svec(-L(p_i, rates_i) - t I)`` and the second-order cone
     ``||(svec P_1, ..., svec P_K)|| <= 1``, maximize t (the largest margin; the
     LMI is homogeneous in P, so a bound on P is all the normalization needed).
@@ -282,7 +283,8 @@ def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
     N, n = A.shape[0], A.shape[1]
     K = F.shape[1]
     nw = B.shape[2] if gain else 0
-    m = n + nw  # the z block is eliminated (Schur complement): see solve_lmi
+    nz = C.shape[1] if gain and not reduced else 0
+    m = n + nw + nz  # reduced: the z block is eliminated (Schur complement), see solve_lmi
     Un, Um = _svec_matrix(n), _svec_matrix(m)
     nsv, sm = Un.shape[0], Um.shape[0]
     Jx = np.zeros((n, m))
@@ -302,9 +304,16 @@ def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
     G = Um @ kron @ Un.T  # (N, sm, nsv)
     H = Um @ np.kron(Jx.T, Jx.T) @ Un.T  # (sm, nsv): the rate term's embedding
     c = np.einsum("ikj,ij->ik", dF, rates)  # (N, K)
-    if gain:  # [C D]' [C D], the constant part of the reduced gain LMI
+    if gain and reduced:  # [C D]' [C D], the constant part of the reduced gain LMI
         CD = np.concatenate([C, D], axis=2)
         L0 = np.swapaxes(CD, 1, 2) @ CD
+    elif gain:  # the full LMI: C and D off the diagonal, -gamma I in the w and z blocks
+        L0 = np.zeros((N, m, m))
+        L0[:, :n, n + nw:] = np.swapaxes(C, 1, 2)
+        L0[:, n + nw:, :n] = C
+        L0[:, n:n + nw, n + nw:] = np.swapaxes(D, 1, 2)
+        L0[:, n + nw:, n:n + nw] = D
+    if gain:
         E = np.zeros((m, m))
         E[n:, n:] = -np.eye(m - n)
         g_col = svec(E)
@@ -337,7 +346,7 @@ def _kron_batch(X: np.ndarray, Y: np.ndarray) -> np.ndarray:
 
 def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
               margin: float = 1.0, solver: str = "clarabel", tolerance: float = 1e-6,
-              max_iterations: int = 100) -> LmiSolution:
+              max_iterations: int = 100, reduced: bool = True) -> LmiSolution:
     """Solve the imposed LMIs for P_k (and the smallest gamma).
 
     Stability (``gain=False``): the P(p) with the largest margin t,
@@ -370,6 +379,8 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     solver : "clarabel" or "cvxpy:<NAME>" (see :data:`SOLVERS`).
     tolerance : the solver's relative gap and feasibility tolerance (the
         certificate never rests on it: :func:`lmi_worst` checks the answer).
+    reduced : gain only: solve the reduced form (default); False: the full LMI
+        ``L <= -margin I`` (slower; kept for comparisons).
 
     Returns
     -------
@@ -383,7 +394,8 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     if not gain:
         B, C, D = B[:, :, :0], C[:, :0, :], D[:, :0, :0]
     t0 = time.perf_counter()
-    q, M, b, dims, nsv, K, soc = _conic_data(A, B, C, D, F, dF, rates, gain, margin)
+    q, M, b, dims, nsv, K, soc = _conic_data(A, B, C, D, F, dF, rates, gain, margin,
+                                             reduced)
     if solver == "clarabel":
         x, status, feasible, iters = _solve_clarabel(q, M, b, dims, soc, tolerance,
                                                      max_iterations)
@@ -401,9 +413,11 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     else:
         Pk = smat(x[:K * nsv].reshape(K, nsv), n)
         gamma, level = None, float(x[-1])
-        if gain:  # back from (Q, g) to (P, gamma) of the full LMI
+        if gain and reduced:  # back from (Q, g) to (P, gamma) of the full LMI
             gamma = level = float(np.sqrt(max(x[-1], 1e-300)))
             Pk = Pk / gamma
+        elif gain:
+            gamma = level
     if not gain and not level > 0 and status in SOLVED:  # the largest margin is not
         feasible = False  # positive: no P exists at the imposed points
     return LmiSolution(Pk, gamma, status, feasible, seconds, iters, int(M.shape[0]), level)

@@ -76,6 +76,8 @@ LoopFunction = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, 
 
 #: a dense-check eigenvalue counts as negative below -CHECK_TOL x (size of its terms)
 CHECK_TOL = 1e-9
+#: smallest distance between two cuts of one round, in grid cells (of the start points)
+CUT_SPACING = 0.5
 
 
 @dataclass(frozen=True)
@@ -409,6 +411,16 @@ class Certifier:
         self.dF = np.einsum("ikj,kl->ilj", dF, Ri)
         self.span = span
         self.n_start = int(n_imposed)
+        # spacing coordinates of the cuts: per variable, the fractional index among the
+        # distinct values of the start points (cells of a rectangular grid have width 1,
+        # however unevenly the breakpoints are spaced)
+        self.cut_spacing = CUT_SPACING
+        self.cell_coords = np.zeros_like(self.points)
+        for j in range(len(self.names)):
+            knots = np.unique(self.points[:self.n_start, j])
+            if knots.size > 1:
+                self.cell_coords[:, j] = np.interp(self.points[:, j], knots,
+                                                   np.arange(knots.size, dtype=float))
         # cut points (point index, vertex signs), kept apart for the stability and the gain
         # LMIs: the points where one is tight need not be those where the other is
         self.pools: dict[bool, list[tuple[int, tuple]]] = {False: [], True: []}
@@ -524,8 +536,13 @@ class Certifier:
 
     def _new_cuts(self, viol: np.ndarray, signs: np.ndarray, imposed: set, rates) -> list:
         """Up to ``cuts`` violating points (worst first, spread out), each with its violated
-        vertices, that are not imposed yet."""
-        scale = np.where(self.span > 0, self.span, 1.0)
+        vertices, that are not imposed yet.
+
+        Spread out: no two cuts of a round closer than ``cut_spacing`` of a grid cell
+        (in every variable), so that one round cuts wherever the check fails rather than
+        many times around the worst point (the LMI then fails in most cells at once).
+        """
+        u = self.cell_coords
         point_viol = viol.max(axis=1)
         chosen: list[int] = []
         out = []
@@ -537,8 +554,8 @@ class Certifier:
             if not fresh:
                 continue
             if chosen:
-                dist = np.abs((self.points[chosen] - self.points[i]) / scale).max(axis=1)
-                if dist.min() < 0.02:
+                dist = np.abs(u[chosen] - u[i]).max(axis=1)
+                if dist.min() < self.cut_spacing:
                     continue
             chosen.append(int(i))
             out.extend((int(i), g) for g in fresh)
