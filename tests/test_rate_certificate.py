@@ -329,3 +329,29 @@ def test_result_to_dict_is_json():
                       "frozen_bound", "witness"}
     assert d["a_posteriori_check"]["theta"]["dense_points"] >= 31
     assert any("theta" in line for line in cert.text_lines())
+
+
+def test_cuts_of_a_round_are_spread_over_the_grid_cells():
+    # The documented rule (docs/methods.md, the cutting-plane check): the cuts of one round
+    # are the worst violating points at least half a grid cell apart, cells counted between
+    # the (unevenly spaced) start points; here a violation that grows towards p = 0, so the
+    # worst points bunch there. Start points 0, 0.1, 0.3, 1 (3 cells), dense step 0.001.
+    var = [SchedulingVariable("p", "", 0.0, 1.0)]
+    start = np.array([[0.0], [0.1], [0.3], [1.0]])
+    dense = np.linspace(0.0, 1.0, 1001)[:, None]
+    pts = np.vstack([start, dense])
+    s = CertificateSettings(basis=("1", "p"), gain=False, witness=False, cuts=3)
+    c = Certifier(_switched(pts), pts, 4, var, parse_basis(s.basis, ("p",)), s)
+    viol = (1.0 - pts[:, 0])[:, None]  # one vertex; worst at p = 0
+    cuts = c._new_cuts(viol, np.ones((1, 1)), set(), np.zeros(1))
+    chosen = np.array(sorted({i for i, _ in cuts}))
+    assert chosen.size == 3
+    cell = np.interp(pts[chosen, 0], start[:, 0], np.arange(4.0))  # cell coordinates
+    assert np.min(np.diff(np.sort(cell))) >= 0.5 - 1e-12
+    # a grid too coarse for the cuts at half a cell (one cell, 8 cuts): closer, never starved
+    two = np.vstack([start[[0, 3]], dense])
+    s8 = CertificateSettings(basis=("1", "p"), gain=False, witness=False, cuts=8)
+    c = Certifier(_switched(two), two, 2, var, parse_basis(s8.basis, ("p",)), s8)
+    cuts = c._new_cuts((1.0 - two[:, 0])[:, None], np.ones((1, 1)), set(), np.zeros(1))
+    p8 = np.sort(two[[i for i, _ in cuts], 0])
+    assert p8.size == 8 and np.min(np.diff(p8)) > 0.01

@@ -414,13 +414,19 @@ class Certifier:
         # spacing coordinates of the cuts: per variable, the fractional index among the
         # distinct values of the start points (cells of a rectangular grid have width 1,
         # however unevenly the breakpoints are spaced)
-        self.cut_spacing = CUT_SPACING
         self.cell_coords = np.zeros_like(self.points)
+        cells = np.zeros(len(self.names))
         for j in range(len(self.names)):
             knots = np.unique(self.points[:self.n_start, j])
             if knots.size > 1:
                 self.cell_coords[:, j] = np.interp(self.points[:, j], knots,
                                                    np.arange(knots.size, dtype=float))
+                cells[j] = knots.size - 1
+        # half a cell, or less on coarse grids: room for at least 2 x cuts points per round
+        self.cut_spacing = CUT_SPACING
+        while (np.prod(cells / self.cut_spacing + 1) < 2 * int(settings.cuts)
+               and self.cut_spacing > 1e-3):
+            self.cut_spacing /= 2.0
         # cut points (point index, vertex signs), kept apart for the stability and the gain
         # LMIs: the points where one is tight need not be those where the other is
         self.pools: dict[bool, list[tuple[int, tuple]]] = {False: [], True: []}
@@ -539,8 +545,9 @@ class Certifier:
         vertices, that are not imposed yet.
 
         Spread out: no two cuts of a round closer than ``cut_spacing`` of a grid cell
-        (in every variable), so that one round cuts wherever the check fails rather than
-        many times around the worst point (the LMI then fails in most cells at once).
+        (in every variable; half a cell, less on grids too coarse for ``cuts`` points at
+        that spacing), so that one round cuts wherever the check fails rather than many
+        times around the worst point (the LMI then fails in most cells at once).
         """
         u = self.cell_coords
         point_viol = viol.max(axis=1)
