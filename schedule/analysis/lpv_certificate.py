@@ -18,7 +18,8 @@ How a rate box is certified (:meth:`Certifier.attempt`):
    relative to the size of its terms, must be negative, and P(p) positive
    definite, at every point;
 3. if the check fails, add the worst violating points (with their violated
-   vertices) to the imposed set and solve again (a cutting-plane loop), up to
+   vertices; at least half a grid cell apart, so that one round cuts in every
+   failing cell) to the imposed set and solve again (a cutting-plane loop), up to
    ``max_rounds`` times, or until the violation stops shrinking.
 
 Only what step 2 confirms is certified; the solver's own status is never
