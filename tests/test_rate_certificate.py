@@ -266,11 +266,15 @@ def test_gain_bound_is_monotone_and_above_every_frozen_norm():
 def test_second_solver_and_an_independent_formulation_agree():
     # The same gain LMI built from cvxpy atoms (Diamond and Boyd 2016) and solved by SCS
     # (O'Donoghue et al. 2016): an outside reference for both our assembly and our solver.
+    # The atoms below are the full LMI (order n + nw + nz); ours is solved in the reduced
+    # form (the z block eliminated by a Schur complement, Boyd et al. 1994, from memory),
+    # which has the same optimal gamma; the strictness margins are not the same matrices,
+    # so they are taken small enough not to matter at 1e-4.
     cp = pytest.importorskip("cvxpy")
     pts = np.linspace(0, 1, 4)[:, None]
     A, B, C, D = _oscillator(pts)
     F, dF = parse_basis(("1", "stiffness"), ("stiffness",)).evaluate(pts)
-    nu, margin = 0.3, 1e-4
+    nu, margin = 0.3, 1e-7
     idx = np.repeat(np.arange(4), 2)
     rates = np.tile([[nu], [-nu]], (4, 1))
     ours = solve_lmi(A[idx], F[idx], dF[idx], rates, B[idx], C[idx], D[idx], gain=True,
@@ -325,3 +329,29 @@ def test_result_to_dict_is_json():
                       "frozen_bound", "witness"}
     assert d["a_posteriori_check"]["theta"]["dense_points"] >= 31
     assert any("theta" in line for line in cert.text_lines())
+
+
+def test_cuts_of_a_round_are_spread_over_the_grid_cells():
+    # The documented rule (docs/methods.md, the cutting-plane check): the cuts of one round
+    # are the worst violating points at least half a grid cell apart, cells counted between
+    # the (unevenly spaced) start points; here a violation that grows towards p = 0, so the
+    # worst points bunch there. Start points 0, 0.1, 0.3, 1 (3 cells), dense step 0.001.
+    var = [SchedulingVariable("p", "", 0.0, 1.0)]
+    start = np.array([[0.0], [0.1], [0.3], [1.0]])
+    dense = np.linspace(0.0, 1.0, 1001)[:, None]
+    pts = np.vstack([start, dense])
+    s = CertificateSettings(basis=("1", "p"), gain=False, witness=False, cuts=3)
+    c = Certifier(_switched(pts), pts, 4, var, parse_basis(s.basis, ("p",)), s)
+    viol = (1.0 - pts[:, 0])[:, None]  # one vertex; worst at p = 0
+    cuts = c._new_cuts(viol, np.ones((1, 1)), set(), np.zeros(1))
+    chosen = np.array(sorted({i for i, _ in cuts}))
+    assert chosen.size == 3
+    cell = np.interp(pts[chosen, 0], start[:, 0], np.arange(4.0))  # cell coordinates
+    assert np.min(np.diff(np.sort(cell))) >= 0.5 - 1e-12
+    # a grid too coarse for the cuts at half a cell (one cell, 8 cuts): closer, never starved
+    two = np.vstack([start[[0, 3]], dense])
+    s8 = CertificateSettings(basis=("1", "p"), gain=False, witness=False, cuts=8)
+    c = Certifier(_switched(two), two, 2, var, parse_basis(s8.basis, ("p",)), s8)
+    cuts = c._new_cuts((1.0 - two[:, 0])[:, None], np.ones((1, 1)), set(), np.zeros(1))
+    p8 = np.sort(two[[i for i, _ in cuts], 0])
+    assert p8.size == 8 and np.min(np.diff(p8)) > 0.01

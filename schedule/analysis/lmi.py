@@ -42,6 +42,9 @@ systems", IEEE Trans. Control Systems Technology 6(1), 1998,
 doi:10.1109/87.654874.
 P. J. Goulart, Y. Chen, "Clarabel: an interior-point solver for conic
 programs with quadratic objectives", arXiv:2405.12762, 2024.
+S. Boyd, L. El Ghaoui, E. Feron, V. Balakrishnan, "Linear matrix
+inequalities in system and control theory", SIAM, 1994 (the reduced form of
+the gain LMI).
 S. Diamond, S. Boyd, "CVXPY: a Python-embedded modeling language for convex
 optimization", J. Machine Learning Research 17(83), 2016.
 """
@@ -263,11 +266,13 @@ class LmiSolution:
     level: float = float("nan")
 
 
-def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
+def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float, reduced: bool = True):
     """``min q'x  s.t.  b - M x in PSD x ... x PSD (x SOC)`` for the imposed LMIs.
 
-    x = [svec(P_1); ...; svec(P_K); gamma or t]. Gain: one cone per point i,
-    ``svec(-L(p_i, rates_i) - margin I)``, minimize gamma. Stability: cones
+    x = [svec(P_1); ...; svec(P_K); g or t]. Gain: one cone per point i,
+    ``svec(-R(p_i, rates_i) - margin I)`` with R the reduced gain LMI of
+    :func:`solve_lmi` (order n + nw), minimize g = gamma^2 (``reduced=False``: the full
+    ``svec(-L(p_i, rates_i) - margin I)``, minimize gamma). Stability: cones
     ``svec(-L(p_i, rates_i) - t I)`` and the second-order cone
     ``||(svec P_1, ..., svec P_K)|| <= 1``, maximize t (the largest margin; the
     LMI is homogeneous in P, so a bound on P is all the normalization needed).
@@ -277,8 +282,9 @@ def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
 
     N, n = A.shape[0], A.shape[1]
     K = F.shape[1]
-    nw, nz = (B.shape[2], C.shape[1]) if gain else (0, 0)
-    m = n + nw + nz
+    nw = B.shape[2] if gain else 0
+    nz = C.shape[1] if gain and not reduced else 0
+    m = n + nw + nz  # reduced: the z block is eliminated (Schur complement), see solve_lmi
     Un, Um = _svec_matrix(n), _svec_matrix(m)
     nsv, sm = Un.shape[0], Um.shape[0]
     Jx = np.zeros((n, m))
@@ -298,12 +304,16 @@ def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
     G = Um @ kron @ Un.T  # (N, sm, nsv)
     H = Um @ np.kron(Jx.T, Jx.T) @ Un.T  # (sm, nsv): the rate term's embedding
     c = np.einsum("ikj,ij->ik", dF, rates)  # (N, K)
-    L0 = np.zeros((N, m, m))
-    if gain:
+    if gain and reduced:  # [C D]' [C D], the constant part of the reduced gain LMI
+        CD = np.concatenate([C, D], axis=2)
+        L0 = np.swapaxes(CD, 1, 2) @ CD
+    elif gain:  # the full LMI: C and D off the diagonal, -gamma I in the w and z blocks
+        L0 = np.zeros((N, m, m))
         L0[:, :n, n + nw:] = np.swapaxes(C, 1, 2)
         L0[:, n + nw:, :n] = C
         L0[:, n:n + nw, n + nw:] = np.swapaxes(D, 1, 2)
         L0[:, n + nw:, n:n + nw] = D
+    if gain:
         E = np.zeros((m, m))
         E[n:, n:] = -np.eye(m - n)
         g_col = svec(E)
@@ -312,7 +322,7 @@ def _conic_data(A, B, C, D, F, dF, rates, gain: bool, margin: float):
     rows = blk.reshape(N * sm, K * nsv)  # (N sm, K nsv)
     q = np.zeros(nx)
     q[-1] = 1.0
-    if gain:  # -L - margin I >= 0, L = ... - gamma (w and z blocks)
+    if gain:  # -R - margin I >= 0, R = ... - g (w block)
         b = (-svec(L0) - margin * svec(np.eye(m))).reshape(-1)
         rows = np.hstack([rows, np.tile(g_col, N)[:, None]])
         return q, sparse.csc_matrix(rows), b, [m] * N, nsv, K, 0
@@ -336,7 +346,7 @@ def _kron_batch(X: np.ndarray, Y: np.ndarray) -> np.ndarray:
 
 def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
               margin: float = 1.0, solver: str = "clarabel", tolerance: float = 1e-6,
-              max_iterations: int = 100) -> LmiSolution:
+              max_iterations: int = 100, reduced: bool = True) -> LmiSolution:
     """Solve the imposed LMIs for P_k (and the smallest gamma).
 
     Stability (``gain=False``): the P(p) with the largest margin t,
@@ -344,9 +354,21 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     ``sum_k ||P_k||_F^2 <= 1`` (the LMI is homogeneous in P; the largest-margin
     solution is the most robust one between the points); the imposed LMIs have
     no solution when the solver finds ``t <= 0``. ``margin`` is not used.
-    Gain: minimize gamma subject to ``L(p_i, v_i) <= -margin I`` (the margin
-    makes the solution strictly feasible, at the price of a slightly larger
-    gamma).
+    Gain: the smallest gamma, solved in the reduced form of the bounded real
+    lemma (Boyd, El Ghaoui, Feron and Balakrishnan 1994, ch. 6, from memory): with
+    ``Q = gamma P`` and ``g = gamma^2``, a Schur complement on the -gamma I
+    block of the z outputs turns ``L(p, v) < 0`` into the equivalent
+
+        R(p, v) = [ A'Q + Q A + sum_j v_j dQ/dp_j + C'C   Q B + C'D ]  < 0,
+                  [ B'Q + D'C                            D'D - g I ]
+
+    of order n + nw instead of n + nw + nz (cones of (n + nw)(n + nw + 1)/2
+    rows instead of (n + nw + nz)(n + nw + nz + 1)/2: the solver's work per
+    cone falls accordingly). It is imposed as ``R(p_i, v_i) <= -margin I``
+    (the margin makes the solution strictly feasible, at the price of a
+    slightly larger gamma), minimizing g; the result is returned in the terms
+    of ``L``: ``gamma = sqrt(g)``, ``P_k = Q_k / gamma``, which the dense check
+    (:func:`lmi_worst`) verifies in the full form.
 
     Parameters
     ----------
@@ -357,6 +379,8 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     solver : "clarabel" or "cvxpy:<NAME>" (see :data:`SOLVERS`).
     tolerance : the solver's relative gap and feasibility tolerance (the
         certificate never rests on it: :func:`lmi_worst` checks the answer).
+    reduced : gain only: solve the reduced form (default); False: the full LMI
+        ``L <= -margin I`` (slower; kept for comparisons).
 
     Returns
     -------
@@ -370,7 +394,8 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
     if not gain:
         B, C, D = B[:, :, :0], C[:, :0, :], D[:, :0, :0]
     t0 = time.perf_counter()
-    q, M, b, dims, nsv, K, soc = _conic_data(A, B, C, D, F, dF, rates, gain, margin)
+    q, M, b, dims, nsv, K, soc = _conic_data(A, B, C, D, F, dF, rates, gain, margin,
+                                             reduced)
     if solver == "clarabel":
         x, status, feasible, iters = _solve_clarabel(q, M, b, dims, soc, tolerance,
                                                      max_iterations)
@@ -387,8 +412,12 @@ def solve_lmi(A, F, dF, rates, B=None, C=None, D=None, gain: bool = False,
         level = float("nan")
     else:
         Pk = smat(x[:K * nsv].reshape(K, nsv), n)
-        gamma = float(x[-1]) if gain else None
-        level = float(x[-1])
+        gamma, level = None, float(x[-1])
+        if gain and reduced:  # back from (Q, g) to (P, gamma) of the full LMI
+            gamma = level = float(np.sqrt(max(x[-1], 1e-300)))
+            Pk = Pk / gamma
+        elif gain:
+            gamma = level
     if not gain and not level > 0 and status in SOLVED:  # the largest margin is not
         feasible = False  # positive: no P exists at the imposed points
     return LmiSolution(Pk, gamma, status, feasible, seconds, iters, int(M.shape[0]), level)

@@ -18,7 +18,8 @@ How a rate box is certified (:meth:`Certifier.attempt`):
    relative to the size of its terms, must be negative, and P(p) positive
    definite, at every point;
 3. if the check fails, add the worst violating points (with their violated
-   vertices) to the imposed set and solve again (a cutting-plane loop), up to
+   vertices; at least half a grid cell apart, so that one round cuts in every
+   failing cell) to the imposed set and solve again (a cutting-plane loop), up to
    ``max_rounds`` times, or until the violation stops shrinking.
 
 Only what step 2 confirms is certified; the solver's own status is never
@@ -76,6 +77,8 @@ LoopFunction = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, 
 
 #: a dense-check eigenvalue counts as negative below -CHECK_TOL x (size of its terms)
 CHECK_TOL = 1e-9
+#: smallest distance between two cuts of one round, in grid cells (of the start points)
+CUT_SPACING = 0.5
 
 
 @dataclass(frozen=True)
@@ -409,10 +412,27 @@ class Certifier:
         self.dF = np.einsum("ikj,kl->ilj", dF, Ri)
         self.span = span
         self.n_start = int(n_imposed)
+        # spacing coordinates of the cuts: per variable, the fractional index among the
+        # distinct values of the start points (cells of a rectangular grid have width 1,
+        # however unevenly the breakpoints are spaced)
+        self.cell_coords = np.zeros_like(self.points)
+        cells = np.zeros(len(self.names))
+        for j in range(len(self.names)):
+            knots = np.unique(self.points[:self.n_start, j])
+            if knots.size > 1:
+                self.cell_coords[:, j] = np.interp(self.points[:, j], knots,
+                                                   np.arange(knots.size, dtype=float))
+                cells[j] = knots.size - 1
+        # half a cell, or less on coarse grids: room for at least 2 x cuts points per round
+        self.cut_spacing = CUT_SPACING
+        while (np.prod(cells / self.cut_spacing + 1) < 2 * int(settings.cuts)
+               and self.cut_spacing > 1e-3):
+            self.cut_spacing /= 2.0
         # cut points (point index, vertex signs), kept apart for the stability and the gain
         # LMIs: the points where one is tight need not be those where the other is
         self.pools: dict[bool, list[tuple[int, tuple]]] = {False: [], True: []}
-        self.gain_margin = 1e-4 * max(float(np.max(self.gamma_frozen)), 1e-12)
+        # margin of the reduced gain LMI R = gamma x (Schur complement of L), see solve_lmi
+        self.gain_margin = 1e-4 * max(float(np.max(self.gamma_frozen)), 1e-12) ** 2
         self.solves = 0
         self.log: Callable[[str], None] = lambda msg: None
         self.solve_seconds = 0.0
@@ -523,8 +543,14 @@ class Certifier:
 
     def _new_cuts(self, viol: np.ndarray, signs: np.ndarray, imposed: set, rates) -> list:
         """Up to ``cuts`` violating points (worst first, spread out), each with its violated
-        vertices, that are not imposed yet."""
-        scale = np.where(self.span > 0, self.span, 1.0)
+        vertices, that are not imposed yet.
+
+        Spread out: no two cuts of a round closer than ``cut_spacing`` of a grid cell
+        (in every variable; half a cell, less on grids too coarse for ``cuts`` points at
+        that spacing), so that one round cuts wherever the check fails rather than many
+        times around the worst point (the LMI then fails in most cells at once).
+        """
+        u = self.cell_coords
         point_viol = viol.max(axis=1)
         chosen: list[int] = []
         out = []
@@ -536,8 +562,8 @@ class Certifier:
             if not fresh:
                 continue
             if chosen:
-                dist = np.abs((self.points[chosen] - self.points[i]) / scale).max(axis=1)
-                if dist.min() < 0.02:
+                dist = np.abs(u[chosen] - u[i]).max(axis=1)
+                if dist.min() < self.cut_spacing:
                     continue
             chosen.append(int(i))
             out.extend((int(i), g) for g in fresh)
