@@ -65,7 +65,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import InputError
-from ..types import SchedulingVariable, point_text
+from ..types import SchedulingVariable, point_text, rate_unit
 from .basis import LyapunovBasis, parse_basis
 from .lmi import SOLVERS, largest_scale, lmi_worst, solve_lmi
 
@@ -217,8 +217,7 @@ class RateCertificate:
         return alone and joint
 
     def _unit(self, name: str) -> str:
-        u = dict(zip(self.names, self.units, strict=True)).get(name, "")
-        return f" {u}/s" if u not in ("", "-") else "/s"
+        return rate_unit(dict(zip(self.names, self.units, strict=True)).get(name, ""))
 
     def text_lines(self) -> list[str]:
         """A few lines for the terminal: rates alone and jointly, gains, checks, witness."""
