@@ -112,7 +112,11 @@ def test_demo_folder_holds_the_tour_inputs_and_prints_the_tour(demo_run):
     assert spec.source.operating_points == (out / "crane_envelope.h5").resolve()
     with h5py.File(out / "crane-family.h5", "r") as f:  # designed from the copy
         assert Path(f.attrs["design_base_dir"]) == out.resolve()
-    commands = [ln.strip() for ln in output.split("\nnext, ", 1)[1].splitlines()[1:]]
+    commands = []  # the tour: the indented block right after "next, ..."
+    for ln in output.split("\nnext, ", 1)[1].splitlines()[1:]:
+        if not ln.startswith("  "):
+            break
+        commands.append(ln.strip())
     assert commands[0] == "cd schedule-demo"  # the README runs it in the folder it starts in
     readme = README.read_text()
     for command in commands[1:]:
