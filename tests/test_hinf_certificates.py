@@ -43,7 +43,7 @@ def plant_arrays(rng, n=4, nw=2, nu=1, nz=2, ny=1, d11=0.2, d22=0.3):
                 D22=d22 * r((ny, nu)))
 
 
-def lft(d, K):
+def closed_loop_by_hand(d, K):
     """Closed loop of plant arrays d with u = K y, written out by hand (lower LFT)."""
     Ak, Bk, Ck, Dk = K
     n, nk = d["A"].shape[0], Ak.shape[0]
@@ -258,7 +258,7 @@ def assert_certified_or_refused(d, gamma):
         assert f"gamma={gamma:.6g}" in msg and "further above the optimal gamma" in msg
         assert "\n" not in msg
         return False
-    A, B, C, D = lft(d, K.as_tuple())
+    A, B, C, D = closed_loop_by_hand(d, K.as_tuple())
     assert np.linalg.eigvals(A).real.max() < 0
     assert sweep_norm(A, B, C, D) <= gamma * (1 + 1e-6)
     return True
@@ -308,7 +308,7 @@ def test_zero_infimum_is_consistent_with_what_the_controller_achieves():
         g = optimal_gamma(GeneralizedPlant(**d))
         assert g < 1e-6
         K = central_controller(GeneralizedPlant(**d), 1.05 * g)
-        A, B, C, D = lft(d, K.as_tuple())
+        A, B, C, D = closed_loop_by_hand(d, K.as_tuple())
         assert sweep_norm(A, B, C, D) <= 1.05 * g
         if found == 3:
             break
