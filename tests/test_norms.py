@@ -696,3 +696,66 @@ def test_stability_is_decided_one_way_with_a_true_message():
     # a slow genuine pole is stable, at any scale of time
     for scale in (1e-8, 1.0, 1e8):
         assert stability(scale * np.diag([-1e-4, -1e4])).stable[0]
+
+
+def _two_modes():
+    """G(s) = 1/(s^2 + 0.6 s + 1) + (2 + 0.3 s)/(s^2 + 2.4 s + 9): the peak (near 0.87
+    rad/s) is not at a pole frequency (0.954 and 2.75 rad/s)."""
+    A = np.zeros((4, 4))
+    A[:2, :2] = [[0.0, 1.0], [-1.0, -0.6]]
+    A[2:, 2:] = [[0.0, 1.0], [-9.0, -2.4]]
+    B = np.array([[0.0], [1.0], [0.0], [1.0]])
+    C = np.array([[1.0, 0.0, 2.0, 0.3]])
+    return A, B, C, np.zeros((1, 1))
+
+
+def _swept_norm(A, B, C, D):
+    """Reference: dense logarithmic sweep of sigma_max(G(jw)) (numpy solves) refined by
+    bounded scalar maximization (scipy) around the best grid point."""
+    eye = np.eye(A.shape[0])
+
+    def sig(w):
+        return np.linalg.svd(C @ np.linalg.solve(1j * w * eye - A, B) + D,
+                             compute_uv=False)[0]
+
+    w = np.geomspace(1e-3, 1e3, 20001)
+    j = int(np.argmax([sig(x) for x in w]))
+    r = scipy.optimize.minimize_scalar(lambda x: -sig(x), bounds=(w[j - 1], w[j + 1]),
+                                       method="bounded", options={"xatol": 1e-12})
+    return -r.fun
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "known open defect (issue 16, closing note of 2026-12-02): in state coordinates of "
+    "condition 1e8 the level's Hamiltonian eigenvalues are too inaccurate to exclude the "
+    "axis, and the level test still says 'below'; a first-order eigenvalue-bound fix was "
+    "built but not merged (it refuses zero-infimum controllers and costs 1.2-1.5x)"))
+def test_level_test_in_badly_conditioned_coordinates():
+    """The norm does not depend on the state coordinates (G = C T (sI - T^-1 A T)^-1 T^-1 B
+    + D; Zhou, Doyle and Glover 1996, ch. 3, from memory). With T of condition 1e8 (||A||
+    up to ~1e8) the computed Hamiltonian eigenvalues are off by far more than their
+    distance to the axis, and the peak is not at a pole frequency (the attained values
+    there are below the level): the old level test said "below" at 0.999 ||G||. Below may
+    only be said when the first-order eigenvalue bound (Golub and Van Loan, sec. 7.2.2)
+    places every eigenvalue off the axis; otherwise the verdict is "above", with why."""
+    from scipy.stats import ortho_group
+
+    A, B, C, D = _two_modes()
+    ref = _swept_norm(A, B, C, D)
+    # well scaled: the verdicts are unchanged (and certified below just above the norm)
+    cert = h_infinity_norms(A[None], B[None], C[None], D[None], level=1.001 * ref)
+    assert cert.below(1.001 * ref)[0]
+    assert not h_infinity_norms(A[None], B[None], C[None], D[None],
+                                level=0.999 * ref).below(0.999 * ref)[0]
+    rng = np.random.default_rng(0)
+    for _ in range(8):
+        Q1, Q2 = ortho_group.rvs(4, random_state=rng), ortho_group.rvs(4, random_state=rng)
+        T = Q1 @ np.diag(10.0 ** np.linspace(-4.0, 4.0, 4)) @ Q2
+        Ti = np.linalg.inv(T)
+        At, Bt, Ct = Ti @ A @ T, Ti @ B, C @ T
+        level = 0.999 * ref  # well beyond the realization's rounding (~eps cond(T))
+        cert = h_infinity_norms(At[None], Bt[None], Ct[None], D[None], level=level)
+        assert not cert.below(level)[0], "a PASS that is not true"
+        assert cert.why_above(0, level)  # a reason is given
+        cert = h_infinity_norms(At[None], Bt[None], Ct[None], D[None])
+        assert not cert.below(level)[0]
