@@ -1736,27 +1736,27 @@ def limit_channels(plant: GeneralizedPlant, gamma_opt: float, rtol: float = LIMI
     (z indices, w indices), each in channel order; empty when no single channel does.
     """
     g = float(gamma_opt) * (1.0 - rtol)
-    zs, ws = [], []
-    for i in range(plant.nz):
-        s = np.ones(plant.nz)
-        s[i] = factor
-        q = GeneralizedPlant(plant.A, plant.B1, plant.B2, plant.C1 * s[:, None], plant.C2,
-                             plant.D11 * s[:, None], plant.D12 * s[:, None], plant.D21,
-                             plant.D22)
-        try:
-            if not feasibility(q, g):
-                zs.append(i)
-        except ScheduleError:
-            continue
-    for j in range(plant.nw):
-        s = np.ones(plant.nw)
-        s[j] = factor
-        q = GeneralizedPlant(plant.A, plant.B1 * s[None, :], plant.B2, plant.C1, plant.C2,
-                             plant.D11 * s[None, :], plant.D12, plant.D21 * s[None, :],
-                             plant.D22)
-        try:
-            if not feasibility(q, g):
-                ws.append(j)
-        except ScheduleError:
-            continue
-    return zs, ws
+    P = plant
+
+    def scaled_z(s):  # one row of (C1, D11, D12) scaled
+        c = s[:, None]
+        return GeneralizedPlant(P.A, P.B1, P.B2, P.C1 * c, P.C2, P.D11 * c, P.D12 * c,
+                                P.D21, P.D22)
+
+    def scaled_w(s):  # one column of (B1, D11, D21) scaled
+        r = s[None, :]
+        return GeneralizedPlant(P.A, P.B1 * r, P.B2, P.C1, P.C2, P.D11 * r, P.D12,
+                                P.D21 * r, P.D22)
+
+    found: list[list[int]] = []
+    for count, scaled in ((P.nz, scaled_z), (P.nw, scaled_w)):
+        found.append([])
+        for i in range(count):
+            s = np.ones(count)
+            s[i] = factor
+            try:
+                if not feasibility(scaled(s), g):
+                    found[-1].append(i)
+            except ScheduleError:
+                continue
+    return found[0], found[1]

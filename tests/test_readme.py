@@ -34,24 +34,23 @@ def fresh(readme_demo):
     return bodies
 
 
-def test_readme_numbers_match_a_fresh_run(readme_demo, fresh):
-    problems = []
-    for block, body in zip(readme_demo.blocks, fresh):
-        for p in tool.number_differences(block.shown, body):
-            problems.append(f"block '$ {block.commands[-1]}': {p}")
+def _assert_same(readme_demo, fresh, differences) -> None:
+    """Every shown block against the fresh run's body, by ``differences(shown, body)``."""
+    problems = [f"block '$ {block.commands[-1]}': {p}"
+                for block, body in zip(readme_demo.blocks, fresh)
+                for p in differences(block.shown, body)]
     assert not problems, ("README.md shows outputs a fresh run does not give; run "
                           "python docs/make_readme_outputs.py:\n" + "\n".join(problems))
+
+
+def test_readme_numbers_match_a_fresh_run(readme_demo, fresh):
+    _assert_same(readme_demo, fresh, tool.number_differences)
 
 
 def test_readme_words_match_a_fresh_run(readme_demo, fresh):
     """The words too (numbers, timings and spacing aside): "kind delaunay" where a run
     prints "kind multilinear" is drift as well."""
-    problems = []
-    for block, body in zip(readme_demo.blocks, fresh):
-        for p in tool.word_differences(block.shown, body):
-            problems.append(f"block '$ {block.commands[-1]}': {p}")
-    assert not problems, ("README.md shows outputs a fresh run does not give; run "
-                          "python docs/make_readme_outputs.py:\n" + "\n".join(problems))
+    _assert_same(readme_demo, fresh, tool.word_differences)
 
 
 def test_readme_pictures_come_from_the_run(readme_demo, fresh):
