@@ -821,8 +821,12 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
     ``gamma_opt (1 + DESIGN_MARGIN)`` above it (a few percent is the usual practice).
     When the infimum is zero (nothing limits the performance, e.g. a one-block problem
     whose P11 can be cancelled), the search stops at ``ZERO_INFIMUM`` times the
-    problem's natural scale (``gamma_scale``) and returns that value: every larger
-    gamma is achievable.
+    problem's natural scale (``gamma_scale``); every larger gamma is achievable in exact
+    arithmetic, but so far below the scale the closed-loop norm cannot be certified in
+    floating point (the Hamiltonian of the loop grows like ``gamma^-2``). The value
+    returned is then the smallest of ``ZERO_INFIMUM``, ``10 ZERO_INFIMUM``, ... (times
+    the scale) at which the central controller is certified (see
+    :func:`_certifiable_floor`), so that :func:`central_controller` succeeds there too.
 
     Raises
     ------
@@ -837,7 +841,29 @@ def optimal_gamma(plant: GeneralizedPlant, rtol: float = 1e-4, hint: float | Non
     plant.check_conditions()
     if not (0 < rtol < 1):
         raise InputError(f"rtol={rtol} must lie in (0, 1); give e.g. 1e-4")
-    return _optimal_gamma(normalize(plant), rtol, hint)
+    P = normalize(plant)
+    return _certifiable_floor(plant, P, _optimal_gamma(P, rtol, hint))
+
+
+def _certifiable_floor(plant: GeneralizedPlant, P: Normalized, gamma: float) -> float:
+    """``gamma`` unless it is the stop of a search with no lower end (zero infimum, scaled
+    gamma at most ``ZERO_INFIMUM (1 + 1e-6)``): then the smallest of ``gamma``, ``10
+    gamma``, ... (at most the natural scale) at which the central controller is
+    certified (:func:`certify_controller`). A loop whose exact norm is 0 but whose
+    realization is of unit size has a closed-loop Hamiltonian of norm ``~gamma^-2``,
+    whose computed eigenvalues say nothing far below the scale; higher up the
+    certificate holds."""
+    gs = P.gamma_scale
+    if not (math.isfinite(gamma) and gamma <= ZERO_INFIMUM * (1 + 1e-6) * gs):
+        return gamma
+    g = gamma
+    while g <= gs:
+        try:
+            _central(plant, P, g)
+            return g
+        except (NumericalError, InfeasibleGammaError):
+            g *= 10.0
+    return g
 
 
 def _optimal_gamma(P: Normalized, rtol: float, hint: float | None = None) -> float:
@@ -1570,6 +1596,9 @@ def synthesize_many(
                     gopt[i] = _optimal_gamma(P, rtol)
                 except ScheduleError as exc:
                     reasons[i] = str(exc)
+            for i in idx:
+                if not reasons[i]:
+                    gopt[i] = _certifiable_floor(plants[i], normalized[i], float(gopt[i]))
     results: list[tuple[float, Controller | None, str]] = []
     todo = [i for i in range(N) if not reasons[i] and gamma is not None]
     made: dict[int, tuple[Controller | None, str]] = {}

@@ -88,6 +88,11 @@ WELL_POSED_COND = 1e12
 #: responses use the modal (diagonal) form; above it shifted solves are used.
 MODAL_COND = 1e6
 
+#: Safety factor on the first-order bound ``eps ||H|| / s_i`` of the error of a computed
+#: Hamiltonian eigenvalue (see :func:`_untrusted`): the rounding of a backward stable
+#: solver is a modest multiple of eps ||H||, and first-order terms are only first order.
+EIG_SAFETY = 10.0
+
 _MAX_ITER = 60
 _PROBE = 10.0 ** -np.arange(1.0, 9.0)  # relative offsets probed around an unpaired crossing
 _PROBE_REL = np.concatenate([1.0 - _PROBE, 1.0 + _PROBE, [0.5]])
@@ -768,7 +773,13 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
        crossing and of every eigenvalue whose side is open (relative offsets 1e-1 to
        1e-8 and half the frequency: the interval above gamma of an unpaired crossing
        starts or ends there, possibly at 0). If nothing then exceeds gamma while the
-       count is odd or the spectrum unusable, the model stays in doubt.
+       count is odd or the spectrum unusable, the model stays in doubt. Last, every
+       eigenvalue taken as off the axis without a probe must lie farther from it than
+       its first-order error bound ``EIG_SAFETY eps ||H||_F / s_i`` (Wilkinson's
+       condition number ``s_i``, Golub and Van Loan sec. 7.2.2; :func:`_untrusted`);
+       the others are probed at and around their frequencies, and without a value
+       above gamma the model is in doubt (status names the eigenvalue, ``1/s_i`` and
+       the bound).
 
     Every ``lb`` is an evaluated sigma_max, so ``norm`` is always a true lower bound;
     the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
@@ -780,9 +791,10 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
     the computed spectrum of the level's Hamiltonian can lie far from the axis although
     the level is crossed (a closed loop 9e-5 above the level had no eigenvalue within 0.5
     |lambda| of the axis). For the others the Hamiltonian at the level itself is tested
-    next, and when none of its eigenvalues lies in the looser band and its spectrum is
-    symmetric (no crossing of the level) the model is certified below with ``upper =
-    level`` and ``norm`` a lower bound only; the rest get the full computation.
+    next, and when none of its eigenvalues lies in the looser band, its spectrum is
+    symmetric and every eigenvalue lies beyond its first-order error bound (as in step
+    5; no crossing of the level) the model is certified below with ``upper = level`` and
+    ``norm`` a lower bound only; the rest get the full computation.
 
     Parameters
     ----------
@@ -885,6 +897,84 @@ def _scale_models(A, B, C, D):
     return A, B, C, D, et, ea
 
 
+def _balance(H: np.ndarray) -> np.ndarray:
+    """``D^-1 H D`` for stacked square matrices, ``D`` diagonal with powers of 2 (exact):
+    the balancing of Parlett and Reinsch (1969), LAPACK dgebal without permutations."""
+    out = np.empty_like(H)
+    for i in range(H.shape[0]):
+        out[i] = scipy.linalg.matrix_balance(H[i], permute=False)[0]
+    return out
+
+
+def _untrusted(H: np.ndarray, skip: float = 0.0, eig=None) -> tuple[np.ndarray, ...]:
+    """Hamiltonian eigenvalues whose side of the imaginary axis rounding leaves open.
+
+    A backward stable eigenvalue solver returns the eigenvalues of ``H + E`` with ``||E||``
+    about ``eps ||H||``; to first order the computed ``lam_i`` then moves by at most
+    ``||E|| / s_i``, ``s_i = |y_i^H x_i| / (||x_i|| ||y_i||)`` (Wilkinson's condition
+    number, right and left eigenvectors ``x_i``, ``y_i``; Golub and Van Loan, Matrix
+    Computations, 4th ed., sec. 7.2.2). An eigenvalue with ``|Re lam_i|`` at most
+    ``EIG_SAFETY eps ||H||_F / s_i`` could be on the imaginary axis. Where the bound
+    leaves doubt, ``H`` is balanced (:func:`_balance`) and the test repeated (the
+    eigenvalue solver balances as well, and a badly scaled but well-conditioned problem,
+    such as a Hamiltonian with a peak at infinity, would otherwise look ill-conditioned).
+    The left eigenvectors
+    are the rows of ``V^-1`` (normalized to ``y_i^H x_i = 1``); a singular ``V`` (a
+    defective or nearly defective matrix) makes every eigenvalue of that model untrusted.
+
+    Parameters
+    ----------
+    H : (k, 2n, 2n) real Hamiltonians.
+    skip : eigenvalues with ``|Re lam| <= skip |lam|`` are never counted as untrusted
+        (the caller probes them otherwise), nor real ones within ``ORIGIN_RTOL ||H||_1``
+        of the origin (a double eigenvalue at 0, from a peak at w = 0, split by rounding:
+        left out of every count, that region is decided by sigma_max(0)).
+
+    Returns
+    -------
+    lam : (k, 2n) eigenvalues (of the eigenvector computation).
+    doubt : (k, 2n) bool, the untrusted eigenvalues.
+    kappa : (k, 2n) ``1 / s_i`` (inf where V is singular).
+    bound : (k, 2n) the allowance ``EIG_SAFETY eps ||H||_F kappa``.
+    """
+    tiny = ORIGIN_RTOL * np.abs(H).sum(axis=1).max(axis=1)
+    lam, doubt, kappa, bound = _first_order(H, skip, tiny, eig)
+    redo = np.flatnonzero(doubt.any(axis=1))
+    if redo.size:  # balanced, the bound is usually smaller: the better of the two counts
+        out = _first_order(_balance(H[redo]), skip, tiny[redo])
+        for whole, part in zip((lam, doubt, kappa, bound), out, strict=True):
+            whole[redo] = part
+    return lam, doubt, kappa, bound
+
+
+def _first_order(H: np.ndarray, skip: float, tiny: np.ndarray,
+                 eig=None) -> tuple[np.ndarray, ...]:
+    """:func:`_untrusted` for the matrices as given (no balancing)."""
+    lam, V = np.linalg.eig(H) if eig is None else eig
+    kappa = np.full(lam.shape, np.inf)
+    with np.errstate(all="ignore"):
+        try:
+            W = np.linalg.inv(V)
+            ok = np.ones(H.shape[0], dtype=bool)
+        except np.linalg.LinAlgError:
+            W = np.zeros_like(V)
+            ok = np.zeros(H.shape[0], dtype=bool)
+            for i in range(H.shape[0]):
+                try:
+                    W[i] = np.linalg.inv(V[i])
+                    ok[i] = True
+                except np.linalg.LinAlgError:
+                    pass
+        k = np.linalg.norm(V[ok], axis=1) * np.linalg.norm(W[ok], axis=2)
+        kappa[ok] = np.where(np.isfinite(k), k, np.inf)
+        fro = np.sqrt(np.einsum("kij,kij->k", H, H))
+        bound = (EIG_SAFETY * _EPS) * fro[:, None] * kappa
+    are = np.abs(lam.real)
+    mod = np.abs(lam)
+    origin = (mod <= tiny[:, None]) & (lam.imag == 0)
+    return lam, ~(are > bound) & (are > skip * mod) & ~origin, kappa, bound
+
+
 def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     """The computation of :func:`h_infinity_norms` on validated float stacks."""
     N, n = A.shape[0], A.shape[1]
@@ -926,12 +1016,20 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
 
     def sigma_at(sel, w):
         """sigma_max(G_sel(j w)) by direct stacked complex solves (a true value; nan, from
-        an overflow, counts as inf)."""
+        an overflow, and an exactly singular ``jw I - A`` in floating point count as inf:
+        toward "above")."""
         if M == 1:  # one model: broadcast its matrices instead of copying them per point
-            G = C[0] @ np.linalg.solve(1j * w[:, None, None] * eye - A[0],
-                                       np.broadcast_to(Bc[0], (w.size, n, m))) + D[0]
-        else:
-            G = C[sel] @ np.linalg.solve(1j * w[:, None, None] * eye - A[sel], Bc[sel]) + D[sel]
+            sel = np.zeros(w.size, dtype=int)
+        Ms = 1j * w[:, None, None] * eye - A[sel]
+        try:
+            G = C[sel] @ np.linalg.solve(Ms, Bc[sel]) + D[sel]
+        except np.linalg.LinAlgError:
+            G = np.full((w.size, p, m), np.nan, dtype=complex)
+            for t in range(w.size):
+                try:
+                    G[t] = C[sel[t]] @ np.linalg.solve(Ms[t], Bc[sel[t]]) + D[sel[t]]
+                except np.linalg.LinAlgError:
+                    pass
         s = sigma_max(G)
         s[s != s] = np.inf
         return s
@@ -943,8 +1041,8 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     eye_m = np.eye(m)
     diag = np.arange(2 * n)
 
-    def spectrum(act, gamma):
-        """Eigenvalues of the Hamiltonians H(gamma) of the models act, and ||H||_1."""
+    def hamiltonians(act, gamma):
+        """The Hamiltonians H(gamma) of the models act."""
         if act.size == M:  # every model: no copies
             a, b, dtd, rhs, ctc = A, B, DtD, DtC_Bt, CtC
         else:
@@ -958,7 +1056,14 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         low += ctc
         np.negative(low, out=low)
         np.negative(Ah.transpose(0, 2, 1), out=H[:, n:, n:])
-        return np.linalg.eigvals(H), np.abs(H).sum(axis=1).max(axis=1)[:, None]
+        return H
+
+    def spectrum(act, gamma):
+        """Eigenvalues of the Hamiltonians H(gamma) of the models act, ||H||_1, the
+        Hamiltonians and their eigenvectors (for :func:`_untrusted`: one eigen-call)."""
+        H = hamiltonians(act, gamma)
+        lam, V = np.linalg.eig(H)
+        return lam, np.abs(H).sum(axis=1).max(axis=1)[:, None], H, V
 
     lb = sd.copy()  # sigma_max at infinity: a lower bound of every norm
     pk = np.full(M, np.inf)
@@ -1006,7 +1111,8 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         lb[i], pk[i] = float(s[j]), float(extra[j])
     converged = lb == 0.0
     doubt = np.zeros(M, dtype=bool)
-    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum
+    why = np.zeros(M, dtype=int)  # 1 odd crossing count, 2 unpaired spectrum, 3 untrusted
+    cond_info: dict[int, tuple[complex, float, float]] = {}
     if level is not None:
         # an attained value above the level: certainly above (decided first: the level's
         # own Hamiltonian can look clear of the axis in an ill-conditioned model)
@@ -1015,12 +1121,17 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         if test_lv.size:
             # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
             # symmetric spectrum -> no crossing of the level, so the norm is below it
-            ev, hn = spectrum(test_lv, lv[test_lv])
+            ev, hn, Hl, Vl = spectrum(test_lv, lv[test_lv])
             mod, are = np.abs(ev), np.abs(ev.real)
             dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
             dist[:, diag, diag] = np.inf
-            clear = ((are > NEAR_AXIS_RTOL * mod + AXIS_ATOL * hn)
+            clear = ((are > NEAR_AXIS_RTOL * mod)
                      & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
+            if clear.any():
+                # and every eigenvalue far enough from the axis for its computed position
+                # to be trusted (first-order bound): otherwise the full computation decides
+                rows = np.flatnonzero(clear)
+                clear[rows[_untrusted(Hl[rows], 0.0, (ev[rows], Vl[rows]))[1].any(axis=1)]] = False
             below_level[test_lv[clear]] = settled[test_lv[clear]] = True
     def best_of(rows, test):
         """The largest sigma_max over the finite test frequencies of each row (models
@@ -1038,7 +1149,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         if act.size == 0:
             break
         gamma = (1.0 + 2.0 * rtol) * lb[act]
-        ev, hn = spectrum(act, gamma)
+        ev, hn, Hi, Vi = spectrum(act, gamma)
         mod = np.abs(ev)
         are = np.abs(ev.real)
         upper_half = ev.imag > 0
@@ -1050,6 +1161,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         st_ = np.flatnonzero(~up)  # would stop here: the consistency tests first
         if st_.size:
             ev, mod, are, on, hn = ev[st_], mod[st_], are[st_], on[st_], hn[st_]
+            Hi, Vi = Hi[st_], Vi[st_]
             ups = upper_half[st_]
             # eigenvalues within ORIGIN_RTOL ||H|| of the origin: a double eigenvalue at 0
             # (a peak at w = 0 meeting the level) splits there by rounding along either
@@ -1081,6 +1193,29 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
             s[st_[up2]], f[st_[up2]] = s2[up2], f2[up2]
             up[st_[up2]] = True
             bad = odd | unpaired
+            # every eigenvalue taken as off the axis without a probe must be placed there
+            # beyond its first-order error bound; the others are probed at and around
+            # their frequencies, and without a value above gamma the model is in doubt
+            chk = np.flatnonzero(~up2 & ~bad)
+            if chk.size:
+                lu, du, ku, bu = _untrusted(Hi[chk], NEAR_AXIS_RTOL, (ev[chk], Vi[chk]))
+                rows = np.flatnonzero(du.any(axis=1))
+                if rows.size:
+                    hit = du[rows] & (lu[rows].imag >= 0)
+                    fr = np.abs(lu[rows].imag)[:, :, None] * np.append(_PROBE_REL, 1.0)
+                    s3, f3 = best_of(act[st_[chk[rows]]],
+                                     np.where(hit[:, :, None], fr, np.inf).reshape(rows.size, -1))
+                    for r, sv, fv, hr in zip(rows, s3, f3, hit, strict=True):
+                        j = st_[chk[r]]
+                        if sv > gamma[j]:
+                            s[j], f[j], up[j], up2[chk[r]] = sv, fv, True, True
+                        else:
+                            bad[chk[r]] = True
+                            c = np.flatnonzero(hr if hr.any() else du[r])
+                            c = c[np.argmax(bu[r, c] / np.maximum(np.abs(lu[r, c].real), 1e-300))]
+                            why[act[j]] = 3
+                            cond_info[act[j]] = (complex(lu[r, c]), float(ku[r, c]),
+                                                 float(bu[r, c]))
             done = act[st_[~up2 & ~bad]]
             converged[done] = True
             doubt[act[st_[~up2 & bad]]] = True
@@ -1101,6 +1236,17 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
                          f"bound {shown(i, lb[i]):.6g})")
     for i in np.flatnonzero(doubt):
         at = shown(i, (1 + 2 * rtol) * lb[i])
+        if why[i] == 3:
+            lam_i, kap, bnd = cond_info[i]
+            tscale = 1.0 if ea is None else float(np.ldexp(1.0, ea[i if idx is None else idx[i]]))
+            sub_status[i] = (
+                f"the Hamiltonian at level {at:.6g} has the eigenvalue "
+                f"{lam_i.real * tscale:.3g}{lam_i.imag * tscale:+.3g}j whose condition number "
+                f"1/s = {kap:.3g} allows a rounding error of {bnd * tscale:.3g} (first-order "
+                f"bound {EIG_SAFETY:g} eps ||H||_F / s, Golub and Van Loan sec. 7.2.2): it may lie "
+                "on the imaginary axis, the upper bound is not certified (ill-conditioned "
+                "model; balance or rescale its state coordinates)")
+            continue
         sub_status[i] = (
             f"an odd number of imaginary-axis crossings of the Hamiltonian at level {at:.6g} "
             "(a crossing lost to rounding): the upper bound is not certified" if why[i] == 1

@@ -641,13 +641,18 @@ def test_norm_in_doubt_is_reported_not_crashed(monkeypatch):
     Glover 1996, ch. 13, from memory) cannot be counted: the norm is not certified, and
     h_infinity_norm says so in one NumericalError (not a crash)."""
     A, B, C, D = second_order(0.05)
-    eigvals = np.linalg.eigvals
+    eigvals, eig = np.linalg.eigvals, np.linalg.eig
 
     def broken(M):
         lam = eigvals(M)
         return lam + 0.3 * np.abs(lam) if M.shape[-1] == 4 else lam
 
+    def broken_eig(M):  # the same fault where the eigenvectors are computed as well
+        lam, V = eig(M)
+        return (lam + 0.3 * np.abs(lam) if M.shape[-1] == 4 else lam), V
+
     monkeypatch.setattr(np.linalg, "eigvals", broken)
+    monkeypatch.setattr(np.linalg, "eig", broken_eig)
     with pytest.raises(NumericalError, match="not certified"):
         h_infinity_norm(A, B, C, D)
     cert = h_infinity_norms(A[None], B[None], C[None], D[None])
@@ -725,11 +730,6 @@ def _swept_norm(A, B, C, D):
     return -r.fun
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "known open defect (issue 16, closing note of 2026-12-02): in state coordinates of "
-    "condition 1e8 the level's Hamiltonian eigenvalues are too inaccurate to exclude the "
-    "axis, and the level test still says 'below'; a first-order eigenvalue-bound fix was "
-    "built but not merged (it refuses zero-infimum controllers and costs 1.2-1.5x)"))
 def test_level_test_in_badly_conditioned_coordinates():
     """The norm does not depend on the state coordinates (G = C T (sI - T^-1 A T)^-1 T^-1 B
     + D; Zhou, Doyle and Glover 1996, ch. 3, from memory). With T of condition 1e8 (||A||
