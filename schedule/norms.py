@@ -786,9 +786,13 @@ def h_infinity_norms(A: Any, B: Any, C: Any, D: Any, rtol: float = 1e-8,
        condition number ``s_i``, Golub and Van Loan sec. 7.2.2; :func:`_untrusted`);
        the others are probed at and around their frequencies, and without a value
        above gamma the model is in doubt (status names the eigenvalue, ``1/s_i`` and
-       the bound).
+       the bound). In a model with fuzzy poles (:func:`_fuzzy_poles`: sigma_max near a
+       pole unreliable beyond ``POLE_RTOL``) a probe confirms nothing, so there every
+       eigenvalue, including those in the looser band and near the origin, needs its
+       bound.
 
-    Every ``lb`` is an evaluated sigma_max, so ``norm`` is always a true lower bound;
+    Every ``lb`` is an evaluated sigma_max, so ``norm`` is a lower bound up to the
+    rounding of that evaluation (about ``POLE_RTOL`` or less unless the poles are fuzzy);
     the upper bound ``(1 + 2 rtol) norm`` is certified only when step 5 passed. A model
     in doubt gets ``upper = inf`` and a status line: a level test on it says "above".
 
