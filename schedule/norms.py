@@ -977,6 +977,16 @@ def _condition_numbers(V: np.ndarray) -> np.ndarray:
     return np.where(np.isfinite(k), k, np.inf)
 
 
+def _mirror_error(ev: np.ndarray) -> np.ndarray:
+    """(k, 2n) the distance of each eigenvalue's mirror image ``-conj(lam)`` to the nearest
+    other eigenvalue (0 for a symmetric spectrum: a Hamiltonian's eigenvalues come in pairs
+    ``lam``, ``-conj(lam)``; Zhou, Doyle and Glover 1996, ch. 13)."""
+    dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
+    d = np.arange(ev.shape[1])
+    dist[:, d, d] = np.inf
+    return dist.min(axis=2)
+
+
 def _balance(H: np.ndarray) -> np.ndarray:
     """``D^-1 H D`` for stacked square matrices, ``D`` diagonal with powers of 2 (exact):
     the balancing of Parlett and Reinsch (1969), LAPACK dgebal without permutations."""
@@ -1110,7 +1120,6 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     DtC_Bt = np.concatenate([Dt @ C, B.transpose(0, 2, 1)], axis=2)
     CtC = C.transpose(0, 2, 1) @ C
     eye_m = np.eye(m)
-    diag = np.arange(2 * n)
 
     def hamiltonians(act, gamma):
         """The Hamiltonians H(gamma) of the models act."""
@@ -1194,10 +1203,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
             # symmetric spectrum -> no crossing of the level, so the norm is below it
             ev, hn, Hl, Vl = spectrum(test_lv, lv[test_lv])
             mod, are = np.abs(ev), np.abs(ev.real)
-            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-            dist[:, diag, diag] = np.inf
-            clear = ((are > NEAR_AXIS_RTOL * mod)
-                     & (dist.min(axis=2) <= 0.5 * are)).all(axis=1)
+            clear = ((are > NEAR_AXIS_RTOL * mod) & (_mirror_error(ev) <= 0.5 * are)).all(axis=1)
             if clear.any():
                 # and every eigenvalue far enough from the axis for its computed position
                 # to be trusted (first-order bound): otherwise the full computation decides
@@ -1244,9 +1250,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
             # the spectrum of a Hamiltonian matrix is symmetric about the imaginary axis
             # (lam and -conj(lam)): an eigenvalue whose mirror image is missing by more
             # than half its distance to the axis cannot be placed on either side
-            dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-            dist[:, diag, diag] = np.inf
-            pair_error = dist.min(axis=2)
+            pair_error = _mirror_error(ev)
             sided = (pair_error <= 0.5 * are) | (are <= AXIS_ATOL * hn) | origin
             # mirror image off by more than UNPAIRED_RTOL |lam|: the spectrum is not usable
             unpaired = (~sided & (pair_error > UNPAIRED_RTOL * mod)).any(axis=1)
@@ -1312,9 +1316,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         H = hamiltonians(rows, L)
         ev, V = np.linalg.eig(H)
         are = np.abs(ev.real)
-        dist = np.abs(ev[:, :, None] + np.conj(ev)[:, None, :])
-        dist[:, diag, diag] = np.inf
-        ok = (dist.min(axis=2) <= 0.5 * are).all(axis=1) & (sig0[rows] < L)
+        ok = (_mirror_error(ev) <= 0.5 * are).all(axis=1) & (sig0[rows] < L)
         ok &= ~_untrusted(H, 0.0, (ev, V), fuzzy[rows])[1].any(axis=1)
         relaxed[rows[ok]] = L[ok]
         rows = rows[~ok]
