@@ -851,7 +851,7 @@ def test_upper_bound_holds_against_40_digit_evaluation_at_sharp_peaks():
         D = 0.1 * rng.standard_normal((2, 2))
         cert = h_infinity_norms(A[None], B[None], C[None], D[None])
         w0, norm, upper = float(cert.peak[0]), float(cert.norm[0]), float(cert.upper[0])
-        r = minimize_scalar(lambda w: -_sigma_max_40_digits(A, B, C, D, w),
+        r = minimize_scalar(lambda w, m=(A, B, C, D): -_sigma_max_40_digits(*m, w),
                             bounds=(w0 * (1 - 1e-4), w0 * (1 + 1e-4)), method="bounded",
                             options={"xatol": 1e-15 * w0})
         true = -r.fun
