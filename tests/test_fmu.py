@@ -197,3 +197,17 @@ def test_export_command_writes_a_valid_unit(tmp_path):
     res = CliRunner().invoke(main, ["export", str(family), "-f", "fmu", "-o",
                                     str(tmp_path / "bad-name.fmu"), "--sample-time", "0.02"])
     assert res.exit_code == 2 and "C identifier" in res.output
+
+
+def test_rate_limit_units_read_as_a_rate():
+    """The rate limit of a command in m/s is in (m/s)/s, of one in rad in rad/s (SI
+    derived units: a rate is the unit divided by the second; a unit with a slash is
+    bracketed so that the result cannot be read as m/(s/s))."""
+    import dataclasses
+
+    tab = _table()
+    for unit, expected in (("m/s", "(m/s)/s"), ("rad", "rad/s"), ("", "")):
+        t = dataclasses.replace(tab, control_units=(unit,))
+        by = {v.name: v for v in fmu_mod.fmu_variables(t)}
+        assert by["act0.rate"].unit == expected
+        assert by["act0.upper"].unit == unit

@@ -48,6 +48,7 @@ import numpy as np
 
 from ..atomic import write_file_atomic
 from ..errors import InputError
+from ..types import rate_unit
 from .c_source import c_comment, c_source_text, check_prefix
 from .table import ScheduledTable
 
@@ -175,7 +176,7 @@ def fmu_variables(table: ScheduledTable) -> list[FmuVariable]:
             v = float(values[i])
             start = repr(v) if np.isfinite(v) else none
             add(f"{name}.{key}", "Real", "parameter", "tunable", "exact", start,
-                f"{unit}/s" if key == "rate" and unit else unit,
+                rate_unit(unit).strip() if key == "rate" and unit else unit,
                 f"{what} of {name} (+-1.8e308: none)")
     for name, unit in zip(table.control_names, units_u, strict=True):
         add(f"{name}.start", "Real", "parameter", "fixed", "exact", "0.0", unit,
