@@ -32,10 +32,11 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 
 import sys  # noqa: E402 (one BLAS thread first)
 import time  # noqa: E402 (one BLAS thread first)
+import warnings  # noqa: E402 (one BLAS thread first)
 
 import numpy as np  # noqa: E402 (one BLAS thread first)
 
-from schedule.norms import _sv, h_infinity_norm, h_infinity_norm_many, singular_values  # noqa: E402 (one BLAS thread first)
+from schedule.norms import _sv, h_infinity_norm, h_infinity_norms, singular_values  # noqa: E402 (one BLAS thread first)
 
 N_SWEEP = 10_000
 
@@ -163,7 +164,8 @@ def main() -> None:
             for A, B, C, D in models:
                 lam = np.abs(np.linalg.eigvals(A))
                 w = np.geomspace(lam.min() / 100, lam.max() * 100, N_SWEEP)
-                t1, (norm, _) = median_time(h_infinity_norm, 7, A, B, C, D)
+                t1, cert = median_time(h_infinity_norms, 7, A[None], B[None], C[None], D[None])
+                norm = float(cert.norm[0])
                 t2, sweep = median_time(sweep_solve, 3, A, B, C, D, w)
                 t3, _ = median_time(singular_values, 3, A, B, C, D, w)
                 tn, ts, tm = tn + t1, ts + t2, tm + t3
@@ -176,21 +178,27 @@ def main() -> None:
     print(f"median speed-up vs solve sweep: {np.median(ratios):.1f}x, "
           f"vs modal sweep: {np.median(ratios_modal):.1f}x (target >= 20x vs the sweep)")
 
-    print("\nlockstep h_infinity_norm_many vs a loop of h_infinity_norm (500 models, 2x2)")
+    print("\nlockstep h_infinity_norms on 500 models vs a loop of it on one model at a time (2x2)")
     for n in (4, 8, 16, 20):
         models = [random_model(rng, n, 2, 2, (1e-3, 0.7)) for _ in range(500)]
         stacks = [np.stack([mdl[k] for mdl in models]) for k in range(4)]
         t = time.perf_counter()
-        loop = np.array([h_infinity_norm(*mdl)[0] for mdl in models])
+        loop = [h_infinity_norms(*(x[None] for x in mdl)) for mdl in models]
         t_loop = time.perf_counter() - t
         t = time.perf_counter()
-        many, _ = h_infinity_norm_many(*stacks)
+        many = h_infinity_norms(*stacks)
         t_many = time.perf_counter() - t
-        diff = float(np.max(np.abs(many - loop) / loop))
+        norm_loop = np.array([c.norm[0] for c in loop])
+        sure = np.isfinite(many.upper) & np.isfinite([c.upper[0] for c in loop])
+        diff = float(np.max(np.abs(many.norm - norm_loop)[sure] / norm_loop[sure]))
         print(f"  n={n:>2}: loop {1e3 * t_loop / 500:.3f} ms/model, lockstep "
               f"{1e3 * t_many / 500:.3f} ms/model, ratio {t_loop / t_many:.1f}x, "
-              f"max rel diff {diff:.1e}")
+              f"max rel diff {diff:.1e}; in doubt (ill-conditioned, counted as above): "
+              f"{int((~np.isfinite(many.upper)).sum())} of 500")
 
 
 if __name__ == "__main__":
+    # h_infinity_norm warns where rounding allows no bound within 3 rtol (sharp peaks in
+    # skewed coordinates); the timings are what is measured here
+    warnings.simplefilter("ignore", RuntimeWarning)
     per_call() if "--per-call" in sys.argv else main()
