@@ -22,7 +22,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.optimize import minimize_scalar
 
-from schedule.errors import InfeasibleGammaError, InputError, PlantError, ScheduleError
+from schedule.errors import (InfeasibleGammaError, InputError, NumericalError, PlantError,
+                             ScheduleError)
 from schedule.hinf import (
     PIECE_KEYS,
     Controller,
@@ -335,7 +336,10 @@ def test_property_named_failure_or_controller_meeting_gamma(
     except ScheduleError as exc:
         msg = str(exc)
         assert msg and "\n" not in msg
-        assert isinstance(exc, (PlantError, InfeasibleGammaError))
+        # a closed loop whose norm rounding leaves in doubt (slow poles beside fast ones,
+        # e.g. seed 71396: ||A|| 9e4, pole spread 1e-3) is refused with the numbers
+        certify = isinstance(exc, NumericalError) and "central controller at gamma" in msg
+        assert isinstance(exc, (PlantError, InfeasibleGammaError)) or certify
         return
     assert_meets(p, K.as_tuple(), 1.1 * g)
 
