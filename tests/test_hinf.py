@@ -22,8 +22,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.optimize import minimize_scalar
 
-from schedule.errors import (InfeasibleGammaError, InputError, NumericalError, PlantError,
-                             ScheduleError)
+from schedule.errors import (
+    InfeasibleGammaError,
+    InputError,
+    NumericalError,
+    PlantError,
+    ScheduleError,
+)
 from schedule.hinf import (
     PIECE_KEYS,
     Controller,
