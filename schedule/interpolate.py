@@ -45,7 +45,7 @@ predictions. J. R. Stat. Soc. B 36(2), 111-147.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -403,8 +403,9 @@ COSTLY_KINDS_MAX_POINTS = InterpolationSpec.costly_kinds_max_points
 NORM_RTOL = 1e-6  # relative accuracy of the leave-one-out closed-loop norms
 RANK_TIE = 1e-5  # max norm/gamma within this relative distance counts as a tie
 COMPLETE_EVIDENCE_LOOPS = 5000  # up to this many stable predictions, every norm is computed
-NORM_BLOCK = 64  # first block of norms of a candidate (then x4 each block ...
-NORM_BLOCK_MAX = 1024  # ... up to this many loops)
+NORM_PIECE = 32  # loops per norm call (fastest per loop, measured at order 16: 0.35 ms
+#                  a loop in calls of 16-32 loops, 0.45 ms at 256, 0.57 ms at 600)
+PREDICT_PIECE = 500  # rows per prediction task at most (assembly, loops, stability)
 NORM_STATUS = ("complete", "bound", "skipped")
 
 
@@ -523,14 +524,15 @@ def _rel_errors(K: dict, truth: dict, good: np.ndarray) -> np.ndarray:
     return err
 
 
-def _closed_loops(family: Family, rows: np.ndarray, K: dict, good: np.ndarray):
-    """Closed loops (stacked A, B, C, D) of the predicted controllers on the true plants,
-    for the rows where ``good``; a row whose loop is not well posed is dropped from good."""
+def _closed_loops(plant: dict, K: dict, good: np.ndarray):
+    """Closed loops (stacked A, B, C, D) of the controllers ``K`` on the plants ``plant``
+    (stacked rows), for the rows where ``good``; a row whose loop is not well posed is
+    dropped from good."""
     from .norms import closed_loop_many
 
     if not good.any():
         return (np.zeros((0, 0, 0)),) * 4, good
-    plant = {n: np.asarray(family.plant[n], float)[rows[good]] for n in PLANT_KEYS}
+    plant = {n: plant[n][good] for n in PLANT_KEYS}
     ctrl = {n: K[n][good] for n in CONTROLLER_KEYS}
     try:
         return closed_loop_many(plant, ctrl), good
@@ -569,6 +571,7 @@ def costly_kinds(d: int) -> tuple[str, ...]:
     return CUBIC_KINDS + (("delaunay",) if d >= 3 else ())
 
 
+# -- worker functions of the leave-one-out evidence (module level: sent to workers) --------
 def loop_norm_chunk(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray
                     ) -> np.ndarray:
     """H-infinity norms of stacked stable loops (worker function), through the package's
@@ -580,69 +583,252 @@ def loop_norm_chunk(A: np.ndarray, B: np.ndarray, C: np.ndarray, D: np.ndarray
     return np.where(np.isfinite(cert.upper), np.asarray(cert.norm, dtype=float), np.inf)
 
 
-def _loop_norms(loops, sel: np.ndarray, jobs: int, cluster) -> np.ndarray:
-    """Norms of the loops ``sel`` (indices into the stacked loops), split over workers."""
-    from .parallel import run_chunks, split_evenly
+def loop_norm_rows(plant: dict, K: dict) -> np.ndarray:
+    """:func:`loop_norm_chunk` of the loops of the controllers ``K`` on the plants
+    ``plant`` (stacked rows with well-posed loops; worker function: the plants and
+    controllers travel, smaller than the loops, which are closed on the worker)."""
+    from .norms import closed_loop_many
 
-    A, B, C, D = loops
-    pieces = split_evenly(sel, jobs, cluster)
-    out = np.empty(sel.size)
-    starts = np.cumsum([0] + [p.size for p in pieces])
-    tasks = [(A[p], B[p], C[p], D[p]) for p in pieces]
-    for t, norms in run_chunks(loop_norm_chunk, tasks, jobs=jobs, cluster=cluster):
-        out[starts[t]:starts[t + 1]] = norms
-    return out
+    return loop_norm_chunk(*closed_loop_many(plant, K))
+
+
+def fit_chunk(points: np.ndarray, lower: np.ndarray, upper: np.ndarray, breakpoints,
+              kind: str, values: np.ndarray, fitted: Interpolant | None = None,
+              loo: bool = True) -> tuple:
+    """One interpolant fitted on all points (unless ``fitted`` is given) and its closed-form
+    leave-one-out predictions (:meth:`Interpolant.leave_one_out`; worker function).
+
+    Returns ``(interpolant, loo)``: the interpolant is a ScheduleError when the fit
+    failed; ``loo`` is ``(values, ok)``, the exception that stopped it, or None (not
+    asked for, or no fit).
+    """
+    interp = fitted
+    if interp is None:
+        try:
+            interp = make_interpolant(kind, lower, upper, breakpoints).fit(points, values)
+        except (ScheduleError, np.linalg.LinAlgError) as exc:
+            return (exc if isinstance(exc, ScheduleError) else NumericalError(_one_line(exc)),
+                    None)
+    if not loo:
+        return interp, None
+    try:
+        return interp, interp.leave_one_out(points, values)
+    except (ScheduleError, np.linalg.LinAlgError) as exc:
+        return interp, exc
+
+
+def predict_chunk(gamma: float, shapes: dict, part: dict, ok: np.ndarray,
+                  plant_loo: dict | None, plant: dict | None) -> tuple:
+    """Leave-one-out controllers of one candidate at a piece of rows (worker function).
+
+    ``part``: the unpacked leave-one-out predictions, ``ok`` where they exist: the
+    controller matrices, or observer pieces assembled here with the predicted plants
+    ``plant_loo`` (:func:`assemble_each`). Given the true plants ``plant``, the loops
+    are closed (:func:`_closed_loops`) and their stability decided (:func:`_stable_many`).
+
+    Returns ``(K, good, loop_good, stable)``: the controllers (zeros where none, shapes
+    ``shapes``), the rows with a finite prediction, the rows with a well-posed loop and
+    the stable rows (the last two None without ``plant``).
+    """
+    ok = np.array(ok, dtype=bool)
+    n = ok.size
+    K = {k: np.zeros((n,) + tuple(shapes[k])) for k in CONTROLLER_KEYS}
+    if plant_loo is None:
+        for k in CONTROLLER_KEYS:
+            K[k][ok] = part[k][ok]
+    else:
+        sel = np.flatnonzero(ok)
+        k, kok, _error = assemble_each(gamma, {n_: v[sel] for n_, v in part.items()},
+                                       {n_: v[sel] for n_, v in plant_loo.items()})
+        ok[sel] = kok
+        for name in CONTROLLER_KEYS if k is not None else ():
+            K[name][sel[kok]] = k[name][kok]
+    finite = np.ones(n, dtype=bool)
+    for k in CONTROLLER_KEYS:
+        finite &= np.all(np.isfinite(K[k].reshape(n, -1)), axis=1)
+    good = ok & finite
+    if plant is None:
+        return K, good, None, None
+    loops, loop_good = _closed_loops(plant, K, good)
+    stable = np.zeros(n, dtype=bool)
+    stable[loop_good] = _stable_many(loops[0])
+    return K, good, loop_good, stable
+
+
+# -- the evidence of candidates, on the workers of jobs / cluster ---------------------------
+class _Lazy(Sequence):
+    """Chunk ``t`` is ``make(t)``, built only when :func:`schedule.parallel.run_chunks`
+    sends it (memory stays bounded by the chunks in flight)."""
+
+    def __init__(self, count: int, make: Callable[[int], tuple]):
+        self.count, self.make = count, make
+
+    def __len__(self) -> int:
+        return self.count
+
+    def __getitem__(self, t: int) -> tuple:
+        return self.make(t)
 
 
 @dataclass
 class _Candidate:
-    """A candidate under evaluation: its controller, predictions and loops."""
+    """A candidate under evaluation: its controller, predictions and verdicts (row arrays
+    over the ok points)."""
 
     form: str
     kind: str
     controller: ScheduledController | None = None
+    loo: tuple | None = None  # (values, ok) of the part's leave-one-out predictions
+    plant_loo: tuple | None = None  # ... of the plant's (observer form)
     K: dict | None = None
     good: np.ndarray | None = None
     rel_error: np.ndarray | None = None
-    loops: tuple | None = None
-    loop_rows: np.ndarray | None = None  # positions (among the ok rows) of the loops
     stable: np.ndarray | None = None
     norm: np.ndarray | None = None
     status: str = "complete"
     failure: str = ""
+    error: BaseException | None = None
 
 
-def _predict(family: Family, sc: ScheduledController, rows: np.ndarray, jobs: int = 1,
-             cluster=None) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Leave-one-out controllers at the ok rows (closed forms of :mod:`interpolants`; the
-    observer-form assembly point by point, on the workers of ``jobs`` / ``cluster``)."""
-    from .parallel import run_chunks, split_evenly
+def _evaluate(family: Family, fits: _Fits, cands: list[_Candidate], jobs: int = 1,
+              cluster=None, progress: Callable[[str, int, int], None] | None = None,
+              loops: bool = True) -> None:
+    """Fits, leave-one-out predictions, matrix errors, closed loops and their stability for
+    every candidate (no norms yet), in two rounds of worker tasks: the interpolants with
+    their closed-form predictions (:func:`fit_chunk`, one task per role and kind), then
+    the assembly and loops of every candidate, piece by piece (:func:`predict_chunk`). A
+    candidate that cannot be evaluated gets its ``failure`` (and ``error``)."""
+    from .parallel import run_chunks, work_chunk
 
-    pts = np.asarray(family.points, dtype=float)[rows]
-    source = family.controller if sc.form == "matrices" else family.pieces
-    values, ok = sc.part.leave_one_out(pts, sc.part_layout.pack(source, rows))
-    part = sc.part_layout.unpack(values)
+    rows, total = fits.rows, len(cands)
+    if progress is not None:
+        progress("interpolant", 0, total)
+    keys = [k for c in cands for k in ((c.form, c.kind),) + (
+        (("plant", c.kind),) if c.form == "observer" else ())]
+    fits.fit_all(keys, jobs, cluster, loo=rows.size >= 2)
+    live = []
+    for c in cands:
+        try:
+            part = fits.get(c.form, c.kind)
+            plant = fits.get("plant", c.kind) if c.form == "observer" else None
+            c.controller = ScheduledController(
+                c.form, c.kind, family.gamma, family.variable_names, part,
+                fits.layout(c.form), plant, fits.layout("plant"))
+            if rows.size < 2:
+                raise InputError("leave-one-out needs at least 2 ok points")
+            c.loo = fits.loo_of(c.form, c.kind)
+            c.plant_loo = fits.loo_of("plant", c.kind) if c.form == "observer" else None
+        except (ScheduleError, np.linalg.LinAlgError) as exc:
+            c.failure, c.error = _one_line(exc), exc
+            continue
+        live.append(c)
+    finished = total - len(live)
+    if progress is not None and finished:
+        progress("interpolant", finished, total)
+    if not live:
+        return
     n = rows.size
-    K = {k: np.zeros((n,) + np.shape(family.controller[k])[1:]) for k in CONTROLLER_KEYS}
-    if sc.form == "matrices":
+    size = work_chunk(n, jobs, cluster, largest=PREDICT_PIECE)
+    starts = list(range(0, n, size))
+    shapes = {k: tuple(np.shape(family.controller[k])[1:]) for k in CONTROLLER_KEYS}
+    plant = fits.true_plant() if loops else None
+    inputs = []
+    for c in live:
+        values, ok = c.loo
+        ploo = None
+        if c.form == "observer":
+            pv, pok = c.plant_loo
+            ok, ploo = ok & pok, fits.layout("plant").unpack(pv)
+        inputs.append((fits.layout(c.form).unpack(values), ok, ploo))
+        c.K = {k: np.zeros((n,) + shapes[k]) for k in CONTROLLER_KEYS}
+        c.good = np.zeros(n, dtype=bool)
+        c.stable = np.zeros(n, dtype=bool)
+    loop_good = [np.zeros(n, dtype=bool) for _ in live]
+
+    def make(t: int) -> tuple:
+        c, j = divmod(t, len(starts))
+        sl = slice(starts[j], starts[j] + size)
+        part, ok, ploo = inputs[c]
+        return (float(family.gamma), shapes, {k: v[sl] for k, v in part.items()}, ok[sl],
+                None if ploo is None else {k: v[sl] for k, v in ploo.items()},
+                None if plant is None else {k: v[sl] for k, v in plant.items()})
+
+    left = [len(starts)] * len(live)
+    for t, (K, good, lgood, stable) in run_chunks(predict_chunk, _Lazy(len(live) * len(starts),
+                                                                       make),
+                                                  jobs=jobs, cluster=cluster):
+        i, j = divmod(t, len(starts))
+        sl, c = slice(starts[j], starts[j] + size), live[i]
         for k in CONTROLLER_KEYS:
-            K[k][ok] = part[k][ok]
-    else:
-        pv, pok = sc.plant.leave_one_out(pts, sc.plant_layout.pack(family.plant, rows))
-        ok &= pok
-        plants = sc.plant_layout.unpack(pv)
-        pieces = split_evenly(np.flatnonzero(ok), jobs, cluster)
-        tasks = [(sc.gamma, {n_: v[p] for n_, v in part.items()},
-                  {n_: v[p] for n_, v in plants.items()}) for p in pieces]
-        for t, (k, kok, _error) in run_chunks(assemble_each, tasks, jobs=jobs, cluster=cluster):
-            sel = pieces[t]
-            ok[sel] = kok
-            for name in CONTROLLER_KEYS if k is not None else ():
-                K[name][sel[kok]] = k[name][kok]
-    finite = np.ones(n, dtype=bool)
-    for k in CONTROLLER_KEYS:
-        finite &= np.all(np.isfinite(K[k].reshape(n, -1)), axis=1)
-    return K, ok & finite
+            c.K[k][sl] = K[k]
+        c.good[sl] = good
+        if loops:
+            loop_good[i][sl], c.stable[sl] = lgood, stable
+        left[i] -= 1
+        if not left[i]:
+            finished += 1
+            if progress is not None:
+                progress("interpolant", finished, total)
+    truth = {k: np.asarray(family.controller[k])[rows] for k in CONTROLLER_KEYS}
+    for c, lgood in zip(live, loop_good, strict=True):
+        c.rel_error = _rel_errors(c.K, truth, c.good)
+        if loops:
+            c.rel_error[c.good & ~lgood] = np.nan
+            c.good = lgood
+            c.norm = np.full(n, np.inf)
+            c.norm[c.stable] = np.nan
+
+
+def _norms_of(cand: _Candidate, fits: _Fits, jobs: int, cluster,
+              stop_above: float = np.inf) -> None:
+    """Norms of the candidate's stable predictions, worst matrix error first, in pieces of
+    :data:`NORM_PIECE` loops on the workers; stops (status "bound") after the first piece,
+    in that order, with a norm above ``stop_above``. Results are taken in piece order, so
+    the norms kept are those of the serial run, whatever the workers finish first."""
+    from .parallel import run_chunks
+
+    pos = np.flatnonzero(cand.stable)  # stable rows (their loops are well posed)
+    if pos.size == 0:
+        return
+    err = cand.rel_error[pos]
+    order = pos[np.argsort(-np.nan_to_num(err, nan=np.inf), kind="stable")]
+    pieces = [order[a:a + NORM_PIECE] for a in range(0, order.size, NORM_PIECE)]
+    plant = fits.true_plant()
+    tasks = _Lazy(len(pieces), lambda t: ({k: v[pieces[t]] for k, v in plant.items()},
+                                          {k: v[pieces[t]] for k, v in cand.K.items()}))
+    results = run_chunks(loop_norm_rows, tasks, jobs=jobs, cluster=cluster)
+    waiting: dict[int, np.ndarray] = {}
+    nxt = 0
+    try:
+        for t, norms in results:
+            waiting[t] = norms
+            while nxt in waiting:
+                sel = pieces[nxt]
+                cand.norm[sel] = waiting.pop(nxt)
+                nxt += 1
+                if np.nanmax(cand.norm[sel]) > stop_above and nxt < len(pieces):
+                    cand.status = "bound"  # the tasks still running are cancelled
+                    return
+    finally:
+        results.close()
+
+
+def _result(cand: _Candidate, family: Family, rows: np.ndarray) -> LooResult:
+    if cand.failure:
+        return LooResult(cand.form, cand.kind, family.gamma, rows,
+                         np.full(rows.size, np.nan), np.full(rows.size, np.inf),
+                         np.zeros(rows.size, dtype=bool), failure=cand.failure)
+    return LooResult(cand.form, cand.kind, family.gamma, rows, cand.rel_error, cand.norm,
+                     cand.stable, norm_status=cand.status)
+
+
+def _seeded(family: Family, controller: ScheduledController) -> _Fits:
+    """The fits of ``family`` holding the interpolants of ``controller``."""
+    fits = _Fits(family)
+    fits.done[(controller.form, controller.kind)] = controller.part
+    if controller.plant is not None:
+        fits.done[("plant", controller.kind)] = controller.plant
+    return fits
 
 
 def leave_one_out_controllers(family: Family, controller: ScheduledController,
@@ -652,7 +838,7 @@ def leave_one_out_controllers(family: Family, controller: ScheduledController,
 
     The predictions reuse the hyperparameters of ``controller`` (fitted on all
     points) and come from each kind's closed form (:meth:`Interpolant.leave_one_out`),
-    not from N refits; observer-form assembly runs on the workers of ``jobs`` /
+    not from N refits; the observer-form assembly runs on the workers of ``jobs`` /
     ``cluster``.
 
     Returns
@@ -666,52 +852,12 @@ def leave_one_out_controllers(family: Family, controller: ScheduledController,
         K = {k: np.zeros((rows.size,) + np.shape(family.controller[k])[1:])
              for k in CONTROLLER_KEYS}
         return rows, K, np.zeros(rows.size, dtype=bool)
-    K, good = _predict(family, controller, rows, jobs, cluster)
-    return rows, K, good
-
-
-def _evaluate_candidate(family: Family, cand: _Candidate, rows: np.ndarray, jobs: int = 1,
-                        cluster=None) -> None:
-    """Predictions, matrix errors, closed loops and their stability (no norms yet)."""
-    cand.K, cand.good = _predict(family, cand.controller, rows, jobs, cluster)
-    cand.rel_error = _rel_errors(cand.K, {k: np.asarray(family.controller[k])[rows]
-                                          for k in CONTROLLER_KEYS}, cand.good)
-    cand.loops, good = _closed_loops(family, rows, cand.K, cand.good)
-    cand.loop_rows = np.flatnonzero(good)
-    cand.rel_error[cand.good & ~good] = np.nan
-    cand.good = good
-    cand.stable = np.zeros(rows.size, dtype=bool)
-    cand.stable[cand.loop_rows] = _stable_many(cand.loops[0])
-    cand.norm = np.full(rows.size, np.inf)
-    cand.norm[cand.loop_rows[cand.stable[cand.loop_rows]]] = np.nan
-
-
-def _norms_of(cand: _Candidate, jobs: int, cluster, stop_above: float = np.inf) -> None:
-    """Norms of the candidate's stable predictions, worst matrix error first, in growing
-    blocks; stops (status "bound") once one exceeds ``stop_above``."""
-    where = np.flatnonzero(cand.stable[cand.loop_rows])  # indices into the loops
-    if where.size == 0:
-        return
-    err = cand.rel_error[cand.loop_rows[where]]
-    order = where[np.argsort(-np.nan_to_num(err, nan=np.inf), kind="stable")]
-    start, size = 0, NORM_BLOCK
-    while start < order.size:
-        sel = order[start:start + size]
-        cand.norm[cand.loop_rows[sel]] = _loop_norms(cand.loops, sel, jobs, cluster)
-        start += sel.size
-        size = min(4 * size, NORM_BLOCK_MAX)  # blocks bound the memory of the norm stacks
-        if np.nanmax(cand.norm[cand.loop_rows[sel]]) > stop_above and start < order.size:
-            cand.status = "bound"
-            return
-
-
-def _result(cand: _Candidate, family: Family, rows: np.ndarray) -> LooResult:
-    if cand.failure:
-        return LooResult(cand.form, cand.kind, family.gamma, rows,
-                         np.full(rows.size, np.nan), np.full(rows.size, np.inf),
-                         np.zeros(rows.size, dtype=bool), failure=cand.failure)
-    return LooResult(cand.form, cand.kind, family.gamma, rows, cand.rel_error, cand.norm,
-                     cand.stable, norm_status=cand.status)
+    cand = _Candidate(controller.form, controller.kind)
+    with _single_thread_blas():
+        _evaluate(family, _seeded(family, controller), [cand], jobs, cluster, loops=False)
+    if cand.error is not None:
+        raise cand.error
+    return rows, cand.K, cand.good
 
 
 def leave_one_out(family: Family, form: str = "matrices", kind: str = "multilinear",
@@ -725,7 +871,8 @@ def leave_one_out(family: Family, form: str = "matrices", kind: str = "multiline
     form, kind : the interpolation form and interpolant kind.
     fitted : optional controller already fitted on all points with the same
         form and kind (its hyperparameters are reused).
-    jobs, cluster : workers for the closed-loop norms (:func:`schedule.parallel.run_chunks`).
+    jobs, cluster : workers for the predictions and the closed-loop norms
+        (:func:`schedule.parallel.run_chunks`).
 
     Returns
     -------
@@ -743,10 +890,13 @@ def leave_one_out(family: Family, form: str = "matrices", kind: str = "multiline
         return LooResult(form, kind, family.gamma, rows, np.full(rows.size, np.nan),
                          np.full(rows.size, np.inf), np.zeros(rows.size, dtype=bool),
                          failure="leave-one-out needs at least 2 ok points")
-    cand = _Candidate(form, kind, full)
+    cand = _Candidate(form, kind)
+    fits = _seeded(family, full)
     with _single_thread_blas():
-        _evaluate_candidate(family, cand, rows, jobs, cluster)
-        _norms_of(cand, jobs, cluster)
+        _evaluate(family, fits, [cand], jobs, cluster)
+        if cand.error is not None:
+            raise cand.error
+        _norms_of(cand, fits, jobs, cluster)
     return _result(cand, family, rows)
 
 
@@ -849,7 +999,8 @@ def _one_line(exc: BaseException) -> str:
 
 class _Fits:
     """Interpolants fitted once per (role, kind) and shared by the candidates: role
-    "matrices" (controller matrices), "observer" (observer pieces) or "plant"."""
+    "matrices" (controller matrices), "observer" (observer pieces) or "plant"; with their
+    closed-form leave-one-out predictions once :meth:`fit_all` has run."""
 
     def __init__(self, family: Family):
         self.family = family
@@ -857,26 +1008,76 @@ class _Fits:
         self.rows = _ok_rows(family)
         self.pts = np.asarray(family.points, dtype=float)[self.rows]
         self.done: dict[tuple[str, str], Interpolant | ScheduleError] = {}
+        self.loo: dict[tuple[str, str], tuple | BaseException | None] = {}
+        self._plant: dict | None = None
 
     def layout(self, role: str) -> Layout:
         if role == "plant":
             return Layout.of(self.family.plant, PLANT_KEYS)
         return ScheduledController._part_layout(self.family, role)
 
+    def _values(self, role: str) -> np.ndarray:
+        f = self.family
+        source = {"matrices": f.controller, "observer": f.pieces, "plant": f.plant}[role]
+        return self.layout(role).pack(source, self.rows)
+
+    def true_plant(self) -> dict[str, np.ndarray]:
+        """The stored (true) generalized plants at the ok points, stacked."""
+        if self._plant is None:
+            self._plant = {n: np.asarray(self.family.plant[n], float)[self.rows]
+                           for n in PLANT_KEYS}
+        return self._plant
+
+    def fit_all(self, keys, jobs: int = 1, cluster=None, loo: bool = True) -> None:
+        """Fit the (role, kind) interpolants of ``keys`` not fitted yet and (``loo``) their
+        leave-one-out predictions, one :func:`fit_chunk` task per key on the workers."""
+        from .parallel import run_chunks
+
+        todo, values = [], {}
+        for key in dict.fromkeys(keys):
+            got = self.done.get(key)
+            if isinstance(got, ScheduleError) or (got is not None and (
+                    not loo or key in self.loo)):
+                continue
+            role = key[0]
+            if role not in values:
+                try:
+                    values[role] = self._values(role)
+                except ScheduleError as exc:
+                    values[role] = exc
+            if isinstance(values[role], ScheduleError):
+                self.done[key] = values[role]
+                continue
+            todo.append(key)
+
+        def make(t: int) -> tuple:
+            role, kind = todo[t]
+            return (_breakpoints(self.family, kind), kind, values[role], self.done.get(todo[t]),
+                    loo)
+
+        for t, (interp, predictions) in run_chunks(
+                fit_chunk, _Lazy(len(todo), make), jobs=jobs, cluster=cluster,
+                shared=(self.pts, self.lower, self.upper)):
+            self.done.setdefault(todo[t], interp)
+            if loo:
+                self.loo[todo[t]] = predictions
+
     def get(self, role: str, kind: str) -> Interpolant:
         key = (role, kind)
         if key not in self.done:
-            f = self.family
-            source = {"matrices": f.controller, "observer": f.pieces, "plant": f.plant}[role]
-            try:
-                interp = make_interpolant(kind, self.lower, self.upper, _breakpoints(f, kind))
-                self.done[key] = interp.fit(self.pts, self.layout(role).pack(source, self.rows))
-            except (ScheduleError, np.linalg.LinAlgError) as exc:
-                self.done[key] = NumericalError(_one_line(exc)) if not isinstance(
-                    exc, ScheduleError) else exc
+            self.fit_all([key], loo=False)  # in this process
         got = self.done[key]
         if isinstance(got, ScheduleError):
             raise got
+        return got
+
+    def loo_of(self, role: str, kind: str) -> tuple[np.ndarray, np.ndarray]:
+        """``(values, ok)`` of the leave-one-out predictions (raises what stopped them)."""
+        got = self.loo.get((role, kind))
+        if isinstance(got, BaseException):
+            raise got
+        if got is None:
+            raise NumericalError(f"no leave-one-out predictions of the {role} by {kind}")
         return got
 
     def controller(self, form: str, kind: str) -> ScheduledController:
@@ -902,22 +1103,7 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
                          "the points; raise [interpolation] costly_kinds_max_points to try "
                          "them)")
     cands = [_Candidate(f, k) for f, k in pairs]
-    for i, cand in enumerate(cands):
-        if progress is not None:
-            progress("interpolant", i, len(cands))
-        try:
-            part = fits.get(cand.form, cand.kind)
-            plant = fits.get("plant", cand.kind) if cand.form == "observer" else None
-            cand.controller = ScheduledController(
-                cand.form, cand.kind, family.gamma, family.variable_names, part,
-                fits.layout(cand.form), plant, fits.layout("plant"))
-            if rows.size < 2:
-                raise InputError("leave-one-out needs at least 2 ok points")
-            _evaluate_candidate(family, cand, rows, jobs, cluster)
-        except (ScheduleError, np.linalg.LinAlgError) as exc:
-            cand.failure = _one_line(exc)
-    if progress is not None:
-        progress("interpolant", len(cands), len(cands))
+    _evaluate(family, fits, cands, jobs, cluster, progress)
     usable = [c for c in cands if not c.failure]
     if not usable and rows.size >= 2:
         reasons = "; ".join(f"{c.form}/{c.kind}: {c.failure}" for c in cands)
@@ -928,7 +1114,7 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
     complete = sum(int(c.stable.sum()) for c in usable) <= COMPLETE_EVIDENCE_LOOPS
     for c in usable:
         if int((~c.stable).sum()) > fewest and not complete:
-            c.status, c.loops = "skipped", None  # its loops are not needed any more
+            c.status, c.K = "skipped", None  # its predictions are not needed any more
     contenders = sorted((c for c in usable if c.status != "skipped"),
                         key=lambda c: np.nanmedian(c.rel_error)
                         if np.isfinite(c.rel_error).any() else np.inf)
@@ -942,8 +1128,8 @@ def _choose(family, spec_form, spec_kind, progress, costly_kinds_max_points, job
             c.failure = f"plant interpolant: {_one_line(exc)}"
             continue
         stop = np.inf if complete else best * (1.0 + RANK_TIE) * family.gamma
-        _norms_of(c, jobs, cluster, stop_above=stop)
-        c.loops = None
+        _norms_of(c, fits, jobs, cluster, stop_above=stop)
+        c.K = None
         if c.status == "complete":
             peak = c.norm[c.stable]
             best = min(best, float(np.max(peak)) / family.gamma if peak.size else np.inf)

@@ -375,7 +375,7 @@ def test_pruned_evidence_makes_the_same_choice_as_complete_evidence(hinf_family,
 
     complete = interp.choose(hinf_family)
     monkeypatch.setattr(interp, "COMPLETE_EVIDENCE_LOOPS", 0)
-    monkeypatch.setattr(interp, "NORM_BLOCK", 2)
+    monkeypatch.setattr(interp, "NORM_PIECE", 2)
     pruned = interp.choose(hinf_family)
     assert (pruned.controller.form, pruned.controller.kind) == (complete.controller.form,
                                                                 complete.controller.kind)

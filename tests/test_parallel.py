@@ -20,7 +20,7 @@ from test_family import write_design
 from schedule.design_file import load_design
 from schedule.errors import InputError
 from schedule.family import run_design
-from schedule.parallel import run_chunks
+from schedule.parallel import CHUNKS_PER_WORKER, run_chunks, work_chunk
 
 
 def _work(a: float, n: int) -> float:
@@ -144,6 +144,74 @@ def test_checks_identical_serial_workers_and_dask():
         for k in ref:
             numeric = np.asarray(ref[k]).dtype.kind in "biufc"
             assert np.array_equal(got[k], ref[k], equal_nan=numeric), k
+
+
+@pytest.mark.parametrize("total", [999, 2401, 5500, 10000])
+def test_work_chunk_gives_every_worker_as_many_chunks_of_at_most_largest(total):
+    # rule (common practice for dynamic scheduling of equal-cost items): the fewest
+    # chunks of at most `largest` items, at least CHUNKS_PER_WORKER for each worker and
+    # the same number for every worker, so that no worker waits for a last odd chunk, and
+    # chunks of even size
+    size = work_chunk(total, jobs=2, largest=500)
+    count = math.ceil(total / size)
+    need = max(2 * CHUNKS_PER_WORKER, math.ceil(total / 500))
+    assert size <= 500 and count == need + need % 2
+    assert math.ceil(total / (size - 1)) > count  # as even as possible: one less is short
+
+
+def _arrays_bytes(d: dict) -> dict:
+    return {k: np.asarray(v).tobytes() if np.asarray(v).dtype.kind != "U" else str(v)
+            for k, v in d.items()}
+
+
+def _pruned_choice(monkeypatch):
+    """The interpolant choice of a 12-point family with its norms pruned piece by piece
+    (complete evidence off, 2 loops a piece): the early stop is exercised."""
+    from test_interpolate import hinf_family as family_fixture
+
+    import schedule.interpolate as interp
+
+    monkeypatch.setattr(interp, "COMPLETE_EVIDENCE_LOOPS", 0)
+    monkeypatch.setattr(interp, "NORM_PIECE", 2)
+    return family_fixture.__wrapped__(), interp
+
+
+def _choice_bytes(interpolant: dict, evidence: dict) -> dict:
+    return {"arrays": _arrays_bytes(interpolant["arrays"]), "attrs": interpolant["attrs"],
+            "evidence": _arrays_bytes(evidence)}
+
+
+def test_interpolant_choice_identical_serial_workers_and_dask(monkeypatch):
+    # the fits, leave-one-out predictions, closed loops and norms of every candidate run
+    # through run_chunks; every backend must store the same interpolant and evidence
+    distributed = pytest.importorskip("distributed")
+    fam, interp = _pruned_choice(monkeypatch)
+    interpolant, evidence = interp.fit_for_family(fam)
+    ref = _choice_bytes(interpolant, evidence)
+    status = [r.norm_status for r in interp.evidence_from_arrays(evidence)]
+    assert "bound" in status and "complete" in status
+    assert _choice_bytes(*interp.fit_for_family(fam, jobs=2)) == ref
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=None) as cluster:
+        with distributed.Client(cluster) as client:
+            assert _choice_bytes(*interp.fit_for_family(fam, cluster=client)) == ref
+
+
+def test_pruned_norms_are_those_of_the_serial_order_whatever_finishes_first(monkeypatch):
+    # workers finish in any order; the norms kept, and the piece after which the search
+    # stops, must be those of the in-order run (here: an engine returning last first)
+    import schedule.parallel as par
+
+    fam, interp = _pruned_choice(monkeypatch)
+    ref = _choice_bytes(*interp.fit_for_family(fam))
+    engine = par.run_chunks
+
+    def last_first(func, chunks, jobs=1, cluster=None, shared=()):
+        yield from reversed(list(engine(func, chunks, jobs=jobs, cluster=cluster,
+                                        shared=shared)))
+
+    monkeypatch.setattr(par, "run_chunks", last_first)
+    assert _choice_bytes(*interp.fit_for_family(fam)) == ref
 
 
 def _children(pid: int) -> list[int]:
