@@ -784,7 +784,9 @@ def _norms_of(cand: _Candidate, fits: _Fits, jobs: int, cluster,
     """Norms of the candidate's stable predictions, worst matrix error first, in pieces of
     :data:`NORM_PIECE` loops on the workers; stops (status "bound") after the first piece,
     in that order, with a norm above ``stop_above``. Results are taken in piece order, so
-    the norms kept are those of the serial run, whatever the workers finish first."""
+    the norms kept are those of the serial run, whatever the workers finish first. With a
+    finite ``stop_above`` the first piece runs in this process first (it decides most
+    stops; on the workers a whole batch would be computed for nothing)."""
     from .parallel import run_chunks
 
     pos = np.flatnonzero(cand.stable)  # stable rows (their loops are well posed)
@@ -794,21 +796,35 @@ def _norms_of(cand: _Candidate, fits: _Fits, jobs: int, cluster,
     order = pos[np.argsort(-np.nan_to_num(err, nan=np.inf), kind="stable")]
     pieces = [order[a:a + NORM_PIECE] for a in range(0, order.size, NORM_PIECE)]
     plant = fits.true_plant()
-    tasks = _Lazy(len(pieces), lambda t: ({k: v[pieces[t]] for k, v in plant.items()},
-                                          {k: v[pieces[t]] for k, v in cand.K.items()}))
-    results = run_chunks(loop_norm_rows, tasks, jobs=jobs, cluster=cluster)
+
+    def piece(t: int) -> tuple:
+        return ({k: v[pieces[t]] for k, v in plant.items()},
+                {k: v[pieces[t]] for k, v in cand.K.items()})
+
+    def keep(t: int, norms: np.ndarray) -> bool:
+        """Store piece t's norms; True when the search stops there."""
+        cand.norm[pieces[t]] = norms
+        if np.nanmax(norms) > stop_above and t + 1 < len(pieces):
+            cand.status = "bound"
+            return True
+        return False
+
+    first = 0
+    if np.isfinite(stop_above):  # the worst-error piece decides most stops: here, at once,
+        first = 1                # not after a batch of pieces already sent to the workers
+        if keep(0, loop_norm_rows(*piece(0))):
+            return
+    results = run_chunks(loop_norm_rows, _Lazy(len(pieces) - first, lambda t: piece(first + t)),
+                         jobs=jobs, cluster=cluster)
     waiting: dict[int, np.ndarray] = {}
-    nxt = 0
+    nxt = first
     try:
         for t, norms in results:
-            waiting[t] = norms
+            waiting[first + t] = norms
             while nxt in waiting:
-                sel = pieces[nxt]
-                cand.norm[sel] = waiting.pop(nxt)
                 nxt += 1
-                if np.nanmax(cand.norm[sel]) > stop_above and nxt < len(pieces):
-                    cand.status = "bound"  # the tasks still running are cancelled
-                    return
+                if keep(nxt - 1, waiting.pop(nxt - 1)):
+                    return  # the tasks still running are cancelled
     finally:
         results.close()
 

@@ -27,8 +27,11 @@ from the measured cost of the chunks already finished: a task should last about
 arguments are built only shortly before they are sent (``chunks`` may be a lazy
 sequence) and memory stays bounded whatever the number of chunks. On dask,
 arguments common to every chunk (``shared``) are scattered to the workers once,
-and chunk arguments larger than :data:`SCATTER_BYTES` are scattered directly to
-the worker instead of travelling inside the task graph.
+and chunk arguments larger than :data:`SCATTER_BYTES` are scattered to a worker
+(measured: cheaper than inside the task graph). Callers cut independent
+items with :func:`work_chunk` (few large chunks: a batched kernel call has a fixed
+cost) and may stop reading the results early (closing the generator cancels the
+rest).
 
 Starting a cluster of several machines (the ``cluster`` extra installed on each,
 with this package and the model's module importable at the same paths)::
@@ -58,6 +61,7 @@ import numpy as np
 from .errors import InputError
 
 TASK_SECONDS = {"local": 0.1, "dask": 0.5}  # target duration of one task
+SHORTEST_TASK = 5  # ... and the shortest is this many times shorter (per-task cost)
 IN_FLIGHT = 2  # outstanding tasks per worker
 CHUNKS_PER_WORKER = 3  # work_chunk: at least this many chunks per worker
 SCATTER_BYTES = 256 * 1024  # larger dask task arguments are scattered to the workers
@@ -80,6 +84,12 @@ def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
     shared : leading arguments common to every chunk (a design, settings); on dask they
         are scattered to the workers once, not sent with every task.
 
+    Returns
+    -------
+    A generator: closing it before the end (``close()``) cancels the tasks not started
+    yet and drops the results of those running, so a caller may stop reading as soon as
+    it knows enough (the leave-one-out norms of a candidate that already lost).
+
     Raises
     ------
     InputError
@@ -87,7 +97,7 @@ def run_chunks(func: Callable[..., Any], chunks: Sequence[tuple], jobs: int = 1,
     """
     jobs = _check_jobs(jobs)
     if not len(chunks):
-        return iter(())
+        return (r for r in ())
     shared = tuple(shared)
     if cluster is not None:
         return _run_dask(func, chunks, cluster, shared)
@@ -237,29 +247,48 @@ def _batch(func, first: int, batch: list[tuple], caller_pid: int = -1, shared: t
     return first, out, (time.perf_counter() - t0) / max(len(batch), 1)
 
 
-class _Planner:
-    """Chooses the next batch of chunks from the measured cost of finished ones."""
+_MEASURED: dict[str, float] = {}  # seconds per chunk last measured, by worker function
 
-    def __init__(self, total: int, workers: int, target: float):
+
+class _Planner:
+    """Chooses the next batch of chunks from the measured cost of finished ones.
+
+    A batch should last about ``target`` seconds, but near the end at most the share
+    of the work left that keeps every worker busy (``IN_FLIGHT`` tasks each), and not
+    less than ``target`` / :data:`SHORTEST_TASK` seconds (the per-task cost). Before a
+    chunk of this call has finished, the cost last measured for the same function
+    (another call: the next candidate's norms, the next stage) stands in for it.
+    """
+
+    def __init__(self, total: int, workers: int, target: float, key: str = ""):
         self.total, self.workers, self.target = total, workers, target
         self.next = 0
         self.seconds: list[float] = []
+        self.key = key
 
     def take(self) -> range | None:
         if self.next >= self.total:
             return None
         left = self.total - self.next
         size = 1
-        if self.seconds:
-            per = float(np.median(self.seconds[-8:]))
-            size = math.ceil(self.target / max(per, 1e-9))
-            size = max(1, min(size, math.ceil(left / (IN_FLIGHT * self.workers))))
+        per = float(np.median(self.seconds[-8:])) if self.seconds else _MEASURED.get(self.key)
+        if per is not None:
+            per = max(per, 1e-9)
+            share = max(math.ceil(left / (IN_FLIGHT * self.workers)),
+                        math.ceil(self.target / SHORTEST_TASK / per))
+            size = max(1, min(math.ceil(self.target / per), share))
         r = range(self.next, min(self.total, self.next + size))
         self.next = r.stop
         return r
 
     def measured(self, seconds_per_chunk: float) -> None:
         self.seconds.append(seconds_per_chunk)
+        if self.key:
+            _MEASURED[self.key] = seconds_per_chunk
+
+
+def _key(func) -> str:
+    return f"{getattr(func, '__module__', '')}.{getattr(func, '__qualname__', '')}"
 
 
 def _run_local(func, chunks, jobs, shared: tuple = ()) -> Iterator[tuple[int, Any]]:
@@ -272,7 +301,7 @@ def _run_local(func, chunks, jobs, shared: tuple = ()) -> Iterator[tuple[int, An
 
     executor = _executor(jobs)
     pid = os.getpid()
-    plan = _Planner(len(chunks), jobs, TASK_SECONDS["local"])
+    plan = _Planner(len(chunks), jobs, TASK_SECONDS["local"], _key(func))
     running: set = set()
     try:
         while True:
@@ -386,7 +415,7 @@ def _run_on(func, chunks, client, shared: tuple) -> Iterator[tuple[int, Any]]:
     if shared:  # once to every worker, then referenced by each task
         shared = tuple(client.scatter(list(shared), broadcast=True, hash=False))
     workers = max(1, int(sum(client.nthreads().values())))
-    plan = _Planner(len(chunks), workers, TASK_SECONDS["dask"])
+    plan = _Planner(len(chunks), workers, TASK_SECONDS["dask"], _key(func))
     pending = as_completed(loop=client.loop)
     count = 0
 
