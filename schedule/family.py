@@ -1241,8 +1241,8 @@ def _choice_estimate(spec, n_ok: float, per_point: dict, src: _Source, limit: in
         kinds = [k for k in kinds if k not in costly_kinds(len(spec.variables))]
     forms = 2 if spec.interpolation.form == "auto" else 1
     observer = len(kinds) if spec.interpolation.form in ("auto", "observer") else 0
-    seconds = n_ok * (observer * per_point["assemble"] + 2.0 * per_point["norm"] / speed
-                      + CHOICE_OVERHEAD * len(kinds) * forms)
+    seconds = n_ok * (observer * per_point["assemble"] + 2.0 * per_point["norm"]
+                      + CHOICE_OVERHEAD * len(kinds) * forms) / speed  # all on the workers
     cubic = [k for k in kinds if k in CUBIC_KINDS]
     seconds += len(cubic) * 3 * 2.5e-7 * n_ok ** 3  # kernel fits: measured ~2.5e-7 N^3 s
     per_candidate = 8 * (sizes + 400)  # predictions, closed loop and errors per point
