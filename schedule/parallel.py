@@ -409,12 +409,20 @@ def _run_dask(func, chunks, cluster, shared: tuple = ()) -> Iterator[tuple[int, 
 
 
 def _run_on(func, chunks, client, shared: tuple) -> Iterator[tuple[int, Any]]:
+    """The dask loop. A batch larger than :data:`SCATTER_BYTES` is scattered to the worker
+    with the fewest of this call's tasks in flight per thread (its task then runs there,
+    beside its data): left to itself, the scheduler places scattered data round-robin,
+    and the tasks of two scattered batches could queue on one worker while the other
+    waits (measured: one worker did 70% of the checks)."""
     from distributed import as_completed
 
     pid = os.getpid()
     if shared:  # once to every worker, then referenced by each task
         shared = tuple(client.scatter(list(shared), broadcast=True, hash=False))
-    workers = max(1, int(sum(client.nthreads().values())))
+    threads = {w: max(1, int(n)) for w, n in client.nthreads().items()}
+    workers = max(1, sum(threads.values()))
+    busy = dict.fromkeys(threads, 0)
+    placed: dict = {}  # future -> worker of its scattered batch
     plan = _Planner(len(chunks), workers, TASK_SECONDS["dask"], _key(func))
     pending = as_completed(loop=client.loop)
     count = 0
@@ -423,10 +431,17 @@ def _run_on(func, chunks, client, shared: tuple) -> Iterator[tuple[int, Any]]:
         r = plan.take()
         if r is None:
             return False
-        batch = [chunks[i] for i in r]
+        batch, where = [chunks[i] for i in r], None
         if sum(_nbytes(a) for a in batch) > SCATTER_BYTES:
-            batch = client.scatter(batch, hash=False, direct=None)
-        pending.add(client.submit(_batch, func, r.start, batch, pid, shared, pure=False))
+            if busy:
+                where = min(busy, key=lambda w: busy[w] / threads[w])
+            batch = client.scatter(batch, hash=False, direct=None,
+                                   workers=None if where is None else [where])
+        future = client.submit(_batch, func, r.start, batch, pid, shared, pure=False)
+        if where is not None:
+            busy[where] += 1
+            placed[future.key] = where
+        pending.add(future)
         return True
 
     try:
@@ -434,6 +449,9 @@ def _run_on(func, chunks, client, shared: tuple) -> Iterator[tuple[int, Any]]:
             count += 1
         for future in pending:
             first, results, seconds = future.result()
+            where = placed.pop(future.key, None)
+            if where is not None:
+                busy[where] -= 1
             plan.measured(seconds)
             submit()
             for k, res in enumerate(results):
