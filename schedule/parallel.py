@@ -254,10 +254,11 @@ class _Planner:
     """Chooses the next batch of chunks from the measured cost of finished ones.
 
     A batch should last about ``target`` seconds, but near the end at most the share
-    of the work left that keeps every worker busy (``IN_FLIGHT`` tasks each), and not
-    less than ``target`` / :data:`SHORTEST_TASK` seconds (the per-task cost). Before a
-    chunk of this call has finished, the cost last measured for the same function
-    (another call: the next candidate's norms, the next stage) stands in for it.
+    of the chunks left that keeps every worker busy (``IN_FLIGHT`` tasks each), and,
+    once chunks of this call are measured, not less than ``target`` /
+    :data:`SHORTEST_TASK` seconds (the per-task cost). Before a chunk of this call has
+    finished, the cost last measured for the same function (another call: the next
+    candidate's norms, the next stage) stands in for it.
     """
 
     def __init__(self, total: int, workers: int, target: float, key: str = ""):
@@ -271,12 +272,14 @@ class _Planner:
             return None
         left = self.total - self.next
         size = 1
-        per = float(np.median(self.seconds[-8:])) if self.seconds else _MEASURED.get(self.key)
+        own = bool(self.seconds)
+        per = float(np.median(self.seconds[-8:])) if own else _MEASURED.get(self.key)
         if per is not None:
             per = max(per, 1e-9)
-            share = max(math.ceil(left / (IN_FLIGHT * self.workers)),
-                        math.ceil(self.target / SHORTEST_TASK / per))
-            size = max(1, min(math.ceil(self.target / per), share))
+            share = max(1, left // (IN_FLIGHT * self.workers))
+            if own:  # a cost measured on other chunks (smaller ones) sets no floor
+                share = max(share, math.ceil(self.target / SHORTEST_TASK / per))
+            size = min(math.ceil(self.target / per), share)
         r = range(self.next, min(self.total, self.next + size))
         self.next = r.stop
         return r
