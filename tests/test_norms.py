@@ -761,6 +761,17 @@ def test_level_test_in_badly_conditioned_coordinates():
         assert not cert.below(level)[0]
 
 
+def _modes(rng, k, wn_exp=(-1.0, 1.0), z_exp=(-4.0, -0.3)):
+    """A (2k x 2k) real modal form: k modes of natural frequency 10^U(wn_exp) rad/s and
+    damping 10^U(z_exp), blocks [[-z wn, wd], [-wd, -z wn]], wd = wn sqrt(1 - z^2)."""
+    A = np.zeros((2 * k, 2 * k))
+    for i in range(k):
+        wn, z = 10 ** rng.uniform(*wn_exp), 10 ** rng.uniform(*z_exp)
+        wd = wn * np.sqrt(1 - z * z)
+        A[2 * i:2 * i + 2, 2 * i:2 * i + 2] = [[-z * wn, wd], [-wd, -z * wn]]
+    return A
+
+
 def _rounded_back(At, Bt, Ct, T):
     """The realization (At, Bt, Ct) exactly as rounded, mapped back to the coordinates of
     T in 40-digit arithmetic (mpmath): the same transfer function in good coordinates."""
@@ -789,11 +800,7 @@ def test_level_test_never_below_where_sigma_max_itself_is_unreliable():
     checked = 0
     while checked < 12:
         k = int(rng.integers(2, 5))
-        A = np.zeros((2 * k, 2 * k))
-        for i in range(k):
-            wn, z = 10 ** rng.uniform(-1, 1), 10 ** rng.uniform(-4, -0.3)
-            wd = wn * np.sqrt(1 - z * z)
-            A[2 * i:2 * i + 2, 2 * i:2 * i + 2] = [[-z * wn, wd], [-wd, -z * wn]]
+        A = _modes(rng, k)
         B, C = rng.standard_normal((2 * k, 1)), rng.standard_normal((1, 2 * k))
         D = np.zeros((1, 1))
         n = 2 * k
@@ -840,11 +847,7 @@ def test_upper_bound_holds_against_40_digit_evaluation_at_sharp_peaks():
     rng = np.random.default_rng(6)
     for _ in range(6):
         n = 4
-        Ad = np.zeros((n, n))
-        for k in range(0, n, 2):
-            wn, z = 10 ** rng.uniform(-1, 2), 10 ** rng.uniform(-4, -2)
-            wd = wn * np.sqrt(1 - z * z)
-            Ad[k:k + 2, k:k + 2] = [[-z * wn, wd], [-wd, -z * wn]]
+        Ad = _modes(rng, n // 2, wn_exp=(-1.0, 2.0), z_exp=(-4.0, -2.0))
         T = np.eye(n) + 0.3 * rng.standard_normal((n, n))
         A = T @ Ad @ np.linalg.inv(T)
         B, C = rng.standard_normal((n, 2)), rng.standard_normal((2, n))

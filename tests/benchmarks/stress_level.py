@@ -20,12 +20,11 @@ import sys
 import time
 from pathlib import Path
 
-import mpmath
 import numpy as np
 from scipy.stats import ortho_group
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from test_norms import _swept_norm  # noqa: E402 (the tests' reference sweep)
+from test_norms import _modes, _rounded_back, _swept_norm  # noqa: E402 (the tests' references)
 
 from schedule.norms import h_infinity_norms  # noqa: E402
 
@@ -33,25 +32,11 @@ from schedule.norms import h_infinity_norms  # noqa: E402
 def random_modes(rng) -> tuple[np.ndarray, ...]:
     """A stable model in real modal form with random input and output couplings."""
     k = int(rng.integers(2, 7))
-    A = np.zeros((2 * k, 2 * k))
-    for i in range(k):
-        wn, z = 10 ** rng.uniform(-1, 1), 10 ** rng.uniform(-4, -0.3)
-        wd = wn * np.sqrt(1 - z * z)
-        A[2 * i:2 * i + 2, 2 * i:2 * i + 2] = [[-z * wn, wd], [-wd, -z * wn]]
+    A = _modes(rng, k)
     m = int(rng.integers(1, 3))
     B, C = rng.standard_normal((2 * k, m)), rng.standard_normal((m, 2 * k))
     D = 0.1 * rng.standard_normal((m, m)) * rng.integers(0, 2)
     return A, B, C, D
-
-
-def mapped_back(At, Bt, Ct, T) -> list[np.ndarray]:
-    """(At, Bt, Ct) exactly as rounded, mapped back with T in 40-digit arithmetic."""
-    with mpmath.workdps(40):
-        Tm = mpmath.matrix(T.tolist())
-        Ti = Tm ** -1
-        back = (Tm * mpmath.matrix(At.tolist()) * Ti, Tm * mpmath.matrix(Bt.tolist()),
-                mpmath.matrix(Ct.tolist()) * Ti)
-        return [np.array(M.tolist(), dtype=float) for M in back]
 
 
 def main(seed: int, trials: int) -> None:
@@ -68,7 +53,7 @@ def main(seed: int, trials: int) -> None:
                  @ ortho_group.rvs(n, random_state=rng))
             Ti = np.linalg.inv(T)
             At, Bt, Ct = Ti @ A @ T, Ti @ B, C @ T
-            A2, B2, C2 = mapped_back(At, Bt, Ct, T)
+            A2, B2, C2 = _rounded_back(At, Bt, Ct, T)
             if np.linalg.eigvals(A2).real.max() >= 0:  # rounding made it unstable
                 unstable += 1
                 continue
