@@ -1358,7 +1358,9 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     e_t = et if (et is None or idx is None) else et[idx]
     e_a = ea if (ea is None or idx is None) else ea[idx]
     # probes by sigma_max confirmed the bound: it holds up to their rounding (step 5)
-    sub = _finish(lb, pk, uncertain, sub_status, e_t, e_a, rtol, grow=spread)
+    # (not in models with fuzzy poles: there the Hamiltonian alone decided)
+    sub = _finish(lb, pk, uncertain, sub_status, e_t, e_a, rtol,
+                  grow=np.where(fuzzy, 0.0, spread))
     if below_level.any():  # certified below the level: the level is the upper bound
         sub.upper[below_level] = (upper_scaled[below_level] if e_t is None
                                   else np.ldexp(upper_scaled[below_level], e_t[below_level]))
