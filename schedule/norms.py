@@ -1072,7 +1072,8 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     sd = sigma_max(D)
     if n == 0:
         return _finish(sd, np.zeros(N), np.zeros(N, bool), status, et, ea, rtol)
-    # 2. stability (3. needs the eigenvectors only to screen many candidates)
+    # 2. stability (the eigenvectors serve the pole spread and, above SCREEN_ORDER, the
+    # screening of the candidates in 3.)
     screen = n > SCREEN_ORDER
     lam, V = np.linalg.eig(A)
     st = stability_from_eigenvalues(A, lam)
@@ -1121,8 +1122,9 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
     CtC = C.transpose(0, 2, 1) @ C
     eye_m = np.eye(m)
 
-    def hamiltonians(act, gamma):
-        """The Hamiltonians H(gamma) of the models act."""
+    def spectrum(act, gamma):
+        """Eigenvalues of the Hamiltonians H(gamma) of the models act, ||H||_1, the
+        Hamiltonians and their eigenvectors (for :func:`_untrusted`: one eigen-call)."""
         if act.size == M:  # every model: no copies
             a, b, dtd, rhs, ctc = A, B, DtD, DtC_Bt, CtC
         else:
@@ -1136,12 +1138,6 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         low += ctc
         np.negative(low, out=low)
         np.negative(Ah.transpose(0, 2, 1), out=H[:, n:, n:])
-        return H
-
-    def spectrum(act, gamma):
-        """Eigenvalues of the Hamiltonians H(gamma) of the models act, ||H||_1, the
-        Hamiltonians and their eigenvectors (for :func:`_untrusted`: one eigen-call)."""
-        H = hamiltonians(act, gamma)
         lam, V = np.linalg.eig(H)
         return lam, np.abs(H).sum(axis=1).max(axis=1)[:, None], H, V
 
@@ -1201,7 +1197,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         if test_lv.size:
             # the Hamiltonian at the level itself: no eigenvalue in the looser band and a
             # symmetric spectrum -> no crossing of the level, so the norm is below it
-            ev, hn, Hl, Vl = spectrum(test_lv, lv[test_lv])
+            ev, _, Hl, Vl = spectrum(test_lv, lv[test_lv])
             mod, are = np.abs(ev), np.abs(ev.real)
             clear = ((are > NEAR_AXIS_RTOL * mod) & (_mirror_error(ev) <= 0.5 * are)).all(axis=1)
             if clear.any():
@@ -1313,8 +1309,7 @@ def _certify(A, B, C, D, rtol, level=None) -> NormCertificate:
         if rows.size == 0:
             break
         L = (1.0 + step) * lb[rows]
-        H = hamiltonians(rows, L)
-        ev, V = np.linalg.eig(H)
+        ev, _, H, V = spectrum(rows, L)
         are = np.abs(ev.real)
         ok = (_mirror_error(ev) <= 0.5 * are).all(axis=1) & (sig0[rows] < L)
         ok &= ~_untrusted(H, 0.0, (ev, V), fuzzy[rows])[1].any(axis=1)
