@@ -100,3 +100,19 @@ def lightly_damped_modes(rng, n, zeta):
         blocks.append(np.array([[-z2 * w2, w2], [-w2, -z2 * w2]]))
     T = np.eye(n) + 0.3 * rng.standard_normal((n, n))
     return T @ block_diag(*blocks) @ np.linalg.inv(T), wd
+
+
+def spring_design(title: str, extra: str = "") -> str:
+    """Design text of a spring-mass plant scheduled on its stiffness (model.py's
+    ``plant_at``; inputs force and push, output pos; three grid points, four check
+    samples, no margin requirement), followed by ``extra`` tables."""
+    return (f'title = "{title}"\n'
+            + toml_variables(("stiffness", "-", 0.0, 1.0))
+            + '[source]\nmodel_file = "model.py"\nfunction = "plant_at"\n'
+            + "[grid]\nstiffness = [0.0, 0.5, 1.0]\n"
+            + toml_channels(["force"], ["pos"], ["push"], ["pos"])
+            + toml_weights(performance=[("pos", 2.0)], effort=[("force", 5.0)],
+                           noise=[("pos", 0.05)], disturbance=[("push", 1.0)])
+            + SCHEDULED_MATRICES
+            + "[check]\nsamples = 4\ngain_margin_db = 0.0\nphase_margin_deg = 0.0\n"
+            + extra)

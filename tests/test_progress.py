@@ -14,7 +14,7 @@ import re
 import sys
 
 import pytest
-from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+from _helpers import spring_design
 from click.testing import CliRunner
 
 from schedule.progress import (
@@ -234,19 +234,7 @@ def make():
                           variable_names=("stiffness",))
 '''
 
-DESIGN = ('title = "spring"\n'
-          + toml_variables(("stiffness", "-", 0.0, 1.0))
-          + """[source]
-model_file = "model.py"
-function = "plant_at"
-[grid]
-stiffness = [0.0, 0.5, 1.0]
-"""
-          + toml_channels(["force"], ["pos"], ["push"], ["pos"])
-          + toml_weights(performance=[("pos", 2.0)], effort=[("force", 5.0)],
-                         noise=[("pos", 0.05)], disturbance=[("push", 1.0)])
-          + SCHEDULED_MATRICES
-          + "[check]\nsamples = 4\ngain_margin_db = 0.0\nphase_margin_deg = 0.0\n")
+DESIGN = spring_design("spring")
 
 
 def _runner():

@@ -6,7 +6,7 @@ import json
 
 import numpy as np
 import pytest
-from _helpers import SCHEDULED_MATRICES, toml_channels, toml_variables, toml_weights
+from _helpers import spring_design
 from click.testing import CliRunner
 
 from schedule.errors import InputError
@@ -25,23 +25,7 @@ def plant_at(point):
                        ("force", "push"), ("pos",))
 '''
 
-DESIGN = ('title = "moving spring"\n'
-          + toml_variables(("stiffness", "-", 0.0, 1.0))
-          + """[source]
-model_file = "model.py"
-function = "plant_at"
-[grid]
-stiffness = [0.0, 0.5, 1.0]
-"""
-          + toml_channels(["force"], ["pos"], ["push"], ["pos"])
-          + toml_weights(performance=[("pos", 2.0)], effort=[("force", 5.0)],
-                         noise=[("pos", 0.05)], disturbance=[("push", 1.0)])
-          + SCHEDULED_MATRICES
-          + """[check]
-samples = 4
-gain_margin_db = 0.0
-phase_margin_deg = 0.0
-[rate_certificate]
+DESIGN = spring_design("moving spring", """[rate_certificate]
 basis = ["1", "stiffness", "stiffness**2"]
 rates = { stiffness = 0.05 }
 dense = 8
